@@ -1,0 +1,831 @@
+//! The daemon's configuration: one TOML file (or the embedded default) with `GLINT_SECTION__KEY` environment
+//! overrides, read raw through the `config` crate and then compiled into checked structs. Compilation never
+//! stops at the first fault: every wrong type, bad value, unknown key and missing token file is reported at
+//! once, each naming the file and the dotted key.
+
+use std::collections::BTreeMap;
+use std::fmt;
+use std::net::SocketAddr;
+use std::num::NonZeroUsize;
+use std::path::{Path, PathBuf};
+use std::time::Duration;
+
+use glint_science::instrument::{InstrumentResponse, InstrumentSpec};
+use serde::de::DeserializeOwned;
+use toml::{Table, Value};
+
+/// The configuration used when no file is given: loopback addresses, a state directory under the system's
+/// temporary directory, and the invented demo instrument.
+pub const EMBEDDED_DEFAULT: &str = include_str!("../../../deploy/glint-default.toml");
+
+/// Instrument blocks that ship with glint, addressable as `spec_file = "builtin:NAME"` so the embedded
+/// default needs no file on disk.
+const BUILTIN_INSTRUMENTS: &[(&str, &str)] = &[
+    ("ventisca-array", include_str!("../../../deploy/instruments/ventisca-array.toml")),
+    ("orbiter-lat", include_str!("../../../deploy/instruments/orbiter-lat.toml")),
+];
+
+/// Looks up an instrument block shipped with glint by name.
+pub fn builtin_instrument(name: &str) -> Option<&'static str> {
+    BUILTIN_INSTRUMENTS.iter().find(|(n, _)| *n == name).map(|(_, text)| *text)
+}
+
+/// One problem in a configuration, naming the key.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Problem {
+    /// Dotted key, e.g. `instrument[0].search.far_per_year`.
+    pub key: String,
+    /// What is wrong.
+    pub message: String,
+}
+
+/// Every problem found in a configuration source.
+#[derive(Debug, thiserror::Error)]
+pub struct ConfigError {
+    /// The file (or `<embedded default>`).
+    pub source_name: String,
+    /// All problems, in the order found.
+    pub problems: Vec<Problem>,
+}
+
+impl fmt::Display for ConfigError {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        write!(f, "{} problem(s) in {}", self.problems.len(), self.source_name)?;
+        for p in &self.problems {
+            write!(f, "\n  {}: {}: {}", self.source_name, p.key, p.message)?;
+        }
+        Ok(())
+    }
+}
+
+/// A secret read from the config or a file; never printed.
+#[derive(Clone, PartialEq, Eq)]
+pub struct Secret(String);
+
+impl Secret {
+    /// The secret's bytes, for constant-time comparison.
+    pub fn expose(&self) -> &str {
+        &self.0
+    }
+    /// Wraps a value (tests and the demo).
+    pub fn new(s: impl Into<String>) -> Self {
+        Self(s.into())
+    }
+}
+
+impl fmt::Debug for Secret {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str("Secret(***)")
+    }
+}
+
+/// How log lines are written.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum LogFormat {
+    /// Human-readable lines (the default on a terminal).
+    Text,
+    /// One JSON object per line, for log collectors.
+    Json,
+}
+
+/// `[daemon]`: process-wide settings.
+#[derive(Debug, Clone)]
+pub struct DaemonConfig {
+    /// Holds the journal, acceptance maps, sink cursors and recordings.
+    pub state_dir: PathBuf,
+    /// Default tracing filter (RUST_LOG overrides).
+    pub log_level: String,
+    /// Text or JSON lines.
+    pub log_format: LogFormat,
+    /// Largest frame accepted on any socket, bytes.
+    pub max_frame_bytes: usize,
+    /// How long a graceful shutdown may take before the daemon exits anyway.
+    pub shutdown_deadline: Duration,
+    /// How often the engines' acceptance maps are saved.
+    pub state_save_interval: Duration,
+}
+
+/// TLS material for a listener.
+#[derive(Debug, Clone)]
+pub struct TlsConfig {
+    /// PEM certificate chain.
+    pub cert: PathBuf,
+    /// PEM private key.
+    pub key: PathBuf,
+}
+
+/// `[ingest]`: the producer listener.
+#[derive(Debug, Clone)]
+pub struct IngestConfig {
+    /// Address to listen on.
+    pub listen: SocketAddr,
+    /// TLS, when both paths are set.
+    pub tls: Option<TlsConfig>,
+    /// Capacity of each instrument's engine queue, in batches; when full the socket is read more slowly.
+    pub queue_batches: NonZeroUsize,
+    /// An `Ack` is sent after this many frames (and whenever the producer goes quiet).
+    pub ack_every: NonZeroUsize,
+    /// Record every ingested stream to rotating `.glrec.zst` files under `state_dir/recordings`.
+    pub record: bool,
+    /// Rotate a recording after this many bytes.
+    pub record_rotate_bytes: u64,
+    /// Rotate a recording after this much event time.
+    pub record_rotate: Duration,
+}
+
+/// `[subscribers]`: the alert listener.
+#[derive(Debug, Clone)]
+pub struct SubscribersConfig {
+    /// Address to listen on.
+    pub listen: SocketAddr,
+    /// TLS, when both paths are set.
+    pub tls: Option<TlsConfig>,
+    /// Tokens that may subscribe.
+    pub tokens: Vec<Secret>,
+    /// Token that may also withdraw alerts.
+    pub operator_token: Option<Secret>,
+    /// Heartbeat period while no alert flows.
+    pub heartbeat: Duration,
+    /// A subscriber whose socket stays unwritable this long is dropped.
+    pub unwritable_timeout: Duration,
+    /// Most subscribers connected at once.
+    pub max_connections: NonZeroUsize,
+}
+
+/// `[journal]`: the append-only alert journal.
+#[derive(Debug, Clone)]
+pub struct JournalConfig {
+    /// Start a new segment after this many bytes.
+    pub segment_bytes: u64,
+    /// Segments older than this (by their newest record) are deleted.
+    pub retention: Duration,
+}
+
+/// `[instrument.search]`: the trigger settings of one instrument.
+#[derive(Debug, Clone, PartialEq)]
+pub struct SearchConfig {
+    /// Timescales of the ladder, seconds, increasing.
+    pub ladder_s: Vec<f64>,
+    /// Radius of the disc each photon seeds, degrees.
+    pub search_radius_deg: f64,
+    /// Target false-alarm rate of the whole search, per year.
+    pub far_per_year: f64,
+    /// Trailing window of the all-sky rate, seconds.
+    pub rate_window_s: f64,
+    /// Time constant of the acceptance map, seconds.
+    pub acceptance_tau_s: f64,
+    /// No trigger before the acceptance map holds this many photons (unless a saved map was loaded).
+    pub warmup_photons: u64,
+    /// Seed the acceptance map with the instrument's cos-power shape, so triggers can start after warm-up
+    /// of the rate only.
+    pub acceptance_prior: bool,
+    /// How far photons may arrive out of order, seconds.
+    pub reorder_tolerance_s: f64,
+    /// A frame this far ahead of the stream is refused as a clock jump, seconds.
+    pub max_clock_jump_s: f64,
+}
+
+/// `[instrument.assess]`: the assessment settings of one instrument.
+#[derive(Debug, Clone, PartialEq)]
+pub struct AssessSettings {
+    /// Shortest persistence window, seconds.
+    pub persistence_min_s: f64,
+    /// The persistence window is at least this many times the candidate's timescale.
+    pub persistence_timescale_factor: f64,
+    /// Window before the flash checked for earlier emission, seconds.
+    pub pre_window_s: f64,
+    /// `persistent` when the excess after the flash exceeds this many sigma.
+    pub post_sigma_max: f64,
+    /// `persistent` when the excess before the flash exceeds this many sigma.
+    pub pre_sigma_max: f64,
+    /// `instrumental` when the all-sky count in the flash window exceeds its expectation by this many sigma.
+    pub all_sky_sigma_max: f64,
+    /// `instrumental` when more than this fraction of the flash photons share one timestamp.
+    pub identical_fraction_max: f64,
+    /// `instrumental` when the photons' spread exceeds the PSF's by this factor.
+    pub spread_ratio_max: f64,
+    /// `undecided` when dead time covers more than this fraction of the persistence window.
+    pub max_dead_fraction: f64,
+}
+
+/// One `[[instrument]]`.
+#[derive(Debug, Clone)]
+pub struct InstrumentConfig {
+    /// Instrument id producers name in their `Hello`.
+    pub id: String,
+    /// Producer token.
+    pub token: Secret,
+    /// The instrument block (site, response, background).
+    pub spec: InstrumentSpec,
+    /// The response built from the spec.
+    pub response: InstrumentResponse,
+    /// Trigger settings.
+    pub search: SearchConfig,
+    /// Assessment settings.
+    pub assess: AssessSettings,
+}
+
+/// The whole checked configuration.
+#[derive(Debug, Clone)]
+pub struct Config {
+    /// Where it came from (a path, or `<embedded default>`).
+    pub source_name: String,
+    /// `[daemon]`.
+    pub daemon: DaemonConfig,
+    /// `[ingest]`.
+    pub ingest: IngestConfig,
+    /// `[subscribers]`.
+    pub subscribers: SubscribersConfig,
+    /// `[journal]`.
+    pub journal: JournalConfig,
+    /// `[metrics]`: the Prometheus text endpoint, if any.
+    pub metrics_listen: Option<SocketAddr>,
+    /// `[[instrument]]`, in file order.
+    pub instruments: Vec<InstrumentConfig>,
+}
+
+impl Config {
+    /// Reads and compiles a configuration file, applying `GLINT_*` environment overrides.
+    pub fn load(path: &Path) -> Result<Self, ConfigError> {
+        let name = path.display().to_string();
+        let text = std::fs::read_to_string(path).map_err(|e| ConfigError {
+            source_name: name.clone(),
+            problems: vec![Problem { key: "(file)".into(), message: format!("cannot read: {e}") }],
+        })?;
+        let base = path.parent().map(Path::to_path_buf).unwrap_or_default();
+        Self::from_toml(&text, &name, &base, true)
+    }
+
+    /// Compiles the embedded default configuration, applying `GLINT_*` environment overrides.
+    pub fn embedded_default() -> Result<Self, ConfigError> {
+        Self::from_toml(EMBEDDED_DEFAULT, "<embedded default>", Path::new("."), true)
+    }
+
+    /// Compiles configuration text; `base_dir` resolves relative paths (token and spec files).
+    pub fn from_toml(text: &str, source_name: &str, base_dir: &Path, with_env: bool) -> Result<Self, ConfigError> {
+        let fail = |key: &str, message: String| ConfigError {
+            source_name: source_name.to_string(),
+            problems: vec![Problem { key: key.into(), message }],
+        };
+        let mut builder = config::Config::builder().add_source(config::File::from_str(text, config::FileFormat::Toml));
+        if with_env {
+            builder = builder.add_source(
+                config::Environment::with_prefix("GLINT")
+                    .prefix_separator("_")
+                    .separator("__")
+                    .try_parsing(true)
+                    .list_separator(",")
+                    .with_list_parse_key("subscribers.tokens"),
+            );
+        }
+        let raw = builder.build().map_err(|e| fail("(syntax)", e.to_string()))?;
+        let root: Table = raw.try_deserialize().map_err(|e| fail("(syntax)", e.to_string()))?;
+        let mut r = Reader { problems: Vec::new(), base_dir: base_dir.to_path_buf() };
+        let cfg = r.compile(root);
+        match cfg {
+            Some(c) if r.problems.is_empty() => Ok(Self { source_name: source_name.to_string(), ..c }),
+            _ => Err(ConfigError { source_name: source_name.to_string(), problems: r.problems }),
+        }
+    }
+
+    /// The instrument with this id.
+    pub fn instrument(&self, id: &str) -> Option<&InstrumentConfig> {
+        self.instruments.iter().find(|i| i.id == id)
+    }
+}
+
+/// Walks the raw tree, taking each known key out of its table so that what is left over is unknown.
+struct Reader {
+    problems: Vec<Problem>,
+    base_dir: PathBuf,
+}
+
+/// One table being read; leftover keys are reported as unknown when it is finished.
+struct Section {
+    prefix: String,
+    table: Table,
+}
+
+impl Section {
+    fn key(&self, k: &str) -> String {
+        if self.prefix.is_empty() { k.to_string() } else { format!("{}.{}", self.prefix, k) }
+    }
+}
+
+impl Reader {
+    fn problem(&mut self, key: impl Into<String>, message: impl Into<String>) {
+        self.problems.push(Problem { key: key.into(), message: message.into() });
+    }
+
+    fn section(&mut self, parent: &mut Section, name: &str) -> Section {
+        let prefix = parent.key(name);
+        match parent.table.remove(name) {
+            None => Section { prefix, table: Table::new() },
+            Some(Value::Table(t)) => Section { prefix, table: t },
+            Some(other) => {
+                self.problem(&prefix, format!("expected a table, found {}", other.type_str()));
+                Section { prefix, table: Table::new() }
+            }
+        }
+    }
+
+    fn finish(&mut self, s: Section) {
+        for k in s.table.keys() {
+            self.problem(s.key(k), "unknown key");
+        }
+    }
+
+    fn opt<T: DeserializeOwned>(&mut self, s: &mut Section, k: &str) -> Option<T> {
+        let v = s.table.remove(k)?;
+        let shown = v.type_str();
+        match v.try_into::<T>() {
+            Ok(t) => Some(t),
+            Err(e) => {
+                let msg = e.to_string().trim().replace('\n', " ");
+                self.problem(s.key(k), format!("wrong type ({shown}): {msg}"));
+                None
+            }
+        }
+    }
+
+    fn get<T: DeserializeOwned>(&mut self, s: &mut Section, k: &str, default: T) -> T {
+        self.opt(s, k).unwrap_or(default)
+    }
+
+    fn required<T: DeserializeOwned>(&mut self, s: &mut Section, k: &str) -> Option<T> {
+        let present = s.table.contains_key(k);
+        let v = self.opt(s, k);
+        if !present {
+            self.problem(s.key(k), "missing (required)");
+        }
+        v
+    }
+
+    fn positive(&mut self, s: &Section, k: &str, v: f64) -> f64 {
+        if !(v.is_finite() && v > 0.0) {
+            self.problem(s.key(k), format!("{v} must be a finite number > 0"));
+        }
+        v
+    }
+
+    fn in_range(&mut self, s: &Section, k: &str, v: f64, lo: f64, hi: f64) -> f64 {
+        if !(v.is_finite() && (lo..=hi).contains(&v)) {
+            self.problem(s.key(k), format!("{v} is outside [{lo}, {hi}]"));
+        }
+        v
+    }
+
+    fn seconds(&mut self, s: &mut Section, k: &str, default: f64) -> Duration {
+        let v: f64 = self.get(s, k, default);
+        let v = self.positive(s, k, v);
+        Duration::try_from_secs_f64(v).unwrap_or(Duration::from_secs_f64(default))
+    }
+
+    fn addr(&mut self, s: &mut Section, k: &str, default: &str) -> SocketAddr {
+        let text: String = self.get(s, k, default.to_string());
+        match text.parse() {
+            Ok(a) => a,
+            Err(e) => {
+                self.problem(s.key(k), format!("'{text}' is not an address like 127.0.0.1:7601 ({e})"));
+                SocketAddr::from(([127, 0, 0, 1], 0))
+            }
+        }
+    }
+
+    fn nonzero(&mut self, s: &mut Section, k: &str, default: usize) -> NonZeroUsize {
+        let v: i64 = self.get(s, k, default as i64);
+        match usize::try_from(v).ok().and_then(NonZeroUsize::new) {
+            Some(n) => n,
+            None => {
+                self.problem(s.key(k), format!("{v} must be a whole number >= 1"));
+                NonZeroUsize::MIN
+            }
+        }
+    }
+
+    fn path(&self, p: &str) -> PathBuf {
+        let p = PathBuf::from(p);
+        if p.is_absolute() { p } else { self.base_dir.join(p) }
+    }
+
+    /// A secret given inline as `<k>` or in a file as `<k>_file` (exactly one of the two).
+    fn secret(&mut self, s: &mut Section, k: &str, required: bool) -> Option<Secret> {
+        let inline: Option<String> = self.opt(s, k);
+        let file_key = format!("{k}_file");
+        let file: Option<String> = self.opt(s, &file_key);
+        match (inline, file) {
+            (Some(_), Some(_)) => {
+                self.problem(s.key(k), format!("give either {k} or {file_key}, not both"));
+                None
+            }
+            (Some(t), None) => self.check_secret(s.key(k), t),
+            (None, Some(f)) => {
+                let path = self.path(&f);
+                match std::fs::read_to_string(&path) {
+                    Ok(t) => self.check_secret(s.key(&file_key), t.trim().to_string()),
+                    Err(e) => {
+                        self.problem(s.key(&file_key), format!("cannot read token file {}: {e}", path.display()));
+                        None
+                    }
+                }
+            }
+            (None, None) => {
+                if required {
+                    self.problem(s.key(k), format!("missing (give {k} or {file_key})"));
+                }
+                None
+            }
+        }
+    }
+
+    fn check_secret(&mut self, key: String, t: String) -> Option<Secret> {
+        if t.len() < 8 {
+            self.problem(key, "token must be at least 8 characters");
+            None
+        } else {
+            Some(Secret(t))
+        }
+    }
+
+    fn tls(&mut self, s: &mut Section) -> Option<TlsConfig> {
+        let cert: Option<String> = self.opt(s, "tls_cert");
+        let key: Option<String> = self.opt(s, "tls_key");
+        match (cert.filter(|c| !c.is_empty()), key.filter(|k| !k.is_empty())) {
+            (Some(c), Some(k)) => {
+                let (cert, key) = (self.path(&c), self.path(&k));
+                for (name, p) in [("tls_cert", &cert), ("tls_key", &key)] {
+                    if !p.is_file() {
+                        self.problem(s.key(name), format!("{} is not a readable file", p.display()));
+                    }
+                }
+                Some(TlsConfig { cert, key })
+            }
+            (None, None) => None,
+            _ => {
+                self.problem(s.key("tls_cert"), "tls_cert and tls_key must be given together");
+                None
+            }
+        }
+    }
+
+    /// Plain TCP on a non-loopback address needs an explicit `allow_plain_remote = true`.
+    fn plain_remote_check(&mut self, s: &mut Section, listen: SocketAddr, tls: &Option<TlsConfig>) {
+        let allow: bool = self.get(s, "allow_plain_remote", false);
+        if tls.is_none() && !listen.ip().is_loopback() && !allow {
+            self.problem(
+                s.key("listen"),
+                format!("{listen} is not loopback and no TLS is configured; set tls_cert/tls_key or allow_plain_remote = true"),
+            );
+        }
+    }
+
+    fn compile(&mut self, root: Table) -> Option<Config> {
+        let mut top = Section { prefix: String::new(), table: root };
+
+        let mut d = self.section(&mut top, "daemon");
+        let state_dir: String = self.get(&mut d, "state_dir", "/var/lib/glint".to_string());
+        let log_level: String = self.get(&mut d, "log_level", "info".to_string());
+        if tracing_subscriber::EnvFilter::try_new(&log_level).is_err() {
+            self.problem(d.key("log_level"), format!("'{log_level}' is not a log filter (e.g. info, glint=debug)"));
+        }
+        let fmt_text: String = self.get(&mut d, "log_format", "text".to_string());
+        let log_format = match fmt_text.as_str() {
+            "text" => LogFormat::Text,
+            "json" => LogFormat::Json,
+            other => {
+                self.problem(d.key("log_format"), format!("'{other}' is not one of text, json"));
+                LogFormat::Text
+            }
+        };
+        let max_frame_bytes = self.nonzero(&mut d, "max_frame_bytes", glint_wire::framing::DEFAULT_MAX_FRAME_BYTES);
+        if max_frame_bytes.get() > 256 * 1024 * 1024 {
+            self.problem(d.key("max_frame_bytes"), "must be at most 268435456 (256 MiB)");
+        }
+        let shutdown_deadline = self.seconds(&mut d, "shutdown_deadline_s", 10.0);
+        let state_save_interval = self.seconds(&mut d, "state_save_interval_s", 300.0);
+        let daemon = DaemonConfig {
+            state_dir: self.path(&expand_tmp(&state_dir)),
+            log_level,
+            log_format,
+            max_frame_bytes: max_frame_bytes.get(),
+            shutdown_deadline,
+            state_save_interval,
+        };
+        self.finish(d);
+
+        let mut s = self.section(&mut top, "ingest");
+        let listen = self.addr(&mut s, "listen", "127.0.0.1:7601");
+        let tls = self.tls(&mut s);
+        self.plain_remote_check(&mut s, listen, &tls);
+        let ingest = IngestConfig {
+            listen,
+            tls,
+            queue_batches: self.nonzero(&mut s, "queue_batches", 256),
+            ack_every: self.nonzero(&mut s, "ack_every", 16),
+            record: self.get(&mut s, "record", false),
+            record_rotate_bytes: self.get::<i64>(&mut s, "record_rotate_bytes", 256 << 20).max(1) as u64,
+            record_rotate: self.seconds(&mut s, "record_rotate_s", 3600.0),
+        };
+        self.finish(s);
+
+        let mut s = self.section(&mut top, "subscribers");
+        let listen = self.addr(&mut s, "listen", "127.0.0.1:7602");
+        let tls = self.tls(&mut s);
+        self.plain_remote_check(&mut s, listen, &tls);
+        let mut tokens = Vec::new();
+        let inline: Vec<String> = self.get(&mut s, "tokens", Vec::new());
+        for (i, t) in inline.into_iter().enumerate() {
+            tokens.extend(self.check_secret(s.key(&format!("tokens[{i}]")), t));
+        }
+        let files: Vec<String> = self.get(&mut s, "token_files", Vec::new());
+        for (i, f) in files.into_iter().enumerate() {
+            let p = self.path(&f);
+            match std::fs::read_to_string(&p) {
+                Ok(t) => tokens.extend(self.check_secret(s.key(&format!("token_files[{i}]")), t.trim().into())),
+                Err(e) => self.problem(
+                    s.key(&format!("token_files[{i}]")),
+                    format!("cannot read token file {}: {e}", p.display()),
+                ),
+            }
+        }
+        let operator_token = self.secret(&mut s, "operator_token", false);
+        let subscribers = SubscribersConfig {
+            listen,
+            tls,
+            tokens,
+            operator_token,
+            heartbeat: self.seconds(&mut s, "heartbeat_s", 5.0),
+            unwritable_timeout: self.seconds(&mut s, "unwritable_timeout_s", 30.0),
+            max_connections: self.nonzero(&mut s, "max_connections", 256),
+        };
+        self.finish(s);
+
+        let mut s = self.section(&mut top, "journal");
+        let journal = JournalConfig {
+            segment_bytes: self.get::<i64>(&mut s, "segment_bytes", 64 << 20).max(4096) as u64,
+            retention: self.seconds(&mut s, "retention_days", 90.0) * 86_400,
+        };
+        self.finish(s);
+
+        let mut s = self.section(&mut top, "metrics");
+        let m: String = self.get(&mut s, "listen", String::new());
+        let metrics_listen = if m.is_empty() {
+            None
+        } else {
+            match m.parse::<SocketAddr>() {
+                Ok(a) => Some(a),
+                Err(e) => {
+                    self.problem(s.key("listen"), format!("'{m}' is not an address ({e})"));
+                    None
+                }
+            }
+        };
+        self.finish(s);
+
+        let mut instruments = Vec::new();
+        match top.table.remove("instrument") {
+            Some(Value::Array(items)) => {
+                for (i, item) in items.into_iter().enumerate() {
+                    let prefix = format!("instrument[{i}]");
+                    match item {
+                        Value::Table(t) => {
+                            if let Some(inst) = self.instrument(Section { prefix, table: t }) {
+                                instruments.push(inst);
+                            }
+                        }
+                        other => self.problem(prefix, format!("expected a table, found {}", other.type_str())),
+                    }
+                }
+            }
+            Some(other) => self.problem("instrument", format!("expected [[instrument]] tables, found {}", other.type_str())),
+            None => {}
+        }
+        if instruments.is_empty() && !self.problems.iter().any(|p| p.key.starts_with("instrument")) {
+            self.problem("instrument", "at least one [[instrument]] is required");
+        }
+        let mut seen = BTreeMap::new();
+        for (i, inst) in instruments.iter().enumerate() {
+            if let Some(j) = seen.insert(inst.id.clone(), i) {
+                self.problem(format!("instrument[{i}].id"), format!("'{}' is already used by instrument[{j}]", inst.id));
+            }
+        }
+        self.finish(top);
+
+        Some(Config { source_name: String::new(), daemon, ingest, subscribers, journal, metrics_listen, instruments })
+    }
+
+    fn instrument(&mut self, mut s: Section) -> Option<InstrumentConfig> {
+        let id: Option<String> = self.required(&mut s, "id");
+        if let Some(id) = &id {
+            if id.is_empty() || !id.chars().all(|c| c.is_ascii_alphanumeric() || c == '-' || c == '_') {
+                self.problem(s.key("id"), format!("'{id}' must be non-empty ASCII letters, digits, '-' or '_'"));
+            }
+        }
+        let token = self.secret(&mut s, "token", true);
+        let spec = self.instrument_spec(&mut s);
+
+        let mut q = self.section(&mut s, "search");
+        let ladder_s: Vec<f64> = self.get(&mut q, "ladder_s", vec![0.01, 0.03, 0.1, 0.3, 1.0, 3.0, 10.0, 30.0]);
+        if ladder_s.is_empty() || ladder_s.len() > 32 {
+            self.problem(q.key("ladder_s"), "needs 1 to 32 timescales");
+        }
+        if ladder_s.iter().any(|t| !(t.is_finite() && *t >= 1e-4 && *t <= 3600.0)) {
+            self.problem(q.key("ladder_s"), "every timescale must lie in [0.0001, 3600] seconds");
+        }
+        if ladder_s.windows(2).any(|w| w[1] <= w[0]) {
+            self.problem(q.key("ladder_s"), "timescales must be strictly increasing");
+        }
+        let search_radius_deg: f64 = self.get(&mut q, "search_radius_deg", 0.5);
+        self.in_range(&q, "search_radius_deg", search_radius_deg, 0.01, 10.0);
+        let far_per_year: f64 = self.get(&mut q, "far_per_year", 1.0);
+        self.positive(&q, "far_per_year", far_per_year);
+        let rate_window_s: f64 = self.get(&mut q, "rate_window_s", 60.0);
+        self.positive(&q, "rate_window_s", rate_window_s);
+        let acceptance_tau_s: f64 = self.get(&mut q, "acceptance_tau_s", 6.0 * 3600.0);
+        self.positive(&q, "acceptance_tau_s", acceptance_tau_s);
+        let warmup: i64 = self.get(&mut q, "warmup_photons", 20_000);
+        if warmup < 0 {
+            self.problem(q.key("warmup_photons"), format!("{warmup} must be >= 0"));
+        }
+        let acceptance_prior: bool = self.get(&mut q, "acceptance_prior", true);
+        let reorder_tolerance_s: f64 = self.get(&mut q, "reorder_tolerance_s", 0.02);
+        self.in_range(&q, "reorder_tolerance_s", reorder_tolerance_s, 0.0, 60.0);
+        let max_clock_jump_s: f64 = self.get(&mut q, "max_clock_jump_s", 3600.0);
+        self.positive(&q, "max_clock_jump_s", max_clock_jump_s);
+        let search = SearchConfig {
+            ladder_s,
+            search_radius_deg,
+            far_per_year,
+            rate_window_s,
+            acceptance_tau_s,
+            warmup_photons: warmup.max(0) as u64,
+            acceptance_prior,
+            reorder_tolerance_s,
+            max_clock_jump_s,
+        };
+        self.finish(q);
+
+        let mut a = self.section(&mut s, "assess");
+        let mut num = |r: &mut Self, k: &str, default: f64, lo: f64, hi: f64| {
+            let v: f64 = r.get(&mut a, k, default);
+            r.in_range(&a, k, v, lo, hi)
+        };
+        let assess = AssessSettings {
+            persistence_min_s: num(self, "persistence_min_s", 30.0, 0.1, 86_400.0),
+            persistence_timescale_factor: num(self, "persistence_timescale_factor", 10.0, 1.0, 1000.0),
+            pre_window_s: num(self, "pre_window_s", 30.0, 0.0, 3600.0),
+            post_sigma_max: num(self, "post_sigma_max", 3.0, 0.0, 100.0),
+            pre_sigma_max: num(self, "pre_sigma_max", 3.0, 0.0, 100.0),
+            all_sky_sigma_max: num(self, "all_sky_sigma_max", 5.0, 0.0, 100.0),
+            identical_fraction_max: num(self, "identical_fraction_max", 0.5, 0.0, 1.0),
+            spread_ratio_max: num(self, "spread_ratio_max", 2.5, 1.0, 100.0),
+            max_dead_fraction: num(self, "max_dead_fraction", 0.1, 0.0, 1.0),
+        };
+        self.finish(a);
+        self.finish(s);
+
+        let (id, token, spec) = (id?, token?, spec?);
+        let response = match InstrumentResponse::from_spec(&spec.response) {
+            Ok(r) => r,
+            Err(e) => {
+                self.problem(format!("instrument[{id}].response"), e.to_string());
+                return None;
+            }
+        };
+        Some(InstrumentConfig { id, token, spec, response, search, assess })
+    }
+
+    /// The instrument block: inline `site`/`response`/`background` tables, or `spec_file` naming a file (or
+    /// `builtin:NAME`) that holds them.
+    fn instrument_spec(&mut self, s: &mut Section) -> Option<InstrumentSpec> {
+        let spec_file: Option<String> = self.opt(s, "spec_file");
+        let inline: Vec<&str> =
+            ["site", "response", "background"].into_iter().filter(|k| s.table.contains_key(*k)).collect();
+        let (table, origin) = match spec_file {
+            Some(f) => {
+                if !inline.is_empty() {
+                    self.problem(s.key("spec_file"), format!("give spec_file or inline tables ({}), not both", inline.join(", ")));
+                    return None;
+                }
+                let (text, origin) = if let Some(name) = f.strip_prefix("builtin:") {
+                    match builtin_instrument(name) {
+                        Some(t) => (t.to_string(), f.clone()),
+                        None => {
+                            let known: Vec<_> = BUILTIN_INSTRUMENTS.iter().map(|(n, _)| *n).collect();
+                            self.problem(s.key("spec_file"), format!("no built-in instrument '{name}' (known: {})", known.join(", ")));
+                            return None;
+                        }
+                    }
+                } else {
+                    let p = self.path(&f);
+                    match std::fs::read_to_string(&p) {
+                        Ok(t) => (t, p.display().to_string()),
+                        Err(e) => {
+                            self.problem(s.key("spec_file"), format!("cannot read {}: {e}", p.display()));
+                            return None;
+                        }
+                    }
+                };
+                match text.parse::<Table>() {
+                    Ok(t) => (t, origin),
+                    Err(e) => {
+                        self.problem(s.key("spec_file"), format!("{origin}: {}", e.to_string().trim()));
+                        return None;
+                    }
+                }
+            }
+            None => {
+                let mut t = Table::new();
+                for k in ["site", "response", "background"] {
+                    if let Some(v) = s.table.remove(k) {
+                        t.insert(k.to_string(), v);
+                    }
+                }
+                (t, String::new())
+            }
+        };
+        let key = if origin.is_empty() { s.prefix.clone() } else { format!("{} ({origin})", s.prefix) };
+        match Value::Table(table).try_into::<InstrumentSpec>() {
+            Ok(spec) => {
+                let mut probs = Vec::new();
+                if spec.check(&key, &mut probs) {
+                    Some(spec)
+                } else {
+                    for p in probs {
+                        self.problem(p.key, p.message);
+                    }
+                    None
+                }
+            }
+            Err(e) => {
+                self.problem(key, e.to_string().trim().replace('\n', " "));
+                None
+            }
+        }
+    }
+}
+
+/// `$TMPDIR` in `state_dir` expands to the system's temporary directory, so the embedded default works for
+/// any user.
+fn expand_tmp(p: &str) -> String {
+    p.replace("$TMPDIR", &std::env::temp_dir().display().to_string())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn embedded_default_compiles() {
+        let c = Config::from_toml(EMBEDDED_DEFAULT, "<embedded default>", Path::new("."), false)
+            .unwrap_or_else(|e| panic!("{e}"));
+        assert_eq!(c.instruments.len(), 1);
+        assert!(c.ingest.listen.ip().is_loopback());
+        assert!(c.subscribers.listen.ip().is_loopback());
+        assert_eq!(c.instruments[0].search.ladder_s.len(), 8);
+    }
+
+    #[test]
+    fn every_problem_is_reported_at_once() {
+        let text = r#"
+            [daemon]
+            log_format = "xml"
+            bogus = 1
+            [ingest]
+            listen = "not-an-address"
+            queue_batches = "many"
+            [[instrument]]
+            id = "a b"
+            token_file = "/nonexistent/glint-token"
+            spec_file = "builtin:ventisca-array"
+            [instrument.search]
+            far_per_year = -1.0
+            ladder_s = [1.0, 0.5]
+        "#;
+        let e = Config::from_toml(text, "broken.toml", Path::new("."), false).expect_err("must fail");
+        let keys: Vec<&str> = e.problems.iter().map(|p| p.key.as_str()).collect();
+        for k in [
+            "daemon.log_format",
+            "daemon.bogus",
+            "ingest.listen",
+            "ingest.queue_batches",
+            "instrument[0].id",
+            "instrument[0].token_file",
+            "instrument[0].search.far_per_year",
+            "instrument[0].search.ladder_s",
+        ] {
+            assert!(keys.contains(&k), "missing problem for {k}; got {keys:?}");
+        }
+        let shown = e.to_string();
+        assert!(shown.contains("broken.toml: daemon.bogus: unknown key"), "{shown}");
+    }
+
+    #[test]
+    fn plain_remote_listener_needs_explicit_permission() {
+        let text = EMBEDDED_DEFAULT.replace("listen = \"127.0.0.1:7601\"", "listen = \"0.0.0.0:7601\"");
+        let e = Config::from_toml(&text, "x.toml", Path::new("."), false).expect_err("must fail");
+        assert!(e.problems.iter().any(|p| p.key == "ingest.listen" && p.message.contains("TLS")), "{e}");
+        let ok = text.replace("[ingest]", "[ingest]\nallow_plain_remote = true");
+        Config::from_toml(&ok, "x.toml", Path::new("."), false).unwrap_or_else(|e| panic!("{e}"));
+    }
+}
