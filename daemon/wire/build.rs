@@ -5,7 +5,10 @@ use std::path::PathBuf;
 
 fn main() -> Result<(), Box<dyn std::error::Error>> {
     let root = PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("../../proto");
-    let files = [root.join("glint/v1/ingest.proto"), root.join("glint/v1/alert.proto")];
+    let files = [
+        root.join("glint/v1/ingest.proto"),
+        root.join("glint/v1/alert.proto"),
+    ];
     for f in &files {
         println!("cargo:rerun-if-changed={}", f.display());
     }

@@ -63,7 +63,6 @@ def main() -> None:
             t = Time(iso, scale="utc", location=loc)
             t.delta_ut1_utc = 0.0
             # GPS seconds since 1980-01-06T00:00:00 UTC = TAI - 19 s.
-            gps_ns = int(round((t.tai.jd1 - 2444244.5 + t.tai.jd2) * 86400.0 * 1e9)) - 19_000_000_000
             gps_ns = int(round((t.tai - Time("1980-01-06T00:00:19", scale="tai")).to_value(u.s) * 1e9))
             gmst = t.sidereal_time("mean", longitude=0.0 * u.deg, model="IAU2006").deg
             frame = AltAz(obstime=t, location=loc, pressure=0.0 * u.hPa)

@@ -4,7 +4,6 @@
 use std::path::PathBuf;
 use std::process::ExitCode;
 
-use anyhow::Context;
 use clap::{Parser, Subcommand};
 
 use crate::config::Config;
@@ -17,7 +16,12 @@ pub(crate) const EXIT_CONFIG: u8 = 2;
 /// glint finds the final gamma-ray flashes of evaporating black holes in live photon streams and alerts
 /// within milliseconds.
 #[derive(Debug, Parser)]
-#[command(name = "glint", version, about, after_help = "Exit codes: 0 success, 1 error while running, 2 configuration problems.")]
+#[command(
+    name = "glint",
+    version,
+    about,
+    after_help = "Exit codes: 0 success, 1 error while running, 2 configuration problems."
+)]
 pub(crate) struct Cli {
     #[command(subcommand)]
     command: Command,
@@ -26,13 +30,18 @@ pub(crate) struct Cli {
 #[derive(Debug, Subcommand)]
 enum Command {
     /// Check a configuration file and list every problem in it.
-    CheckConfig {
-        /// The file to check; the embedded default when omitted.
-        file: Option<PathBuf>,
-    },
+    CheckConfig(CheckConfigArgs),
 }
 
-/// Loads the configuration named on the command line, or the embedded default.
+/// Arguments of `glint check-config`.
+#[derive(Debug, clap::Args)]
+struct CheckConfigArgs {
+    /// The file to check; the embedded default when omitted.
+    file: Option<PathBuf>,
+}
+
+/// Loads the configuration named on the command line, or the embedded default. A configuration that does not
+/// compile is printed with every problem and turned into exit code 2 by the caller.
 pub(crate) fn load_config(path: Option<&PathBuf>) -> Result<Config, crate::config::ConfigError> {
     match path {
         Some(p) => Config::load(p),
@@ -40,24 +49,37 @@ pub(crate) fn load_config(path: Option<&PathBuf>) -> Result<Config, crate::confi
     }
 }
 
+/// Error type that carries the exit code for a configuration that does not compile.
+#[derive(Debug, thiserror::Error)]
+#[error("{0}")]
+pub(crate) struct BadConfig(pub(crate) crate::config::ConfigError);
+
+/// Loads the configuration or returns a `BadConfig` error (exit code 2).
+pub(crate) fn config_or_exit(path: Option<&PathBuf>) -> anyhow::Result<Config> {
+    load_config(path).map_err(|e| BadConfig(e).into())
+}
+
 /// Runs the chosen subcommand.
 pub(crate) fn dispatch(cli: Cli) -> anyhow::Result<ExitCode> {
-    match cli.command {
-        Command::CheckConfig { file } => match load_config(file.as_ref()) {
-            Ok(cfg) => {
-                println!(
-                    "{}: ok ({} instrument(s): {})",
-                    cfg.source_name,
-                    cfg.instruments.len(),
-                    cfg.instruments.iter().map(|i| i.id.as_str()).collect::<Vec<_>>().join(", ")
-                );
-                Ok(ExitCode::SUCCESS)
-            }
-            Err(e) => {
-                eprintln!("{e}");
-                Ok(ExitCode::from(EXIT_CONFIG))
-            }
-        },
+    let result = match cli.command {
+        Command::CheckConfig(a) => check_config(&a),
+    };
+    match result {
+        Err(e) if e.downcast_ref::<BadConfig>().is_some() => {
+            eprintln!("{e}");
+            Ok(ExitCode::from(EXIT_CONFIG))
+        }
+        other => other,
     }
-    .context("running glint")
+}
+
+fn check_config(a: &CheckConfigArgs) -> anyhow::Result<ExitCode> {
+    let cfg = config_or_exit(a.file.as_ref())?;
+    println!(
+        "{}: ok ({} instrument(s): {})",
+        cfg.source_name,
+        cfg.instruments.len(),
+        cfg.instruments.iter().map(|i| i.id.as_str()).collect::<Vec<_>>().join(", ")
+    );
+    Ok(ExitCode::SUCCESS)
 }

@@ -46,7 +46,9 @@ impl FrameError {
     pub fn refusal_code(&self) -> RefusalCode {
         match self {
             Self::TooLarge { .. } => RefusalCode::FrameTooLarge,
-            Self::BadLengthPrefix | Self::Malformed(_) | Self::BufferFull { .. } => RefusalCode::MalformedFrame,
+            Self::BadLengthPrefix | Self::Malformed(_) | Self::BufferFull { .. } => {
+                RefusalCode::MalformedFrame
+            }
         }
     }
 }
@@ -77,7 +79,10 @@ pub fn frame_header(buf: &[u8], max_frame: usize) -> Result<Option<FrameHeader>,
     };
     match usize::try_from(len) {
         Ok(body_len) if body_len <= max_frame => Ok(Some(FrameHeader { prefix_len, body_len })),
-        _ => Err(FrameError::TooLarge { size: len, max: max_frame }),
+        _ => Err(FrameError::TooLarge {
+            size: len,
+            max: max_frame,
+        }),
     }
 }
 
@@ -115,7 +120,10 @@ pub fn frame_len<M: Message>(msg: &M) -> usize {
 pub fn encode_frame<M: Message>(msg: &M, max_frame: usize, out: &mut impl BufMut) -> Result<(), FrameError> {
     let body = msg.encoded_len();
     if body > max_frame {
-        return Err(FrameError::TooLarge { size: body as u64, max: max_frame });
+        return Err(FrameError::TooLarge {
+            size: body as u64,
+            max: max_frame,
+        });
     }
     let needed = prost::length_delimiter_len(body) + body;
     let remaining = out.remaining_mut();
@@ -123,7 +131,8 @@ pub fn encode_frame<M: Message>(msg: &M, max_frame: usize, out: &mut impl BufMut
         return Err(FrameError::BufferFull { needed, remaining });
     }
     // Cannot fail: capacity was checked above, and that is prost's only encode error.
-    msg.encode_length_delimited(out).map_err(|_| FrameError::BufferFull { needed, remaining })
+    msg.encode_length_delimited(out)
+        .map_err(|_| FrameError::BufferFull { needed, remaining })
 }
 
 /// Decodes one frame from the start of `buf`.
@@ -194,6 +203,7 @@ impl FrameDecoder {
 }
 
 #[cfg(test)]
+#[allow(clippy::unwrap_used)] // tests may unwrap: a panic is the failure report
 mod tests {
     use super::*;
     use crate::pb;
@@ -294,7 +304,13 @@ mod tests {
         // A huge 64-bit length is refused too, with the announced size.
         let huge = [0xff, 0xff, 0xff, 0xff, 0xff, 0xff, 0xff, 0xff, 0xff, 0x01];
         let err = decode_frame::<pb::ProducerFrame>(&huge, 4).unwrap_err();
-        assert_eq!(err, FrameError::TooLarge { size: u64::MAX, max: 4 });
+        assert_eq!(
+            err,
+            FrameError::TooLarge {
+                size: u64::MAX,
+                max: 4
+            }
+        );
     }
 
     #[test]
@@ -305,28 +321,55 @@ mod tests {
         let body = frame.encoded_len();
         let mut out = Vec::new();
         let err = encode_frame(&frame, body - 1, &mut out).unwrap_err();
-        assert_eq!(err, FrameError::TooLarge { size: body as u64, max: body - 1 });
+        assert_eq!(
+            err,
+            FrameError::TooLarge {
+                size: body as u64,
+                max: body - 1
+            }
+        );
         assert!(out.is_empty());
         let mut small = [0u8; 16];
         let err = encode_frame(&frame, body, &mut &mut small[..]).unwrap_err();
-        assert_eq!(err, FrameError::BufferFull { needed: frame_len(&frame), remaining: 16 });
+        assert_eq!(
+            err,
+            FrameError::BufferFull {
+                needed: frame_len(&frame),
+                remaining: 16
+            }
+        );
     }
 
     #[test]
     fn malformed_varints_are_errors() {
         // Eleven continuation bytes: never terminates within ten.
         let endless = [0x80u8; 11];
-        assert_eq!(decode_frame::<pb::ProducerFrame>(&endless, 100), Err(FrameError::BadLengthPrefix));
+        assert_eq!(
+            decode_frame::<pb::ProducerFrame>(&endless, 100),
+            Err(FrameError::BadLengthPrefix)
+        );
         // Exactly ten continuation bytes is already known bad.
-        assert_eq!(decode_frame::<pb::ProducerFrame>(&endless[..10], 100), Err(FrameError::BadLengthPrefix));
+        assert_eq!(
+            decode_frame::<pb::ProducerFrame>(&endless[..10], 100),
+            Err(FrameError::BadLengthPrefix)
+        );
         // Nine is still "wait for more".
         assert_eq!(decode_frame::<pb::ProducerFrame>(&endless[..9], 100), Ok(None));
         // The tenth byte may only carry bit 63.
         let mut overflow = [0xffu8; 10];
         overflow[9] = 0x02;
-        assert_eq!(decode_frame::<pb::ProducerFrame>(&overflow, 100), Err(FrameError::BadLengthPrefix));
+        assert_eq!(
+            decode_frame::<pb::ProducerFrame>(&overflow, 100),
+            Err(FrameError::BadLengthPrefix)
+        );
         // Non-minimal but valid: 0x85 0x00 is 5.
-        assert_eq!(frame_header(&[0x85, 0x00], 100).unwrap(), Some(FrameHeader { prefix_len: 2, body_len: 5 }));
+        assert_eq!(
+            frame_header(&[0x85, 0x00], 100).unwrap(),
+            Some(FrameHeader {
+                prefix_len: 2,
+                body_len: 5
+            })
+        );
     }
 
     #[test]
@@ -334,7 +377,9 @@ mod tests {
         // Field 1 (hello), wire type 2, announcing 5 bytes inside a 2-byte body.
         let buf = [0x02, 0x0a, 0x05];
         let err = decode_frame::<pb::ProducerFrame>(&buf, 100).unwrap_err();
-        let FrameError::Malformed(inner) = &err else { panic!("expected Malformed, got {err:?}") };
+        let FrameError::Malformed(inner) = &err else {
+            panic!("expected Malformed, got {err:?}")
+        };
         assert!(err.to_string().contains(&inner.to_string()));
         assert_eq!(err.refusal_code(), RefusalCode::MalformedFrame);
         // The decoder still consumes the malformed frame, keeping the stream in step.
@@ -343,6 +388,9 @@ mod tests {
         let dec = FrameDecoder::new(100);
         assert!(dec.decode_from::<pb::ProducerFrame>(&mut src).is_err());
         assert_eq!(&src[..], &[0x00]);
-        assert_eq!(dec.decode_from::<pb::ProducerFrame>(&mut src).unwrap(), Some(pb::ProducerFrame::default()));
+        assert_eq!(
+            dec.decode_from::<pb::ProducerFrame>(&mut src).unwrap(),
+            Some(pb::ProducerFrame::default())
+        );
     }
 }

@@ -88,11 +88,19 @@ pub enum RecordingError {
 }
 
 fn hex(bytes: &[u8]) -> String {
-    bytes.iter().map(|b| format!("{b:02x}")).collect::<Vec<_>>().join(" ")
+    bytes
+        .iter()
+        .map(|b| format!("{b:02x}"))
+        .collect::<Vec<_>>()
+        .join(" ")
 }
 
-fn io_err(path: &Path, action: &'static str) -> impl FnOnce(io::Error) -> RecordingError + '_ {
-    move |source| RecordingError::Io { path: path.to_path_buf(), action, source }
+fn io_err<'a>(path: &'a Path, action: &'static str) -> impl FnOnce(io::Error) -> RecordingError + 'a {
+    move |source| RecordingError::Io {
+        path: path.to_path_buf(),
+        action,
+        source,
+    }
 }
 
 /// How a recording's bytes are stored.
@@ -107,7 +115,11 @@ pub enum Compression {
 impl Compression {
     /// [`Compression::Zstd`] at [`DEFAULT_ZSTD_LEVEL`] for a path ending in `.zst`, else none.
     pub fn from_path(path: &Path) -> Self {
-        if path.extension().is_some_and(|e| e == "zst") { Self::Zstd(DEFAULT_ZSTD_LEVEL) } else { Self::None }
+        if path.extension().is_some_and(|e| e == "zst") {
+            Self::Zstd(DEFAULT_ZSTD_LEVEL)
+        } else {
+            Self::None
+        }
     }
 
     /// File-name suffix for this compression: `.glrec` or `.glrec.zst`.
@@ -153,6 +165,7 @@ pub struct RecordingWriter<W: Write> {
     scratch: Vec<u8>,
     bytes: u64,
     frames: u64,
+    failed: bool,
 }
 
 impl<W: Write> std::fmt::Debug for RecordingWriter<W> {
@@ -175,7 +188,11 @@ impl RecordingWriter<File> {
     }
 
     fn create_new(path: &Path, compression: Compression) -> Result<Self, RecordingError> {
-        let file = OpenOptions::new().write(true).create_new(true).open(path).map_err(io_err(path, "create"))?;
+        let file = OpenOptions::new()
+            .write(true)
+            .create_new(true)
+            .open(path)
+            .map_err(io_err(path, "create"))?;
         Self::new(file, compression, path)
     }
 }
@@ -191,7 +208,14 @@ impl<W: Write> RecordingWriter<W> {
                 Sink::Zstd(zstd::Encoder::new(buffered, level).map_err(io_err(&path, "start compressing"))?)
             }
         };
-        let mut w = Self { sink: Some(sink), path, scratch: Vec::new(), bytes: 0, frames: 0 };
+        let mut w = Self {
+            sink: Some(sink),
+            path,
+            scratch: Vec::new(),
+            bytes: 0,
+            frames: 0,
+            failed: false,
+        };
         let mut header = [0u8; HEADER_LEN as usize];
         header[..8].copy_from_slice(&MAGIC);
         header[8..].copy_from_slice(&FORMAT_VERSION.to_le_bytes());
@@ -200,12 +224,22 @@ impl<W: Write> RecordingWriter<W> {
     }
 
     fn write_raw(&mut self, bytes: &[u8]) -> Result<(), RecordingError> {
-        let sink = self.sink.as_mut().ok_or_else(|| RecordingError::Io {
+        let refuse = |why: &str| RecordingError::Io {
             path: self.path.clone(),
             action: "write",
-            source: io::Error::other("the recording was already finished"),
-        })?;
-        sink.writer().write_all(bytes).map_err(io_err(&self.path, "write"))?;
+            source: io::Error::other(why),
+        };
+        if self.failed {
+            return Err(refuse("an earlier write failed, so the recording ends there"));
+        }
+        let Some(sink) = self.sink.as_mut() else {
+            return Err(refuse("the recording was already finished"));
+        };
+        if let Err(e) = sink.writer().write_all(bytes) {
+            // A frame may be half written: appending more would hide the damage mid-file.
+            self.failed = true;
+            return Err(io_err(&self.path, "write")(e));
+        }
         self.bytes += bytes.len() as u64;
         Ok(())
     }
@@ -218,7 +252,11 @@ impl<W: Write> RecordingWriter<W> {
         let encoded = framing::encode_frame(frame, usize::MAX, &mut scratch);
         let result = match encoded {
             Ok(()) => self.write_raw(&scratch),
-            Err(source) => Err(RecordingError::Frame { path: self.path.clone(), offset: self.bytes, source }),
+            Err(source) => Err(RecordingError::Frame {
+                path: self.path.clone(),
+                offset: self.bytes,
+                source,
+            }),
         };
         self.scratch = scratch;
         result?;
@@ -317,12 +355,25 @@ impl RotatingWriter {
         }
         fs::create_dir_all(&dir).map_err(io_err(&dir, "create directory"))?;
         let next_seq = next_free_seq(&dir, &prefix)?;
-        Ok(Self { dir, prefix, compression, policy, header: None, current: None, opened_ns: 0, next_seq })
+        Ok(Self {
+            dir,
+            prefix,
+            compression,
+            policy,
+            header: None,
+            current: None,
+            opened_ns: 0,
+            next_seq,
+        })
     }
 
     /// Writes `frame` (normally the producer's `Hello`) now, and registers it to start every file opened
     /// after this call. Replaces an earlier header frame. Do not also pass it to `write_frame`.
-    pub fn set_header(&mut self, frame: ProducerFrame, now_ns: i64) -> Result<Option<PathBuf>, RecordingError> {
+    pub fn set_header(
+        &mut self,
+        frame: ProducerFrame,
+        now_ns: i64,
+    ) -> Result<Option<PathBuf>, RecordingError> {
         // Unset first so a file opened by this very write does not get the frame twice.
         self.header = None;
         let closed = self.write_frame(&frame, now_ns)?;
@@ -339,9 +390,15 @@ impl RotatingWriter {
     ) -> Result<Option<PathBuf>, RecordingError> {
         let mut closed = None;
         if let Some(cur) = &self.current {
-            let by_size = self.policy.max_bytes.is_some_and(|m| cur.bytes_written() >= m.get());
+            let by_size = self
+                .policy
+                .max_bytes
+                .is_some_and(|m| cur.bytes_written() >= m.get());
             let age = i128::from(now_ns) - i128::from(self.opened_ns);
-            let by_time = self.policy.max_duration_ns.is_some_and(|m| age >= i128::from(m.get()));
+            let by_time = self
+                .policy
+                .max_duration_ns
+                .is_some_and(|m| age >= i128::from(m.get()));
             if by_size || by_time {
                 closed = self.close_current()?;
             }
@@ -355,7 +412,12 @@ impl RotatingWriter {
     }
 
     fn open_next(&mut self, now_ns: i64) -> Result<&mut RecordingWriter<File>, RecordingError> {
-        let name = format!("{}-{:06}{}", self.prefix, self.next_seq, self.compression.suffix());
+        let name = format!(
+            "{}-{:06}{}",
+            self.prefix,
+            self.next_seq,
+            self.compression.suffix()
+        );
         let path = self.dir.join(name);
         let mut w = RecordingWriter::create_new(&path, self.compression)?;
         self.next_seq += 1;
@@ -402,11 +464,17 @@ fn next_free_seq(dir: &Path, prefix: &str) -> Result<u64, RecordingError> {
     for entry in fs::read_dir(dir).map_err(io_err(dir, "list"))? {
         let entry = entry.map_err(io_err(dir, "list"))?;
         let name = entry.file_name();
-        let Some(rest) = name.to_str().and_then(|n| n.strip_prefix(prefix)).and_then(|r| r.strip_prefix('-'))
+        let Some(rest) = name
+            .to_str()
+            .and_then(|n| n.strip_prefix(prefix))
+            .and_then(|r| r.strip_prefix('-'))
         else {
             continue;
         };
-        let Some(digits) = rest.strip_suffix(".glrec").or_else(|| rest.strip_suffix(".glrec.zst")) else {
+        let Some(digits) = rest
+            .strip_suffix(".glrec")
+            .or_else(|| rest.strip_suffix(".glrec.zst"))
+        else {
             continue;
         };
         if let Ok(seq) = digits.parse::<u64>() {
@@ -482,7 +550,15 @@ impl<R: Read> RecordingReader<R> {
         } else {
             Source::Plain(BufReader::new(chained))
         };
-        let mut r = Self { source, path, max_frame, compressed, offset: 0, scratch: Vec::new(), done: false };
+        let mut r = Self {
+            source,
+            path,
+            max_frame,
+            compressed,
+            offset: 0,
+            scratch: Vec::new(),
+            done: false,
+        };
         r.read_header()?;
         Ok(r)
     }
@@ -494,10 +570,16 @@ impl<R: Read> RecordingReader<R> {
         found.copy_from_slice(&header[..8]);
         let magic_len = got.min(MAGIC.len());
         if header[..magic_len] != MAGIC[..magic_len] {
-            return Err(RecordingError::NotARecording { path: self.path.clone(), found });
+            return Err(RecordingError::NotARecording {
+                path: self.path.clone(),
+                found,
+            });
         }
         if got < header.len() {
-            return Err(RecordingError::Truncated { path: self.path.clone(), offset: 0 });
+            return Err(RecordingError::Truncated {
+                path: self.path.clone(),
+                offset: 0,
+            });
         }
         let version = u32::from_le_bytes([header[8], header[9], header[10], header[11]]);
         if version != FORMAT_VERSION {
@@ -515,9 +597,16 @@ impl<R: Read> RecordingReader<R> {
     /// means the file was cut short.
     fn read_error(&self, e: io::Error, frame_start: u64) -> RecordingError {
         if e.kind() == io::ErrorKind::UnexpectedEof {
-            RecordingError::Truncated { path: self.path.clone(), offset: frame_start }
+            RecordingError::Truncated {
+                path: self.path.clone(),
+                offset: frame_start,
+            }
         } else {
-            RecordingError::Io { path: self.path.clone(), action: "read", source: e }
+            RecordingError::Io {
+                path: self.path.clone(),
+                action: "read",
+                source: e,
+            }
         }
     }
 
@@ -558,14 +647,23 @@ impl<R: Read> RecordingReader<R> {
                 if prefix_len == 0 {
                     return Ok(None);
                 }
-                return Err(RecordingError::Truncated { path: self.path.clone(), offset: start });
+                return Err(RecordingError::Truncated {
+                    path: self.path.clone(),
+                    offset: start,
+                });
             };
             prefix[prefix_len] = byte;
             prefix_len += 1;
             match framing::frame_header(&prefix[..prefix_len], self.max_frame) {
                 Ok(Some(h)) => break h,
                 Ok(None) => {}
-                Err(source) => return Err(RecordingError::Frame { path: self.path.clone(), offset: start, source }),
+                Err(source) => {
+                    return Err(RecordingError::Frame {
+                        path: self.path.clone(),
+                        offset: start,
+                        source,
+                    });
+                }
             }
         };
         // Grow the buffer only as bytes arrive, so a lying length prefix cannot make us allocate the limit.
@@ -578,7 +676,10 @@ impl<R: Read> RecordingReader<R> {
             .read_to_end(&mut self.scratch)
             .map_err(|e| self.read_error(e, start))?;
         if (got as u64) < want {
-            return Err(RecordingError::Truncated { path: self.path.clone(), offset: start });
+            return Err(RecordingError::Truncated {
+                path: self.path.clone(),
+                offset: start,
+            });
         }
         let frame = ProducerFrame::decode(&self.scratch[..]).map_err(|e| RecordingError::Frame {
             path: self.path.clone(),
@@ -626,5 +727,364 @@ fn read_byte(r: &mut dyn BufRead) -> io::Result<Option<u8>> {
             Err(e) if e.kind() == io::ErrorKind::Interrupted => {}
             Err(e) => return Err(e),
         }
+    }
+}
+
+#[cfg(test)]
+#[allow(clippy::unwrap_used)] // tests may unwrap: a panic is the failure report
+mod tests {
+    use super::*;
+    use crate::framing::DEFAULT_MAX_FRAME_BYTES;
+    use crate::pb::producer_frame::Body;
+    use crate::testdata;
+
+    fn frames() -> Vec<ProducerFrame> {
+        let mut v = testdata::producer_frames();
+        for seq in 2..6 {
+            let batch = testdata::full_batch(seq, 1_400_000_000_000_000_000 + seq as i64 * 1_000_000, 25);
+            v.push(ProducerFrame {
+                body: Some(Body::Batch(batch)),
+            });
+        }
+        v
+    }
+
+    fn read_all(path: &Path) -> Vec<ProducerFrame> {
+        RecordingReader::open(path, DEFAULT_MAX_FRAME_BYTES)
+            .unwrap()
+            .map(Result::unwrap)
+            .collect()
+    }
+
+    fn in_memory(compression: Compression, frames: &[ProducerFrame]) -> Vec<u8> {
+        let mut w = RecordingWriter::new(Vec::new(), compression, "mem").unwrap();
+        for f in frames {
+            w.write_frame(f).unwrap();
+        }
+        w.finish().unwrap()
+    }
+
+    #[test]
+    fn plain_and_compressed_files_round_trip() {
+        let dir = tempfile::tempdir().unwrap();
+        let frames = frames();
+        for name in ["a.glrec", "a.glrec.zst"] {
+            let path = dir.path().join(name);
+            let mut w = RecordingWriter::create(&path).unwrap();
+            for f in &frames {
+                w.write_frame(f).unwrap();
+            }
+            assert_eq!(w.frames_written(), frames.len() as u64);
+            let expected_bytes =
+                HEADER_LEN + frames.iter().map(|f| framing::frame_len(f) as u64).sum::<u64>();
+            assert_eq!(w.bytes_written(), expected_bytes);
+            w.finish().unwrap();
+
+            let raw = fs::read(&path).unwrap();
+            let compressed = name.ends_with(".zst");
+            assert_eq!(raw.starts_with(&ZSTD_MAGIC), compressed, "{name}");
+            assert_eq!(raw.starts_with(&MAGIC), !compressed, "{name}");
+            let mut r = RecordingReader::open(&path, DEFAULT_MAX_FRAME_BYTES).unwrap();
+            assert_eq!(r.is_compressed(), compressed);
+            let got: Vec<_> = r.by_ref().map(Result::unwrap).collect();
+            assert_eq!(got, frames);
+            assert_eq!(r.offset(), expected_bytes);
+        }
+    }
+
+    #[test]
+    fn plain_layout_is_magic_version_then_wire_frames() {
+        let frames = frames();
+        let bytes = in_memory(Compression::None, &frames);
+        let mut expected = b"GLINTREC".to_vec();
+        expected.extend_from_slice(&[1, 0, 0, 0]);
+        for f in &frames {
+            expected.extend_from_slice(&f.encode_length_delimited_to_vec());
+        }
+        assert_eq!(bytes, expected);
+        // The compressed form is exactly that stream, zstd-compressed.
+        let z = in_memory(Compression::Zstd(DEFAULT_ZSTD_LEVEL), &frames);
+        assert_eq!(zstd::decode_all(&z[..]).unwrap(), expected);
+    }
+
+    #[test]
+    fn compression_is_sniffed_not_taken_from_the_name() {
+        let dir = tempfile::tempdir().unwrap();
+        let frames = frames();
+        let z_named_plain = dir.path().join("misnamed.glrec");
+        fs::write(&z_named_plain, in_memory(Compression::Zstd(1), &frames)).unwrap();
+        assert_eq!(read_all(&z_named_plain), frames);
+        let plain_named_z = dir.path().join("misnamed.glrec.zst");
+        fs::write(&plain_named_z, in_memory(Compression::None, &frames)).unwrap();
+        assert_eq!(read_all(&plain_named_z), frames);
+    }
+
+    #[test]
+    fn dropped_writer_still_ends_its_file() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("dropped.glrec.zst");
+        let frames = frames();
+        {
+            let mut w = RecordingWriter::create(&path).unwrap();
+            for f in &frames {
+                w.write_frame(f).unwrap();
+            }
+        }
+        assert_eq!(read_all(&path), frames);
+    }
+
+    #[test]
+    fn rotation_by_size_gives_files_that_replay_alone() {
+        let dir = tempfile::tempdir().unwrap();
+        let policy = RotationPolicy {
+            max_bytes: NonZeroU64::new(2000),
+            max_duration_ns: None,
+        };
+        let mut w = RotatingWriter::new(dir.path(), "ventisca", Compression::Zstd(1), policy).unwrap();
+        let hello = testdata::producer_frames().remove(0);
+        assert_eq!(w.set_header(hello.clone(), 0).unwrap(), None);
+        let mut sent = vec![hello.clone()];
+        let mut closed = Vec::new();
+        for seq in 1..=30u64 {
+            let f = ProducerFrame {
+                body: Some(Body::Batch(testdata::full_batch(seq, seq as i64 * 1000, 10))),
+            };
+            closed.extend(w.write_frame(&f, seq as i64).unwrap());
+            sent.push(f);
+        }
+        let last = w.finish().unwrap().unwrap();
+        closed.push(last);
+
+        let mut files: Vec<PathBuf> = fs::read_dir(dir.path())
+            .unwrap()
+            .map(|e| e.unwrap().path())
+            .collect();
+        files.sort();
+        assert_eq!(files, closed, "returned paths are the files, in order");
+        assert!(files.len() >= 3, "expected several files, got {}", files.len());
+        assert_eq!(files[0].file_name().unwrap(), "ventisca-000001.glrec.zst");
+        let mut replayed = Vec::new();
+        for (i, path) in files.iter().enumerate() {
+            let got = read_all(path);
+            assert_eq!(got[0], hello, "file {i} starts with the header frame");
+            assert!(got.len() >= 2);
+            // Only the first file holds the header frame as a frame of the stream.
+            replayed.extend(if i == 0 { &got[..] } else { &got[1..] }.iter().cloned());
+            // Limits are checked before each write: a file passes max_bytes by at most one frame.
+            let plain = zstd::decode_all(&fs::read(path).unwrap()[..]).unwrap();
+            assert!(plain.len() < 2000 + 1000, "{} bytes", plain.len());
+        }
+        assert_eq!(replayed, sent);
+    }
+
+    #[test]
+    fn rotation_by_time_and_numbering_continues() {
+        let dir = tempfile::tempdir().unwrap();
+        let policy = RotationPolicy {
+            max_bytes: None,
+            max_duration_ns: NonZeroU64::new(100),
+        };
+        let batch = |seq| ProducerFrame {
+            body: Some(Body::Batch(testdata::full_batch(seq, 0, 2))),
+        };
+        let mut w = RotatingWriter::new(dir.path(), "t", Compression::None, policy).unwrap();
+        assert_eq!(w.write_frame(&batch(1), 0).unwrap(), None);
+        assert_eq!(w.write_frame(&batch(2), 99).unwrap(), None);
+        // Time going backwards never rotates.
+        assert_eq!(w.write_frame(&batch(3), -50).unwrap(), None);
+        let closed = w.write_frame(&batch(4), 100).unwrap().unwrap();
+        assert_eq!(closed.file_name().unwrap(), "t-000001.glrec");
+        assert_eq!(read_all(&closed), vec![batch(1), batch(2), batch(3)]);
+        assert_eq!(w.current_path().unwrap().file_name().unwrap(), "t-000002.glrec");
+        drop(w);
+        assert_eq!(read_all(&dir.path().join("t-000002.glrec")), vec![batch(4)]);
+        // A new writer on the same directory never overwrites: it continues the numbering.
+        let mut w = RotatingWriter::new(dir.path(), "t", Compression::None, policy).unwrap();
+        w.write_frame(&batch(5), 0).unwrap();
+        assert_eq!(
+            w.finish().unwrap().unwrap().file_name().unwrap(),
+            "t-000003.glrec"
+        );
+        assert!(matches!(
+            RotatingWriter::new(dir.path(), "a/b", Compression::None, policy),
+            Err(RecordingError::BadPrefix { .. })
+        ));
+    }
+
+    #[test]
+    fn truncated_recording_reads_up_to_the_cut() {
+        let frames = frames();
+        let bytes = in_memory(Compression::None, &frames);
+        let third_start =
+            HEADER_LEN as usize + framing::frame_len(&frames[0]) + framing::frame_len(&frames[1]);
+        // Cut inside the third frame's body, then inside its prefix (one byte in).
+        for cut in [third_start + 5, third_start + 1] {
+            let mut r = RecordingReader::new(&bytes[..cut], "cut.glrec", DEFAULT_MAX_FRAME_BYTES).unwrap();
+            assert_eq!(r.next().unwrap().unwrap(), frames[0]);
+            assert_eq!(r.next().unwrap().unwrap(), frames[1]);
+            let err = r.next().unwrap().unwrap_err();
+            assert!(
+                matches!(&err, RecordingError::Truncated { offset, .. } if *offset == third_start as u64),
+                "{err}"
+            );
+            assert!(err.to_string().contains(&format!("byte {third_start}")), "{err}");
+            assert!(r.next().is_none(), "reader stops after an error");
+        }
+        // Cut exactly between frames: a clean end.
+        let r = RecordingReader::new(&bytes[..third_start], "cut.glrec", DEFAULT_MAX_FRAME_BYTES).unwrap();
+        assert_eq!(r.map(Result::unwrap).count(), 2);
+        // A cut header.
+        let err = RecordingReader::new(&bytes[..10], "h.glrec", DEFAULT_MAX_FRAME_BYTES).unwrap_err();
+        assert!(
+            matches!(err, RecordingError::Truncated { offset: 0, .. }),
+            "{err}"
+        );
+        // A compressed file cut short (a recorder that died) is truncated too, after the frames of the
+        // blocks it flushed.
+        let mut w = RecordingWriter::new(Vec::new(), Compression::Zstd(1), "z").unwrap();
+        for f in &frames {
+            w.write_frame(f).unwrap();
+            w.flush().unwrap();
+        }
+        let z = w.finish().unwrap();
+        let flushed_len = z.len() - 10;
+        let r = RecordingReader::new(&z[..flushed_len], "cut.glrec.zst", DEFAULT_MAX_FRAME_BYTES).unwrap();
+        let results: Vec<_> = r.collect();
+        let (last, good) = results.split_last().unwrap();
+        assert!(matches!(last, Err(RecordingError::Truncated { .. })), "{last:?}");
+        assert!(!good.is_empty());
+        for (got, want) in good.iter().zip(&frames) {
+            assert_eq!(got.as_ref().unwrap(), want);
+        }
+    }
+
+    #[test]
+    fn wrong_magic_and_version_are_named() {
+        let err =
+            RecordingReader::new(&b"PK\x03\x04hello world, not a recording"[..], "x.zip", 1000).unwrap_err();
+        let RecordingError::NotARecording { found, path } = &err else {
+            panic!("{err:?}")
+        };
+        assert_eq!(found, b"PK\x03\x04hell");
+        assert_eq!(path, Path::new("x.zip"));
+        assert!(
+            err.to_string()
+                .starts_with("x.zip: not a glint recording (starts with 50 4b 03 04"),
+            "{err}"
+        );
+
+        let mut bytes = in_memory(Compression::None, &frames());
+        bytes[8..12].copy_from_slice(&7u32.to_le_bytes());
+        let err = RecordingReader::new(&bytes[..], "v.glrec", 1000).unwrap_err();
+        assert!(
+            matches!(
+                err,
+                RecordingError::UnsupportedVersion {
+                    found: 7,
+                    supported: 1,
+                    ..
+                }
+            ),
+            "{err}"
+        );
+        assert!(err.to_string().contains("version 7"), "{err}");
+    }
+
+    #[test]
+    fn frame_errors_carry_offset_and_limit() {
+        let frames = frames();
+        let bytes = in_memory(Compression::None, &frames);
+        // The second frame (a 40-photon batch) is over a 200-byte limit.
+        let mut r = RecordingReader::new(&bytes[..], "big.glrec", 200).unwrap();
+        assert_eq!(r.next().unwrap().unwrap(), frames[0]);
+        let err = r.next().unwrap().unwrap_err();
+        let second = HEADER_LEN + framing::frame_len(&frames[0]) as u64;
+        assert!(
+            matches!(&err, RecordingError::Frame { offset, source: FrameError::TooLarge { max: 200, .. }, .. } if *offset == second),
+            "{err}"
+        );
+        assert!(err.to_string().contains("limit of 200 bytes"), "{err}");
+
+        // A body that is not a ProducerFrame.
+        let mut bad = bytes[..HEADER_LEN as usize].to_vec();
+        bad.extend_from_slice(&[0x02, 0x0a, 0x05]);
+        let err = RecordingReader::new(&bad[..], "bad.glrec", 1000)
+            .unwrap()
+            .next()
+            .unwrap()
+            .unwrap_err();
+        assert!(
+            matches!(
+                err,
+                RecordingError::Frame {
+                    offset: 12,
+                    source: FrameError::Malformed(_),
+                    ..
+                }
+            ),
+            "{err}"
+        );
+    }
+
+    /// Accepts `left` bytes, then fails every write.
+    struct FailAfter {
+        left: usize,
+    }
+
+    impl Write for FailAfter {
+        fn write(&mut self, buf: &[u8]) -> io::Result<usize> {
+            if self.left == 0 {
+                return Err(io::Error::other("disk full"));
+            }
+            let n = buf.len().min(self.left);
+            self.left -= n;
+            Ok(n)
+        }
+
+        fn flush(&mut self) -> io::Result<()> {
+            Ok(())
+        }
+    }
+
+    #[test]
+    fn a_failed_write_ends_the_recording() {
+        // Frames larger than the writer's buffer reach the failing sink at once.
+        let big = ProducerFrame {
+            body: Some(Body::Batch(testdata::full_batch(1, 0, 400))),
+        };
+        assert!(framing::frame_len(&big) > 8192);
+        let mut w = RecordingWriter::new(FailAfter { left: 100 }, Compression::None, "full.glrec").unwrap();
+        let err = w.write_frame(&big).unwrap_err();
+        assert!(err.to_string().contains("disk full"), "{err}");
+        let small = testdata::producer_frames().remove(0);
+        let err = w.write_frame(&small).unwrap_err();
+        assert!(err.to_string().contains("an earlier write failed"), "{err}");
+        assert_eq!(w.frames_written(), 0);
+    }
+
+    #[test]
+    fn writers_and_readers_can_move_to_another_thread() {
+        fn is_send<T: Send>(_: &T) -> bool {
+            true
+        }
+        let dir = tempfile::tempdir().unwrap();
+        let w =
+            RotatingWriter::new(dir.path(), "s", Compression::Zstd(1), RotationPolicy::default()).unwrap();
+        let path = dir.path().join("s.glrec.zst");
+        RecordingWriter::create(&path).unwrap().finish().unwrap();
+        let r = RecordingReader::open(&path, 100).unwrap();
+        assert!(is_send(&w) && is_send(&r));
+        assert_eq!(r.count(), 0);
+    }
+
+    #[test]
+    fn missing_file_is_an_io_error_with_the_path() {
+        let err = RecordingReader::open("/nonexistent/dir/x.glrec", 1000).unwrap_err();
+        assert!(matches!(err, RecordingError::Io { action: "open", .. }));
+        assert!(
+            err.to_string()
+                .starts_with("/nonexistent/dir/x.glrec: cannot open: "),
+            "{err}"
+        );
     }
 }

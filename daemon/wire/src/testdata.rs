@@ -15,7 +15,10 @@ pub(crate) fn hello() -> pb::Hello {
 
 /// A valid batch of `n` photons from `t0`, one microsecond apart, with every column present.
 pub(crate) fn full_batch(seq: u64, t0: i64, n: usize) -> pb::PhotonBatch {
-    let mut b = pb::PhotonBatch { seq, ..Default::default() };
+    let mut b = pb::PhotonBatch {
+        seq,
+        ..Default::default()
+    };
     for i in 0..n {
         let x = i as f64;
         b.time_gps_ns.push(t0 + 1000 * i as i64);
@@ -35,22 +38,45 @@ pub(crate) fn status() -> pb::StreamStatus {
         seq: 7,
         now_gps_ns: 1_400_000_000_000_000_000,
         dead: vec![
-            pb::DeadInterval { start_gps_ns: 10, end_gps_ns: 20, reason: "calibration run".into() },
-            pb::DeadInterval { start_gps_ns: 30, end_gps_ns: 30, reason: "readout stop".into() },
+            pb::DeadInterval {
+                start_gps_ns: 10,
+                end_gps_ns: 20,
+                reason: "calibration run".into(),
+            },
+            pb::DeadInterval {
+                start_gps_ns: 30,
+                end_gps_ns: 30,
+                reason: "readout stop".into(),
+            },
         ],
     }
 }
 
 pub(crate) fn producer_frames() -> Vec<pb::ProducerFrame> {
     vec![
-        pb::ProducerFrame { body: Some(producer_frame::Body::Hello(hello())) },
-        pb::ProducerFrame { body: Some(producer_frame::Body::Batch(full_batch(1, 1_400_000_000_000_000_000, 40))) },
-        pb::ProducerFrame { body: Some(producer_frame::Body::Status(status())) },
+        pb::ProducerFrame {
+            body: Some(producer_frame::Body::Hello(hello())),
+        },
+        pb::ProducerFrame {
+            body: Some(producer_frame::Body::Batch(full_batch(
+                1,
+                1_400_000_000_000_000_000,
+                40,
+            ))),
+        },
+        pb::ProducerFrame {
+            body: Some(producer_frame::Body::Status(status())),
+        },
     ]
 }
 
 fn welcome() -> pb::Welcome {
-    pb::Welcome { schema_version: 1, server: "glint 0.1.0".into(), max_frame_bytes: 4_194_304, last_seq: 99 }
+    pb::Welcome {
+        schema_version: 1,
+        server: "glint 0.1.0".into(),
+        max_frame_bytes: 4_194_304,
+        last_seq: 99,
+    }
 }
 
 fn refusal() -> pb::Refusal {
@@ -63,9 +89,19 @@ fn refusal() -> pb::Refusal {
 
 pub(crate) fn ingest_replies() -> Vec<pb::IngestReply> {
     vec![
-        pb::IngestReply { body: Some(ingest_reply::Body::Welcome(welcome())) },
-        pb::IngestReply { body: Some(ingest_reply::Body::Refusal(refusal())) },
-        pb::IngestReply { body: Some(ingest_reply::Body::Ack(pb::Ack { seq: 5, photons: 5000, refused: 3 })) },
+        pb::IngestReply {
+            body: Some(ingest_reply::Body::Welcome(welcome())),
+        },
+        pb::IngestReply {
+            body: Some(ingest_reply::Body::Refusal(refusal())),
+        },
+        pb::IngestReply {
+            body: Some(ingest_reply::Body::Ack(pb::Ack {
+                seq: 5,
+                photons: 5000,
+                refused: 3,
+            })),
+        },
     ]
 }
 
@@ -171,9 +207,15 @@ pub(crate) fn full_alert() -> pb::Alert {
 
 pub(crate) fn subscriber_frames() -> Vec<pb::SubscriberFrame> {
     vec![
-        pb::SubscriberFrame { body: Some(subscriber_frame::Body::Welcome(welcome())) },
-        pb::SubscriberFrame { body: Some(subscriber_frame::Body::Refusal(refusal())) },
-        pb::SubscriberFrame { body: Some(subscriber_frame::Body::Alert(full_alert())) },
+        pb::SubscriberFrame {
+            body: Some(subscriber_frame::Body::Welcome(welcome())),
+        },
+        pb::SubscriberFrame {
+            body: Some(subscriber_frame::Body::Refusal(refusal())),
+        },
+        pb::SubscriberFrame {
+            body: Some(subscriber_frame::Body::Alert(full_alert())),
+        },
         pb::SubscriberFrame {
             body: Some(subscriber_frame::Body::Heartbeat(pb::Heartbeat {
                 unix_ns: 1_790_000_000_000_000_000,

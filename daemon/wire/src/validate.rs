@@ -145,15 +145,26 @@ pub fn validate_batch(batch: &pb::PhotonBatch, reorder_tolerance_ns: i64) -> Res
         (Column::AzimuthDeg, batch.azimuth_deg.len()),
         (Column::EnergyGev, batch.energy_gev.len()),
     ];
-    let optional = [(Column::Psf68Deg, batch.psf68_deg.len()), (Column::Gammaness, batch.gammaness.len())];
+    let optional = [
+        (Column::Psf68Deg, batch.psf68_deg.len()),
+        (Column::Gammaness, batch.gammaness.len()),
+    ];
     for (column, len) in required {
         if len != n {
-            return Err(BatchError::ColumnLength { column, len, expected: n });
+            return Err(BatchError::ColumnLength {
+                column,
+                len,
+                expected: n,
+            });
         }
     }
     for (column, len) in optional {
         if len != 0 && len != n {
-            return Err(BatchError::ColumnLength { column, len, expected: n });
+            return Err(BatchError::ColumnLength {
+                column,
+                len,
+                expected: n,
+            });
         }
     }
 
@@ -175,10 +186,34 @@ pub fn validate_batch(batch: &pb::PhotonBatch, reorder_tolerance_ns: i64) -> Res
         }
         latest = latest.max(t);
 
-        check_f64(i, Column::RaDeg, batch.ra_deg[i], |v| (0.0..360.0).contains(&v), "[0, 360)")?;
-        check_f64(i, Column::DecDeg, batch.dec_deg[i], |v| (-90.0..=90.0).contains(&v), "[-90, 90]")?;
-        check_f32(i, Column::ZenithDeg, batch.zenith_deg[i], |v| (0.0..=180.0).contains(&v), "[0, 180]")?;
-        check_f32(i, Column::AzimuthDeg, batch.azimuth_deg[i], |v| (0.0..360.0).contains(&v), "[0, 360)")?;
+        check_f64(
+            i,
+            Column::RaDeg,
+            batch.ra_deg[i],
+            |v| (0.0..360.0).contains(&v),
+            "[0, 360)",
+        )?;
+        check_f64(
+            i,
+            Column::DecDeg,
+            batch.dec_deg[i],
+            |v| (-90.0..=90.0).contains(&v),
+            "[-90, 90]",
+        )?;
+        check_f32(
+            i,
+            Column::ZenithDeg,
+            batch.zenith_deg[i],
+            |v| (0.0..=180.0).contains(&v),
+            "[0, 180]",
+        )?;
+        check_f32(
+            i,
+            Column::AzimuthDeg,
+            batch.azimuth_deg[i],
+            |v| (0.0..360.0).contains(&v),
+            "[0, 360)",
+        )?;
         check_f32(i, Column::EnergyGev, batch.energy_gev[i], |v| v > 0.0, "(0, inf)")?;
         if let Some(&v) = batch.psf68_deg.get(i) {
             check_f32(i, Column::Psf68Deg, v, |v| v > 0.0, "(0, inf)")?;
@@ -201,7 +236,12 @@ fn check_f64(
     if !v.is_finite() {
         Err(BatchError::NotFinite { index, column, value })
     } else if !ok(v) {
-        Err(BatchError::OutOfRange { index, column, value, allowed })
+        Err(BatchError::OutOfRange {
+            index,
+            column,
+            value,
+            allowed,
+        })
     } else {
         Ok(())
     }
@@ -218,7 +258,12 @@ fn check_f32(
     if !v.is_finite() {
         Err(BatchError::NotFinite { index, column, value })
     } else if !ok(v) {
-        Err(BatchError::OutOfRange { index, column, value, allowed })
+        Err(BatchError::OutOfRange {
+            index,
+            column,
+            value,
+            allowed,
+        })
     } else {
         Ok(())
     }
@@ -293,12 +338,16 @@ pub fn validate_hello(hello: &pb::Hello) -> Result<(), HelloError> {
         return Err(HelloError::EmptyInstrument);
     }
     if hello.schema_version != SCHEMA_VERSION {
-        return Err(HelloError::SchemaUnsupported { got: hello.schema_version, supported: SCHEMA_VERSION });
+        return Err(HelloError::SchemaUnsupported {
+            got: hello.schema_version,
+            supported: SCHEMA_VERSION,
+        });
     }
     Ok(())
 }
 
 #[cfg(test)]
+#[allow(clippy::unwrap_used)] // tests may unwrap: a panic is the failure report
 mod tests {
     use super::*;
     use crate::testdata;
@@ -332,14 +381,31 @@ mod tests {
         let mut b = batch();
         b.dec_deg.pop();
         let err = validate_batch(&b, TOL).unwrap_err();
-        assert_eq!(err, BatchError::ColumnLength { column: Column::DecDeg, len: 9, expected: 10 });
-        assert_eq!(err.to_string(), "column dec_deg has 9 entries, expected 10 (time_gps_ns)");
+        assert_eq!(
+            err,
+            BatchError::ColumnLength {
+                column: Column::DecDeg,
+                len: 9,
+                expected: 10
+            }
+        );
+        assert_eq!(
+            err.to_string(),
+            "column dec_deg has 9 entries, expected 10 (time_gps_ns)"
+        );
         assert_eq!(err.refusal_code(), RefusalCode::InvalidBatch);
 
         let mut b = batch();
         b.gammaness.push(0.5);
         let err = validate_batch(&b, TOL).unwrap_err();
-        assert_eq!(err, BatchError::ColumnLength { column: Column::Gammaness, len: 11, expected: 10 });
+        assert_eq!(
+            err,
+            BatchError::ColumnLength {
+                column: Column::Gammaness,
+                len: 11,
+                expected: 10
+            }
+        );
     }
 
     #[test]
@@ -347,11 +413,16 @@ mod tests {
         let mut b = batch();
         b.ra_deg[4] = f64::NAN;
         let err = validate_batch(&b, TOL).unwrap_err();
-        assert!(matches!(err, BatchError::NotFinite { index: 4, column: Column::RaDeg, value: Value::F64(v) } if v.is_nan()));
+        assert!(
+            matches!(err, BatchError::NotFinite { index: 4, column: Column::RaDeg, value: Value::F64(v) } if v.is_nan())
+        );
         assert_eq!(err.to_string(), "photon 4: ra_deg = NaN is not finite");
         let mut b = batch();
         b.energy_gev[2] = f32::INFINITY;
-        assert_eq!(validate_batch(&b, TOL).unwrap_err().to_string(), "photon 2: energy_gev = inf is not finite");
+        assert_eq!(
+            validate_batch(&b, TOL).unwrap_err().to_string(),
+            "photon 2: energy_gev = inf is not finite"
+        );
     }
 
     #[test]
@@ -364,14 +435,36 @@ mod tests {
 
     #[test]
     fn other_ranges_are_enforced() {
-        let cases: [(fn(&mut pb::PhotonBatch), &str); 7] = [
-            (|b| b.ra_deg[1] = 360.0, "photon 1: ra_deg = 360 is outside [0, 360)"),
-            (|b| b.ra_deg[1] = -0.5, "photon 1: ra_deg = -0.5 is outside [0, 360)"),
-            (|b| b.zenith_deg[2] = 180.5, "photon 2: zenith_deg = 180.5 is outside [0, 180]"),
-            (|b| b.azimuth_deg[3] = 360.0, "photon 3: azimuth_deg = 360 is outside [0, 360)"),
-            (|b| b.psf68_deg[5] = 0.0, "photon 5: psf68_deg = 0 is outside (0, inf)"),
-            (|b| b.gammaness[6] = 1.25, "photon 6: gammaness = 1.25 is outside [0, 1]"),
-            (|b| b.gammaness[6] = -0.0625, "photon 6: gammaness = -0.0625 is outside [0, 1]"),
+        type Mutation = fn(&mut pb::PhotonBatch);
+        let cases: [(Mutation, &str); 7] = [
+            (
+                |b| b.ra_deg[1] = 360.0,
+                "photon 1: ra_deg = 360 is outside [0, 360)",
+            ),
+            (
+                |b| b.ra_deg[1] = -0.5,
+                "photon 1: ra_deg = -0.5 is outside [0, 360)",
+            ),
+            (
+                |b| b.zenith_deg[2] = 180.5,
+                "photon 2: zenith_deg = 180.5 is outside [0, 180]",
+            ),
+            (
+                |b| b.azimuth_deg[3] = 360.0,
+                "photon 3: azimuth_deg = 360 is outside [0, 360)",
+            ),
+            (
+                |b| b.psf68_deg[5] = 0.0,
+                "photon 5: psf68_deg = 0 is outside (0, inf)",
+            ),
+            (
+                |b| b.gammaness[6] = 1.25,
+                "photon 6: gammaness = 1.25 is outside [0, 1]",
+            ),
+            (
+                |b| b.gammaness[6] = -0.0625,
+                "photon 6: gammaness = -0.0625 is outside [0, 1]",
+            ),
         ];
         for (mutate, expected) in cases {
             let mut b = batch();
@@ -423,14 +516,21 @@ mod tests {
         b.time_gps_ns[1] = b.time_gps_ns[0];
         assert_eq!(validate_batch(&b, 0), Ok(()));
         b.time_gps_ns[2] = b.time_gps_ns[1] - 1;
-        assert!(matches!(validate_batch(&b, -5), Err(BatchError::TimeBackwards { index: 2, .. })));
+        assert!(matches!(
+            validate_batch(&b, -5),
+            Err(BatchError::TimeBackwards { index: 2, .. })
+        ));
         // Extreme times do not overflow.
         let mut b = batch();
         b.time_gps_ns[0] = i64::MAX;
         b.time_gps_ns[1] = i64::MIN;
         assert!(matches!(
             validate_batch(&b, i64::MAX),
-            Err(BatchError::TimeBackwards { index: 1, behind_ns: u64::MAX, .. })
+            Err(BatchError::TimeBackwards {
+                index: 1,
+                behind_ns: u64::MAX,
+                ..
+            })
         ));
     }
 
@@ -440,8 +540,18 @@ mod tests {
         let mut s = testdata::status();
         s.dead[1].end_gps_ns = s.dead[1].start_gps_ns - 1;
         let err = validate_status(&s).unwrap_err();
-        assert_eq!(err, StatusError::DeadIntervalReversed { index: 1, start_ns: 30, end_ns: 29 });
-        assert_eq!(err.to_string(), "dead interval 1: end_gps_ns = 29 is before start_gps_ns = 30");
+        assert_eq!(
+            err,
+            StatusError::DeadIntervalReversed {
+                index: 1,
+                start_ns: 30,
+                end_ns: 29
+            }
+        );
+        assert_eq!(
+            err.to_string(),
+            "dead interval 1: end_gps_ns = 29 is before start_gps_ns = 30"
+        );
     }
 
     #[test]
@@ -450,7 +560,10 @@ mod tests {
         let mut h = testdata::hello();
         h.instrument.clear();
         assert_eq!(validate_hello(&h), Err(HelloError::EmptyInstrument));
-        assert_eq!(HelloError::EmptyInstrument.refusal_code(), RefusalCode::UnknownInstrument);
+        assert_eq!(
+            HelloError::EmptyInstrument.refusal_code(),
+            RefusalCode::UnknownInstrument
+        );
         let mut h = testdata::hello();
         h.schema_version = 2;
         let err = validate_hello(&h).unwrap_err();

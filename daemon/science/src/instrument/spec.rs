@@ -171,6 +171,79 @@ impl Checker<'_> {
     }
 }
 
+impl ResponseSpec {
+    /// Checks the response block alone, appending one problem per fault to `out`; `prefix` is the block's
+    /// own key (e.g. `instrument[0].response`). Returns true when nothing was wrong.
+    pub fn check(&self, prefix: &str, out: &mut Vec<SpecProblem>) -> bool {
+        let before = out.len();
+        let mut c = Checker { prefix, out };
+        self.check_fields(&mut c);
+        out.len() == before
+    }
+
+    /// The response checks with keys relative to `response.`, for `InstrumentSpec::check`.
+    fn check_into(&self, outer: &mut Checker<'_>) {
+        let prefix = format!("{}.response", outer.prefix);
+        let mut c = Checker { prefix: &prefix, out: &mut *outer.out };
+        self.check_fields(&mut c);
+    }
+
+    fn check_fields(&self, c: &mut Checker<'_>) {
+        let r = self;
+        c.finite_in("max_zenith_deg", r.max_zenith_deg, 1.0, 180.0);
+        c.positive("energy_min_gev", r.energy_min_gev);
+        c.positive("energy_max_gev", r.energy_max_gev);
+        if r.energy_max_gev.is_finite() && r.energy_min_gev.is_finite() && r.energy_max_gev <= r.energy_min_gev {
+            c.problem("energy_max_gev", "must be greater than energy_min_gev");
+        }
+        let a = &r.effective_area;
+        c.increasing_positive("effective_area.energy_gev", &a.energy_gev);
+        if a.zenith_deg.is_empty() {
+            c.problem("effective_area.zenith_deg", "table is empty");
+        }
+        for (i, &z) in a.zenith_deg.iter().enumerate() {
+            c.finite_in(&format!("effective_area.zenith_deg[{i}]"), z, 0.0, 180.0);
+        }
+        if let Some(i) = a.zenith_deg.windows(2).position(|w| w[1] <= w[0]) {
+            c.problem(
+                "effective_area.zenith_deg",
+                format!("must be strictly increasing (entry {} <= entry {i})", i + 1),
+            );
+        }
+        if a.area_m2.len() != a.zenith_deg.len() {
+            c.problem(
+                "effective_area.area_m2",
+                format!("has {} rows, zenith_deg has {} entries", a.area_m2.len(), a.zenith_deg.len()),
+            );
+        }
+        for (i, row) in a.area_m2.iter().enumerate() {
+            if row.len() != a.energy_gev.len() {
+                c.problem(
+                    &format!("effective_area.area_m2[{i}]"),
+                    format!("has {} entries, energy_gev has {}", row.len(), a.energy_gev.len()),
+                );
+            }
+            for (j, &v) in row.iter().enumerate() {
+                if !v.is_finite() || v < 0.0 {
+                    c.problem(
+                        &format!("effective_area.area_m2[{i}][{j}]"),
+                        format!("{v} must be a finite number >= 0"),
+                    );
+                }
+            }
+        }
+        if a.area_m2.iter().flatten().all(|&v| v <= 0.0) && !a.area_m2.is_empty() {
+            c.problem("effective_area.area_m2", "is zero everywhere");
+        }
+        c.curve("psf68_deg", &r.psf68_deg);
+        c.curve("energy_resolution", &r.energy_resolution);
+        c.finite_in("systematic_deg", r.systematic_deg, 0.0, 10.0);
+        if r.clock_precision_ns < 0 || r.clock_precision_ns > 1_000_000_000 {
+            c.problem("clock_precision_ns", format!("{} is outside [0, 1e9]", r.clock_precision_ns));
+        }
+    }
+}
+
 impl InstrumentSpec {
     /// Checks every value and table of the block, appending one problem per fault to `out`; `prefix` is the
     /// block's own key (e.g. `instrument[0]`). Returns true when nothing was wrong.
@@ -189,58 +262,7 @@ impl InstrumentSpec {
                 c.finite_in("site.ra_drift_deg_per_s", *ra_drift_deg_per_s, -1.0, 1.0);
             }
         }
-        let r = &self.response;
-        c.finite_in("response.max_zenith_deg", r.max_zenith_deg, 1.0, 180.0);
-        c.positive("response.energy_min_gev", r.energy_min_gev);
-        c.positive("response.energy_max_gev", r.energy_max_gev);
-        if r.energy_max_gev.is_finite() && r.energy_min_gev.is_finite() && r.energy_max_gev <= r.energy_min_gev {
-            c.problem("response.energy_max_gev", "must be greater than energy_min_gev");
-        }
-        let a = &r.effective_area;
-        c.increasing_positive("response.effective_area.energy_gev", &a.energy_gev);
-        if a.zenith_deg.is_empty() {
-            c.problem("response.effective_area.zenith_deg", "table is empty");
-        }
-        for (i, &z) in a.zenith_deg.iter().enumerate() {
-            c.finite_in(&format!("response.effective_area.zenith_deg[{i}]"), z, 0.0, 180.0);
-        }
-        if let Some(i) = a.zenith_deg.windows(2).position(|w| w[1] <= w[0]) {
-            c.problem(
-                "response.effective_area.zenith_deg",
-                format!("must be strictly increasing (entry {} <= entry {i})", i + 1),
-            );
-        }
-        if a.area_m2.len() != a.zenith_deg.len() {
-            c.problem(
-                "response.effective_area.area_m2",
-                format!("has {} rows, zenith_deg has {} entries", a.area_m2.len(), a.zenith_deg.len()),
-            );
-        }
-        for (i, row) in a.area_m2.iter().enumerate() {
-            if row.len() != a.energy_gev.len() {
-                c.problem(
-                    &format!("response.effective_area.area_m2[{i}]"),
-                    format!("has {} entries, energy_gev has {}", row.len(), a.energy_gev.len()),
-                );
-            }
-            for (j, &v) in row.iter().enumerate() {
-                if !v.is_finite() || v < 0.0 {
-                    c.problem(
-                        &format!("response.effective_area.area_m2[{i}][{j}]"),
-                        format!("{v} must be a finite number >= 0"),
-                    );
-                }
-            }
-        }
-        if a.area_m2.iter().flatten().all(|&v| v <= 0.0) && !a.area_m2.is_empty() {
-            c.problem("response.effective_area.area_m2", "is zero everywhere");
-        }
-        c.curve("response.psf68_deg", &r.psf68_deg);
-        c.curve("response.energy_resolution", &r.energy_resolution);
-        c.finite_in("response.systematic_deg", r.systematic_deg, 0.0, 10.0);
-        if r.clock_precision_ns < 0 || r.clock_precision_ns > 1_000_000_000 {
-            c.problem("response.clock_precision_ns", format!("{} is outside [0, 1e9]", r.clock_precision_ns));
-        }
+        self.response.check_into(&mut c);
         let b = &self.background;
         c.positive("background.rate_hz", b.rate_hz);
         c.finite_in("background.zenith_cos_power", b.zenith_cos_power, 0.0, 20.0);

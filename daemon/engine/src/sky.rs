@@ -1,0 +1,361 @@
+//! Sky index: the photons of the last (longest timescale + pre-window), bucketed by HEALPix nested pixel at a
+//! depth whose pixels are at least as wide as the search radius, so a seed's disc lies inside its own pixel
+//! and the 8 (or 7) neighbours. Only active pixels exist; each keeps its photons in release (time) order, so a
+//! seed walks back from the newest photon and stops at the longest timescale. Memory: about 68 bytes per held
+//! photon plus one bucket per active pixel, i.e. it grows with (event rate x retention), never with uptime.
+
+use std::collections::{HashMap, VecDeque};
+use std::hash::{BuildHasherDefault, Hasher};
+
+use cdshealpix::nested::{self, Layer};
+
+use crate::reorder::Photon;
+
+/// Position and time of a held photon: what the seeded test reads.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub(crate) struct Hot {
+    pub(crate) t: i64,
+    pub(crate) v: [f64; 3],
+}
+
+/// The rest of a held photon, read only when a test crosses or a candidate collects photons.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub(crate) struct Cold {
+    pub(crate) ra: f64,
+    pub(crate) dec: f64,
+    pub(crate) energy: f32,
+    pub(crate) zenith: f32,
+    pub(crate) azimuth: f32,
+}
+
+impl Cold {
+    pub(crate) fn photon(&self, t: i64) -> Photon {
+        Photon { t, ra: self.ra, dec: self.dec, energy: self.energy, zenith: self.zenith, azimuth: self.azimuth }
+    }
+}
+
+/// One active pixel.
+#[derive(Debug, Default)]
+pub(crate) struct Bucket {
+    pix: u64,
+    /// Neighbouring pixels (8, or 7 at some base-cell corners), computed once when the bucket opens.
+    neigh: [u64; 8],
+    n_neigh: u8,
+    pub(crate) hot: VecDeque<Hot>,
+    pub(crate) cold: VecDeque<Cold>,
+}
+
+/// Multiplicative hasher for pixel numbers: lookups only, never iterated, so its order reaches no output.
+#[derive(Default, Clone, Copy)]
+pub(crate) struct PixHasher(u64);
+
+impl Hasher for PixHasher {
+    fn finish(&self) -> u64 {
+        self.0
+    }
+    fn write(&mut self, bytes: &[u8]) {
+        for &b in bytes {
+            self.0 = (self.0.rotate_left(8) ^ u64::from(b)).wrapping_mul(0x9E37_79B9_7F4A_7C15);
+        }
+    }
+    fn write_u64(&mut self, n: u64) {
+        self.0 = (n ^ (n >> 29)).wrapping_mul(0x9E37_79B9_7F4A_7C15);
+        self.0 ^= self.0 >> 32;
+    }
+}
+
+/// Unit vector of an ICRS direction given in degrees.
+pub(crate) fn unit_vector(ra_deg: f64, dec_deg: f64) -> [f64; 3] {
+    let (sd, cd) = dec_deg.to_radians().sin_cos();
+    let (sr, cr) = ra_deg.to_radians().sin_cos();
+    [cd * cr, cd * sr, sd]
+}
+
+/// Right ascension and declination (degrees) of a non-zero vector.
+pub(crate) fn radec_of(v: [f64; 3]) -> (f64, f64) {
+    let n = (v[0] * v[0] + v[1] * v[1] + v[2] * v[2]).sqrt();
+    if n <= 0.0 || !n.is_finite() {
+        return (0.0, 0.0);
+    }
+    let dec = (v[2] / n).clamp(-1.0, 1.0).asin().to_degrees();
+    let mut ra = v[1].atan2(v[0]).to_degrees();
+    if ra < 0.0 {
+        ra += 360.0;
+    }
+    if ra >= 360.0 {
+        ra -= 360.0;
+    }
+    (ra, dec)
+}
+
+/// Angle between two unit vectors, degrees (stable at small angles).
+pub(crate) fn angle_deg(a: [f64; 3], b: [f64; 3]) -> f64 {
+    let c = [a[1] * b[2] - a[2] * b[1], a[2] * b[0] - a[0] * b[2], a[0] * b[1] - a[1] * b[0]];
+    let s = (c[0] * c[0] + c[1] * c[1] + c[2] * c[2]).sqrt();
+    let d = a[0] * b[0] + a[1] * b[1] + a[2] * b[2];
+    s.atan2(d).to_degrees()
+}
+
+/// The HEALPix index of held photons.
+pub(crate) struct SkyIndex {
+    layer: &'static Layer,
+    depth: u8,
+    buckets: Vec<Bucket>,
+    free: Vec<u32>,
+    map: HashMap<u64, u32, BuildHasherDefault<PixHasher>>,
+    /// Bucket of every held photon in release order: the front is the oldest photon of the whole index.
+    fifo: VecDeque<u32>,
+    scratch: Vec<u64>,
+}
+
+impl std::fmt::Debug for SkyIndex {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("SkyIndex")
+            .field("depth", &self.depth)
+            .field("active_pixels", &self.map.len())
+            .field("photons", &self.fifo.len())
+            .finish()
+    }
+}
+
+/// Pixel depth for a search radius: the shallowest at which a disc of that radius touches at most a pixel
+/// and its neighbours (cdshealpix `best_starting_depth`). Radii are limited to 10 degrees by the config.
+pub(crate) fn depth_for_radius(radius_deg: f64) -> u8 {
+    let r = radius_deg.to_radians();
+    if cdshealpix::has_best_starting_depth(r) { cdshealpix::best_starting_depth(r) } else { 0 }
+}
+
+impl SkyIndex {
+    pub(crate) fn new(radius_deg: f64) -> Self {
+        let depth = depth_for_radius(radius_deg);
+        Self {
+            layer: nested::get(depth),
+            depth,
+            buckets: Vec::new(),
+            free: Vec::new(),
+            map: HashMap::default(),
+            fifo: VecDeque::new(),
+            scratch: Vec::with_capacity(8),
+        }
+    }
+
+    pub(crate) fn depth(&self) -> u8 {
+        self.depth
+    }
+
+    pub(crate) fn len(&self) -> usize {
+        self.fifo.len()
+    }
+
+    pub(crate) fn active_pixels(&self) -> usize {
+        self.map.len()
+    }
+
+    /// Pixel of a direction in degrees.
+    pub(crate) fn pixel(&self, ra_deg: f64, dec_deg: f64) -> u64 {
+        let lat = dec_deg.to_radians().clamp(-std::f64::consts::FRAC_PI_2, std::f64::consts::FRAC_PI_2);
+        self.layer.hash(ra_deg.to_radians(), lat)
+    }
+
+    /// Adds a photon (in release order); returns its bucket.
+    pub(crate) fn insert(&mut self, p: &Photon, v: [f64; 3]) -> u32 {
+        let pix = self.pixel(p.ra, p.dec);
+        let slot = match self.map.get(&pix) {
+            Some(&s) => s,
+            None => self.open(pix),
+        };
+        let b = &mut self.buckets[slot as usize];
+        b.hot.push_back(Hot { t: p.t, v });
+        b.cold.push_back(Cold {
+            ra: p.ra,
+            dec: p.dec,
+            energy: p.energy,
+            zenith: p.zenith,
+            azimuth: p.azimuth,
+        });
+        self.fifo.push_back(slot);
+        slot
+    }
+
+    fn open(&mut self, pix: u64) -> u32 {
+        self.scratch.clear();
+        self.layer.append_bulk_neighbours(pix, &mut self.scratch);
+        let mut neigh = [0u64; 8];
+        let n = self.scratch.len().min(8);
+        neigh[..n].copy_from_slice(&self.scratch[..n]);
+        let slot = match self.free.pop() {
+            Some(s) => s,
+            None => {
+                self.buckets.push(Bucket::default());
+                (self.buckets.len() - 1) as u32
+            }
+        };
+        let b = &mut self.buckets[slot as usize];
+        b.pix = pix;
+        b.neigh = neigh;
+        b.n_neigh = n as u8;
+        self.map.insert(pix, slot);
+        slot
+    }
+
+    /// Drops every photon older than `t_min`; empty pixels are closed and their buckets reused.
+    pub(crate) fn evict_before(&mut self, t_min: i64) {
+        while let Some(&slot) = self.fifo.front() {
+            let b = &mut self.buckets[slot as usize];
+            match b.hot.front() {
+                Some(h) if h.t < t_min => {}
+                _ => break,
+            }
+            b.hot.pop_front();
+            b.cold.pop_front();
+            self.fifo.pop_front();
+            if b.hot.is_empty() {
+                let pix = b.pix;
+                self.map.remove(&pix);
+                self.free.push(slot);
+            }
+        }
+    }
+
+    /// Buckets that may hold photons within the search radius of a photon in bucket `slot`: that bucket
+    /// first, then its active neighbours. Returns how many entries of `out` were filled.
+    pub(crate) fn neighbourhood(&self, slot: u32, out: &mut [u32; 9]) -> usize {
+        out[0] = slot;
+        let b = &self.buckets[slot as usize];
+        let mut n = 1;
+        for &p in &b.neigh[..b.n_neigh as usize] {
+            if let Some(&s) = self.map.get(&p) {
+                out[n] = s;
+                n += 1;
+            }
+        }
+        n
+    }
+
+    pub(crate) fn bucket(&self, slot: u32) -> &Bucket {
+        &self.buckets[slot as usize]
+    }
+
+    /// Calls `f` for every held photon with time >= `t_from` within `radius_deg` (approximate pixel cover,
+    /// exact angle check by the caller) of `ra`, `dec`; pixels visited in index order, photons in time order.
+    pub(crate) fn for_each_in_cone(
+        &self,
+        ra_deg: f64,
+        dec_deg: f64,
+        radius_deg: f64,
+        t_from: i64,
+        mut f: impl FnMut(&Hot, &Cold),
+    ) {
+        let lat = dec_deg.to_radians().clamp(-std::f64::consts::FRAC_PI_2, std::f64::consts::FRAC_PI_2);
+        let radius = radius_deg.to_radians().min(std::f64::consts::PI);
+        let cover = self.layer.cone_coverage_approx(ra_deg.to_radians(), lat, radius);
+        for pix in cover.flat_iter() {
+            if let Some(&s) = self.map.get(&pix) {
+                let b = &self.buckets[s as usize];
+                let start = b.hot.partition_point(|h| h.t < t_from);
+                for i in start..b.hot.len() {
+                    f(&b.hot[i], &b.cold[i]);
+                }
+            }
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn ph(t: i64, ra: f64, dec: f64) -> Photon {
+        Photon { t, ra, dec, energy: 1.0, zenith: 10.0, azimuth: 0.0 }
+    }
+
+    #[test]
+    fn pixels_at_least_as_wide_as_the_radius() {
+        // HEALPix mean spacing sqrt(4 pi / (12 Nside^2)) (Gorski et al. 2005); [calc] from the formula.
+        for r in [0.05, 0.2, 0.5, 1.0, 3.0, 10.0] {
+            let d = depth_for_radius(r);
+            let nside = f64::from(1u32 << d);
+            let spacing = (4.0 * std::f64::consts::PI / (12.0 * nside * nside)).sqrt().to_degrees();
+            assert!(spacing >= r, "radius {r}: depth {d} spacing {spacing}");
+            assert!(spacing < 4.0 * r, "radius {r}: depth {d} needlessly coarse ({spacing})");
+        }
+    }
+
+    #[test]
+    fn neighbourhood_covers_every_photon_within_the_radius() {
+        // Exhaustive check against brute force on a dense grid of points: nothing within r is missed.
+        let r = 0.7;
+        let mut idx = SkyIndex::new(r);
+        let mut pts = Vec::new();
+        let mut t = 0;
+        for i in 0..120 {
+            for j in 0..60 {
+                let ra = f64::from(i) * 3.0 + 0.37 * f64::from(j % 7);
+                let dec = -89.5 + f64::from(j) * 3.0 + 0.11 * f64::from(i % 5);
+                let p = ph(t, ra % 360.0, dec.min(89.9));
+                t += 1;
+                let v = unit_vector(p.ra, p.dec);
+                idx.insert(&p, v);
+                pts.push(v);
+            }
+        }
+        // Seeds near many pixels, including near the poles and base-cell corners.
+        let cos_r = r.to_radians().cos();
+        let mut slots = [0u32; 9];
+        for (k, seed) in pts.iter().enumerate().step_by(37) {
+            let (ra, dec) = radec_of(*seed);
+            let slot = idx.map[&idx.pixel(ra, dec)];
+            let n = idx.neighbourhood(slot, &mut slots);
+            let mut found = 0;
+            for &s in &slots[..n] {
+                for h in &idx.bucket(s).hot {
+                    if dot(h.v, *seed) >= cos_r {
+                        found += 1;
+                    }
+                }
+            }
+            let brute = pts.iter().filter(|v| dot(**v, *seed) >= cos_r).count();
+            assert_eq!(found, brute, "seed {k} at ({ra}, {dec})");
+        }
+    }
+
+    fn dot(a: [f64; 3], b: [f64; 3]) -> f64 {
+        a[0] * b[0] + a[1] * b[1] + a[2] * b[2]
+    }
+
+    #[test]
+    fn eviction_closes_pixels_and_reuses_buckets() {
+        let mut idx = SkyIndex::new(0.5);
+        for t in 0..100 {
+            let p = ph(t, f64::from(t as i32) * 3.0, 10.0);
+            idx.insert(&p, unit_vector(p.ra, p.dec));
+        }
+        assert_eq!(idx.len(), 100);
+        let pixels = idx.active_pixels();
+        idx.evict_before(60);
+        assert_eq!(idx.len(), 40);
+        assert!(idx.active_pixels() < pixels);
+        let buckets = idx.buckets.len();
+        for t in 100..150 {
+            let p = ph(t, f64::from(t as i32 - 100) * 3.0, 10.0);
+            idx.insert(&p, unit_vector(p.ra, p.dec));
+        }
+        assert_eq!(idx.buckets.len(), buckets, "closed buckets are reused");
+        let mut n = 0;
+        idx.for_each_in_cone(0.0, 10.0, 1.0, 0, |h, c| {
+            assert!(h.t >= 60);
+            assert!(c.ra < 1.0 || c.ra > 359.0);
+            n += 1;
+        });
+        assert_eq!(n, 1, "only the photon at ra 0 (t 100) is within 1 degree");
+    }
+
+    #[test]
+    fn angles_and_round_trip() {
+        let a = unit_vector(10.0, 20.0);
+        let b = unit_vector(10.0, 20.001);
+        assert!((angle_deg(a, b) - 0.001).abs() < 1e-9);
+        let (ra, dec) = radec_of(a);
+        assert!((ra - 10.0).abs() < 1e-12 && (dec - 20.0).abs() < 1e-12);
+    }
+}

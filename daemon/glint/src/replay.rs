@@ -1,0 +1,178 @@
+//! `glint replay`: runs recordings through the same per-instrument driver and engine as the live daemon, as
+//! fast as the CPU allows, and prints the alerts as JSON lines followed by one summary line. The alert lines
+//! carry no wall-clock value, so the same recordings give byte-identical alerts run after run.
+
+use std::collections::BTreeMap;
+use std::fs::File;
+use std::io::{BufWriter, Write};
+use std::path::PathBuf;
+use std::process::ExitCode;
+use std::time::Instant;
+
+use anyhow::Context;
+use glint_engine::Finding;
+use glint_wire::pb::producer_frame::Body;
+use glint_wire::recording::RecordingReader;
+use serde::Serialize;
+
+use crate::alerts::{self, Sequencer};
+use crate::cli::config_or_exit;
+use crate::driver::InstrumentDriver;
+
+/// Arguments of `glint replay`.
+#[derive(Debug, clap::Args)]
+pub(crate) struct ReplayArgs {
+    /// Recordings (.glrec or .glrec.zst), replayed in the order given.
+    #[arg(required = true)]
+    files: Vec<PathBuf>,
+    /// Configuration file; the embedded default when omitted.
+    #[arg(long)]
+    config: Option<PathBuf>,
+    /// Also write the alert lines (without the summary) to this file.
+    #[arg(long)]
+    alerts_out: Option<PathBuf>,
+    /// Decode, validate and reorder only, to read off the cost of the search itself.
+    #[arg(long)]
+    no_search: bool,
+    /// Treat every recording as this instrument, whatever its Hello says.
+    #[arg(long)]
+    instrument: Option<String>,
+    /// Print only the summary line, not the alerts.
+    #[arg(long)]
+    quiet: bool,
+}
+
+/// The replay's closing line.
+#[derive(Debug, Serialize)]
+struct Summary {
+    kind: &'static str,
+    files: usize,
+    photons: u64,
+    refused_photons: u64,
+    refused_frames: u64,
+    late_photons: u64,
+    live_seconds: f64,
+    dead_seconds: f64,
+    alerts: BTreeMap<&'static str, u64>,
+    verdicts: BTreeMap<&'static str, u64>,
+    wall_seconds: f64,
+    photons_per_second: f64,
+}
+
+struct Out {
+    stdout: BufWriter<std::io::StdoutLock<'static>>,
+    file: Option<BufWriter<File>>,
+    quiet: bool,
+}
+
+impl Out {
+    fn alert(&mut self, line: &str) -> std::io::Result<()> {
+        if !self.quiet {
+            writeln!(self.stdout, "{line}")?;
+        }
+        if let Some(f) = &mut self.file {
+            writeln!(f, "{line}")?;
+        }
+        Ok(())
+    }
+}
+
+/// Runs `glint replay`.
+pub(crate) fn run(args: &ReplayArgs) -> anyhow::Result<ExitCode> {
+    let cfg = config_or_exit(args.config.as_ref())?;
+    crate::logging::init(&cfg.daemon.log_level, cfg.daemon.log_format);
+    let file = match &args.alerts_out {
+        Some(p) => Some(BufWriter::new(File::create(p).with_context(|| format!("creating {}", p.display()))?)),
+        None => None,
+    };
+    let mut out = Out { stdout: BufWriter::new(std::io::stdout().lock()), file, quiet: args.quiet };
+    let mut drivers: BTreeMap<String, InstrumentDriver> = BTreeMap::new();
+    let mut seq = Sequencer::starting_at(1);
+    let mut alerts_by_kind: BTreeMap<&'static str, u64> = BTreeMap::new();
+    let mut verdicts: BTreeMap<&'static str, u64> = BTreeMap::new();
+    let mut findings: Vec<Finding> = Vec::new();
+    let started = Instant::now();
+
+    let mut emit = |id: &str, d: &InstrumentDriver, found: &mut Vec<Finding>, out: &mut Out| -> anyhow::Result<()> {
+        for f in found.drain(..) {
+            // Event time, not wall time, so replays are reproducible.
+            let issued = d.watermark_ns().unwrap_or(0);
+            let alert = seq.assign(id, &f, issued);
+            *alerts_by_kind.entry(alerts::kind_name(alert.kind)).or_default() += 1;
+            if let Some(a) = &alert.assessment {
+                *verdicts.entry(alerts::verdict_name(a.verdict)).or_default() += 1;
+            }
+            out.alert(&alerts::alert_json(&alert).to_string())?;
+        }
+        Ok(())
+    };
+
+    for path in &args.files {
+        let reader = RecordingReader::open(path, cfg.daemon.max_frame_bytes)
+            .with_context(|| format!("opening recording {}", path.display()))?;
+        let mut current: Option<String> = args.instrument.clone();
+        for frame in reader {
+            let frame = frame.with_context(|| format!("reading {}", path.display()))?;
+            if let Some(Body::Hello(h)) = &frame.body {
+                if args.instrument.is_none() {
+                    current = Some(h.instrument.clone());
+                }
+            }
+            let Some(id) = current.clone() else {
+                anyhow::bail!("{}: the recording does not start with a Hello; give --instrument", path.display());
+            };
+            if !drivers.contains_key(&id) {
+                let inst = cfg.instrument(&id).with_context(|| {
+                    format!("{}: instrument '{id}' is not in {} (give --instrument or --config)", path.display(), cfg.source_name)
+                })?;
+                drivers.insert(id.clone(), InstrumentDriver::new(inst, !args.no_search)?);
+                // A fresh driver has seen no stream yet: its first Hello is not a break.
+                if matches!(frame.body, Some(Body::Hello(_))) {
+                    continue;
+                }
+            }
+            let Some(d) = drivers.get_mut(&id) else { continue };
+            if let Err(r) = d.on_frame(&frame, &mut findings) {
+                tracing::warn!(file = %path.display(), seq = r.seq, code = ?r.code, "frame refused: {}", r.detail);
+            }
+            emit(&id, d, &mut findings, &mut out)?;
+        }
+    }
+    for (id, d) in &mut drivers {
+        d.finish(&mut findings);
+        emit(id, d, &mut findings, &mut out)?;
+    }
+
+    let wall = started.elapsed().as_secs_f64();
+    let mut s = Summary {
+        kind: "summary",
+        files: args.files.len(),
+        photons: 0,
+        refused_photons: 0,
+        refused_frames: 0,
+        late_photons: 0,
+        live_seconds: 0.0,
+        dead_seconds: 0.0,
+        alerts: alerts_by_kind,
+        verdicts,
+        wall_seconds: wall,
+        photons_per_second: 0.0,
+    };
+    for d in drivers.values() {
+        let c = d.counters();
+        let e = d.engine_stats();
+        s.photons += c.photons;
+        s.refused_photons += c.refused_photons;
+        s.refused_frames += c.refused_frames;
+        s.late_photons += e.late;
+        s.live_seconds += e.live_ns as f64 / 1e9;
+        s.dead_seconds += e.dead_ns as f64 / 1e9;
+    }
+    s.photons_per_second = if wall > 0.0 { s.photons as f64 / wall } else { 0.0 };
+    writeln!(out.stdout, "{}", serde_json::to_string(&s)?)?;
+    out.stdout.flush()?;
+    if let Some(f) = &mut out.file {
+        f.flush()?;
+    }
+    Ok(ExitCode::SUCCESS)
+}
