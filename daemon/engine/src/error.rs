@@ -26,10 +26,11 @@ pub enum EngineError {
         /// The configured `max_clock_jump_ns`.
         limit_ns: i64,
     },
-    /// A batch the caller should have refused in validation (columns of unequal length, a value out of range).
-    #[error("invalid batch seq {seq}: {detail}")]
-    InvalidBatch {
-        /// Sequence number of the batch.
+    /// A frame the caller should have refused in validation (columns of unequal length, a value out of
+    /// range, a dead interval ending before it starts). Refused whole; the engine is unchanged.
+    #[error("invalid frame seq {seq}: {detail}")]
+    InvalidFrame {
+        /// Sequence number of the frame.
         seq: u64,
         /// What was wrong and where.
         detail: String,

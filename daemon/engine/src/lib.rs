@@ -1,11 +1,23 @@
-//! glint's trigger engine: a synchronous state machine driven by event time. Photons go in through
-//! `push`, time moves through `advance`, findings come out into a caller's buffer. No I/O, no clock, no
-//! random numbers, no hash-map order in the outputs: live runs and replays give the same findings.
+//! glint's trigger engine: a synchronous state machine driven by event time. Frames go in through
+//! `push_batch` / `push_status`, findings come out into a caller's buffer. No I/O, no clock, no random
+//! numbers, no hash-map order in the outputs: live runs and replays give the same findings.
+//!
+//! Pipeline: reorder (watermark) -> sky index + background model -> seeded multi-timescale test ->
+//! candidates -> assessment (with the evaporation fit in [`fit`]).
 
+mod assess;
 mod background;
+mod config;
 mod dead;
+mod engine;
 mod error;
+mod finding;
+pub mod fit;
 mod reorder;
 mod sky;
 
+pub use config::{AssessConfig, EngineConfig};
+pub use engine::{Engine, EngineStats, SECONDS_PER_YEAR};
 pub use error::EngineError;
+pub use finding::{Assessment, Finding, Flash, PhotonRec, Verdict, Withdrawal};
+pub use fit::{FitInput, FitResult};

@@ -31,6 +31,14 @@ pub(crate) struct Cli {
 enum Command {
     /// Check a configuration file and list every problem in it.
     CheckConfig(CheckConfigArgs),
+    /// Run the daemon: ingest, engines, alert desk, subscribers (until SIGTERM or SIGINT).
+    Run(crate::daemon::RunArgs),
+    /// Play a recording into a running daemon, as a producer would.
+    Feed(crate::feed::FeedArgs),
+    /// Subscribe to a daemon's alerts and print them (or run a command per alert).
+    Listen(crate::listen::ListenArgs),
+    /// Withdraw an alert (needs the operator token).
+    Withdraw(crate::withdraw::WithdrawArgs),
 }
 
 /// Arguments of `glint check-config`.
@@ -63,6 +71,10 @@ pub(crate) fn config_or_exit(path: Option<&PathBuf>) -> anyhow::Result<Config> {
 pub(crate) fn dispatch(cli: Cli) -> anyhow::Result<ExitCode> {
     let result = match cli.command {
         Command::CheckConfig(a) => check_config(&a),
+        Command::Run(a) => crate::daemon::run_command(a),
+        Command::Feed(a) => crate::feed::run(a),
+        Command::Listen(a) => crate::listen::run(a),
+        Command::Withdraw(a) => crate::withdraw::run(a),
     };
     match result {
         Err(e) if e.downcast_ref::<BadConfig>().is_some() => {

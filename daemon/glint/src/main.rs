@@ -5,9 +5,23 @@ use std::process::ExitCode;
 
 use clap::Parser;
 
+mod alerts;
 mod cli;
+mod codec;
 mod config;
+mod daemon;
+mod desk;
+mod driver;
+mod feed;
+mod ingest;
+mod journal;
+mod listen;
 mod logging;
+mod metrics;
+mod subscribers;
+mod timefmt;
+mod tls;
+mod withdraw;
 
 fn main() -> ExitCode {
     let args = cli::Cli::parse();

@@ -11,7 +11,11 @@ const MAX_TABLE_ENTRIES: u64 = 1 << 20;
 
 /// The per-seed p-value bound `F / (K R)`: a false-alarm rate `far_per_s` (per second) split over
 /// `n_timescales` timescales and over the seeds, which arrive at the all-sky rate `all_sky_rate_hz`.
-pub fn per_seed_bound(far_per_s: f64, n_timescales: usize, all_sky_rate_hz: f64) -> Result<f64, ScienceError> {
+pub fn per_seed_bound(
+    far_per_s: f64,
+    n_timescales: usize,
+    all_sky_rate_hz: f64,
+) -> Result<f64, ScienceError> {
     let far = arg::positive("far_per_s", far_per_s)?;
     let rate = arg::positive("all_sky_rate_hz", all_sky_rate_hz)?;
     if n_timescales == 0 {
@@ -149,7 +153,15 @@ impl CriticalTable {
                 detail: format!("background {b} needs more than u32::MAX counts"),
             })?);
         }
-        Ok(Self { bound, base_bits, shift, mask, first: point(0), last: point(n_points - 1), counts })
+        Ok(Self {
+            bound,
+            base_bits,
+            shift,
+            mask,
+            first: point(0),
+            last: point(n_points - 1),
+            counts,
+        })
     }
 
     /// The critical count for background `b`, rounded up to the grid.
@@ -167,7 +179,11 @@ impl CriticalTable {
             }
             return critical_count(b, self.bound).unwrap_or(u32::MAX);
         }
-        if b.is_nan() { u32::MAX } else { self.counts.first().copied().unwrap_or(u32::MAX) }
+        if b.is_nan() {
+            u32::MAX
+        } else {
+            self.counts.first().copied().unwrap_or(u32::MAX)
+        }
     }
 
     /// The per-seed p-value bound the table was built for.
@@ -214,7 +230,13 @@ mod tests {
     #[test]
     fn critical_count_definition() {
         // SCIENCE.md sec. 4: smallest n with P(N >= n - 1 | b) <= bound.
-        for &(b, bound) in &[(0.01, 1e-9), (0.5, 1e-6), (3.0, 1e-3), (40.0, 1e-12), (1e4, 1e-10)] {
+        for &(b, bound) in &[
+            (0.01, 1e-9),
+            (0.5, 1e-6),
+            (3.0, 1e-3),
+            (40.0, 1e-12),
+            (1e4, 1e-10),
+        ] {
             let n = critical_count(b, bound).unwrap();
             assert!(n >= 2);
             assert!(poisson::sf(u64::from(n - 1), b) <= bound, "b={b}");
@@ -227,11 +249,26 @@ mod tests {
 
     #[test]
     fn critical_count_rejects_bad_input() {
-        assert!(matches!(critical_count(-1.0, 1e-9), Err(ScienceError::InvalidArgument { name: "b", .. })));
-        assert!(matches!(critical_count(f64::NAN, 1e-9), Err(ScienceError::InvalidArgument { name: "b", .. })));
-        assert!(matches!(critical_count(1.0, 0.0), Err(ScienceError::InvalidArgument { name: "bound", .. })));
-        assert!(matches!(critical_count(1.0, f64::NAN), Err(ScienceError::InvalidArgument { .. })));
-        assert!(matches!(critical_count(f64::INFINITY, 1e-9), Err(ScienceError::InvalidArgument { .. })));
+        assert!(matches!(
+            critical_count(-1.0, 1e-9),
+            Err(ScienceError::InvalidArgument { name: "b", .. })
+        ));
+        assert!(matches!(
+            critical_count(f64::NAN, 1e-9),
+            Err(ScienceError::InvalidArgument { name: "b", .. })
+        ));
+        assert!(matches!(
+            critical_count(1.0, 0.0),
+            Err(ScienceError::InvalidArgument { name: "bound", .. })
+        ));
+        assert!(matches!(
+            critical_count(1.0, f64::NAN),
+            Err(ScienceError::InvalidArgument { .. })
+        ));
+        assert!(matches!(
+            critical_count(f64::INFINITY, 1e-9),
+            Err(ScienceError::InvalidArgument { .. })
+        ));
     }
 
     #[test]
@@ -241,7 +278,11 @@ mod tests {
         assert!(t.len() > 64 * 7);
         for i in 0..t.len() {
             let g = t.grid_point(i).unwrap();
-            assert_eq!(t.entry(i).unwrap(), critical_count(g, bound).unwrap(), "grid point {g}");
+            assert_eq!(
+                t.entry(i).unwrap(),
+                critical_count(g, bound).unwrap(),
+                "grid point {g}"
+            );
             assert_eq!(t.critical(g), t.entry(i).unwrap());
         }
         // Off-grid backgrounds, spread over the whole range: never below exact, monotone in b.

@@ -49,27 +49,47 @@ pub(crate) mod arg {
     use super::ScienceError;
 
     fn bad(name: &'static str, value: f64, expected: &'static str) -> ScienceError {
-        ScienceError::InvalidArgument { name, value, expected }
+        ScienceError::InvalidArgument {
+            name,
+            value,
+            expected,
+        }
     }
 
     /// Finite and strictly positive.
     pub(crate) fn positive(name: &'static str, v: f64) -> Result<f64, ScienceError> {
-        if v.is_finite() && v > 0.0 { Ok(v) } else { Err(bad(name, v, "a finite number > 0")) }
+        if v.is_finite() && v > 0.0 {
+            Ok(v)
+        } else {
+            Err(bad(name, v, "a finite number > 0"))
+        }
     }
 
     /// Finite and not negative.
     pub(crate) fn non_negative(name: &'static str, v: f64) -> Result<f64, ScienceError> {
-        if v.is_finite() && v >= 0.0 { Ok(v) } else { Err(bad(name, v, "a finite number >= 0")) }
+        if v.is_finite() && v >= 0.0 {
+            Ok(v)
+        } else {
+            Err(bad(name, v, "a finite number >= 0"))
+        }
     }
 
     /// A probability strictly between 0 and 1 (a confidence level, say).
     pub(crate) fn open_unit(name: &'static str, v: f64) -> Result<f64, ScienceError> {
-        if v > 0.0 && v < 1.0 { Ok(v) } else { Err(bad(name, v, "a number strictly between 0 and 1")) }
+        if v > 0.0 && v < 1.0 {
+            Ok(v)
+        } else {
+            Err(bad(name, v, "a number strictly between 0 and 1"))
+        }
     }
 
     /// Finite, any sign.
     pub(crate) fn finite(name: &'static str, v: f64) -> Result<f64, ScienceError> {
-        if v.is_finite() { Ok(v) } else { Err(bad(name, v, "a finite number")) }
+        if v.is_finite() {
+            Ok(v)
+        } else {
+            Err(bad(name, v, "a finite number"))
+        }
     }
 
     /// Finite and within `[lo, hi]`.
@@ -80,6 +100,10 @@ pub(crate) mod arg {
         hi: f64,
         expected: &'static str,
     ) -> Result<f64, ScienceError> {
-        if v.is_finite() && v >= lo && v <= hi { Ok(v) } else { Err(bad(name, v, expected)) }
+        if v.is_finite() && v >= lo && v <= hi {
+            Ok(v)
+        } else {
+            Err(bad(name, v, expected))
+        }
     }
 }

@@ -203,6 +203,7 @@ pub fn gps_ns_to_utc_string(t_gps_ns: i64) -> String {
 }
 
 #[cfg(test)]
+#[allow(clippy::unwrap_used)] // tests may unwrap: a panic is the failure report
 mod tests {
     use super::*;
 
@@ -228,7 +229,8 @@ mod tests {
         let t = parse_utc_to_gps_ns("2026-12-01T02:00:00Z").unwrap();
         // IERS Bulletin C: GPS - UTC = 18 s since 2017-01-01.
         assert_eq!(utc_minus_gps_s(t), -18.0);
-        assert_eq!(gps_ns_to_utc_string(t), "2026-12-01T02:00:00Z");
+        assert_eq!(gps_ns_to_utc_string(t), "2026-12-01T02:00:00.000000Z");
+        assert_eq!(gps_ns_to_utc_string(t + 1_500_000_000), "2026-12-01T02:00:01.500000Z");
         assert!(parse_utc_to_gps_ns("yesterday").is_err());
     }
 }

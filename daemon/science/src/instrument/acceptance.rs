@@ -17,7 +17,13 @@ impl Acceptance {
     /// power gives 0: nothing arrives from below the horizon of the instrument frame).
     pub fn new(cos_power: f64, max_zenith_deg: f64) -> Result<Self, ScienceError> {
         let k = arg::within("cos_power", cos_power, 0.0, 100.0, "a number in [0, 100]")?;
-        let max = arg::within("max_zenith_deg", max_zenith_deg, 1e-6, 180.0, "an angle in (0, 180] degrees")?;
+        let max = arg::within(
+            "max_zenith_deg",
+            max_zenith_deg,
+            1e-6,
+            180.0,
+            "an angle in (0, 180] degrees",
+        )?;
         let two_pi = 2.0 * std::f64::consts::PI;
         let norm_sr = if k == 0.0 {
             two_pi * (1.0 - max.to_radians().cos())
@@ -25,7 +31,11 @@ impl Acceptance {
             let cm = max.to_radians().cos().max(0.0);
             two_pi * (1.0 - cm.powf(k + 1.0)) / (k + 1.0)
         };
-        Ok(Self { cos_power: k, max_zenith_deg: max, norm_sr })
+        Ok(Self {
+            cos_power: k,
+            max_zenith_deg: max,
+            norm_sr,
+        })
     }
 
     /// Density per steradian at `zenith_deg`; 0 outside the field of view (and for NaN).
@@ -98,7 +108,13 @@ mod tests {
         assert_eq!(acceptance_density(2.0, 45.0, f64::NAN), 0.0);
         assert_eq!(acceptance_density(-1.0, 45.0, 10.0), 0.0);
         assert_eq!(acceptance_density(f64::NAN, 45.0, 10.0), 0.0);
-        assert!(matches!(Acceptance::new(2.0, 0.0), Err(ScienceError::InvalidArgument { .. })));
-        assert!(matches!(Acceptance::new(f64::INFINITY, 40.0), Err(ScienceError::InvalidArgument { .. })));
+        assert!(matches!(
+            Acceptance::new(2.0, 0.0),
+            Err(ScienceError::InvalidArgument { .. })
+        ));
+        assert!(matches!(
+            Acceptance::new(f64::INFINITY, 40.0),
+            Err(ScienceError::InvalidArgument { .. })
+        ));
     }
 }

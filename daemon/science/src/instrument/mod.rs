@@ -7,6 +7,4 @@ pub mod spec;
 
 pub use acceptance::{Acceptance, acceptance_density};
 pub use response::InstrumentResponse;
-pub use spec::{
-    AreaTable, BackgroundSpec, CurveTable, InstrumentSpec, ResponseSpec, SiteSpec, SpecProblem,
-};
+pub use spec::{AreaTable, BackgroundSpec, CurveTable, InstrumentSpec, ResponseSpec, SiteSpec, SpecProblem};

@@ -140,7 +140,11 @@ impl InstrumentResponse {
         let j = self.area_e.partition_point(|&x| x <= e);
         let (a0, a1) = (row[j - 1], row[j]);
         let t = (e.ln() - self.area_ln_e[j - 1]) / (self.area_ln_e[j] - self.area_ln_e[j - 1]);
-        if a0 > 0.0 && a1 > 0.0 { (a0.ln() + t * (a1.ln() - a0.ln())).exp() } else { a0 + t * (a1 - a0) }
+        if a0 > 0.0 && a1 > 0.0 {
+            (a0.ln() + t * (a1.ln() - a0.ln())).exp()
+        } else {
+            a0 + t * (a1 - a0)
+        }
     }
 
     /// Effective area after cuts, m^2, at true energy `e_gev` and zenith (or off-axis) angle `zenith_deg`;
@@ -151,7 +155,11 @@ impl InstrumentResponse {
         }
         let (r0, r1, w) = self.rows_for(zenith_deg);
         let a0 = self.row_at(r0, e_gev);
-        if w == 0.0 { a0 } else { (1.0 - w) * a0 + w * self.row_at(r1, e_gev) }
+        if w == 0.0 {
+            a0
+        } else {
+            (1.0 - w) * a0 + w * self.row_at(r1, e_gev)
+        }
     }
 
     /// 68% containment radius of the PSF at `e_gev`, degrees.
@@ -220,7 +228,11 @@ impl InstrumentResponse {
         }
         let (r0, r1, w) = self.rows_for(zenith_deg);
         let first = self.fold_row(r0, lo, hi, coeff, index);
-        if w == 0.0 { first } else { (1.0 - w) * first + w * self.fold_row(r1, lo, hi, coeff, index) }
+        if w == 0.0 {
+            first
+        } else {
+            (1.0 - w) * first + w * self.fold_row(r1, lo, hi, coeff, index)
+        }
     }
 
     fn fold_row(&self, r: usize, lo: f64, hi: f64, coeff: f64, index: f64) -> f64 {
@@ -303,8 +315,14 @@ mod tests {
                 zenith_deg: vec![0.0, 40.0],
                 area_m2: vec![vec![10.0, 1000.0, 1e4], vec![0.0, 500.0, 5e3]],
             },
-            psf68_deg: CurveTable { energy_gev: vec![100.0, 10_000.0], value: vec![1.0, 0.1] },
-            energy_resolution: CurveTable { energy_gev: vec![100.0, 10_000.0], value: vec![0.5, 0.3] },
+            psf68_deg: CurveTable {
+                energy_gev: vec![100.0, 10_000.0],
+                value: vec![1.0, 0.1],
+            },
+            energy_resolution: CurveTable {
+                energy_gev: vec![100.0, 10_000.0],
+                value: vec![0.5, 0.3],
+            },
             systematic_deg: 0.05,
             clock_precision_ns: 100,
         }
@@ -342,7 +360,10 @@ mod tests {
         for &(z, index) in &[(0.0, 1.5), (20.0, 3.0), (40.0, 1.5), (30.0, 2.0), (10.0, 1.0)] {
             let exact = r.fold_power_law(z, 50.0, 2e5, 3.0, index);
             let numeric = r.fold_numeric(z, 50.0, 2e5, &[], |e| 3.0 * e.powf(-index));
-            assert!(((exact - numeric) / exact).abs() < 1e-6, "z={z} index={index}: {exact} vs {numeric}");
+            assert!(
+                ((exact - numeric) / exact).abs() < 1e-6,
+                "z={z} index={index}: {exact} vs {numeric}"
+            );
         }
         // [calc] from the formula: a constant area A over [a, b] with E^-2 gives A (1/a - 1/b).
         let flat = r.fold_power_law(44.0, 20_000.0, 40_000.0, 1.0, 2.0);
@@ -354,17 +375,35 @@ mod tests {
     #[test]
     fn bad_tables_are_typed_errors() {
         let cases: Vec<(&str, Box<dyn Fn(&mut ResponseSpec)>)> = vec![
-            ("response.effective_area.energy_gev", Box::new(|s| s.effective_area.energy_gev.clear())),
+            (
+                "response.effective_area.energy_gev",
+                Box::new(|s| s.effective_area.energy_gev.clear()),
+            ),
             (
                 "response.effective_area.energy_gev",
                 Box::new(|s| s.effective_area.energy_gev = vec![100.0, 50.0, 1e4]),
             ),
-            ("response.effective_area.area_m2[0][1]", Box::new(|s| s.effective_area.area_m2[0][1] = -3.0)),
-            ("response.effective_area.area_m2[1][2]", Box::new(|s| s.effective_area.area_m2[1][2] = f64::NAN)),
-            ("response.effective_area.zenith_deg", Box::new(|s| s.effective_area.zenith_deg = vec![])),
-            ("response.psf68_deg.value[0]", Box::new(|s| s.psf68_deg.value[0] = 0.0)),
+            (
+                "response.effective_area.area_m2[0][1]",
+                Box::new(|s| s.effective_area.area_m2[0][1] = -3.0),
+            ),
+            (
+                "response.effective_area.area_m2[1][2]",
+                Box::new(|s| s.effective_area.area_m2[1][2] = f64::NAN),
+            ),
+            (
+                "response.effective_area.zenith_deg",
+                Box::new(|s| s.effective_area.zenith_deg = vec![]),
+            ),
+            (
+                "response.psf68_deg.value[0]",
+                Box::new(|s| s.psf68_deg.value[0] = 0.0),
+            ),
             ("response.energy_max_gev", Box::new(|s| s.energy_max_gev = 10.0)),
-            ("response.max_zenith_deg", Box::new(|s| s.max_zenith_deg = f64::NAN)),
+            (
+                "response.max_zenith_deg",
+                Box::new(|s| s.max_zenith_deg = f64::NAN),
+            ),
         ];
         for (key, spoil) in cases {
             let mut s = spec();

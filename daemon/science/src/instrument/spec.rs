@@ -125,7 +125,10 @@ struct Checker<'a> {
 
 impl Checker<'_> {
     fn problem(&mut self, key: &str, message: impl Into<String>) {
-        self.out.push(SpecProblem { key: format!("{}.{}", self.prefix, key), message: message.into() });
+        self.out.push(SpecProblem {
+            key: format!("{}.{}", self.prefix, key),
+            message: message.into(),
+        });
     }
 
     fn finite_in(&mut self, key: &str, v: f64, lo: f64, hi: f64) {
@@ -151,7 +154,10 @@ impl Checker<'_> {
             }
         }
         if let Some(i) = xs.windows(2).position(|w| w[1] <= w[0]) {
-            self.problem(key, format!("must be strictly increasing (entry {} <= entry {i})", i + 1));
+            self.problem(
+                key,
+                format!("must be strictly increasing (entry {} <= entry {i})", i + 1),
+            );
         }
     }
 
@@ -160,12 +166,19 @@ impl Checker<'_> {
         if c.value.len() != c.energy_gev.len() {
             self.problem(
                 &format!("{key}.value"),
-                format!("has {} entries, energy_gev has {}", c.value.len(), c.energy_gev.len()),
+                format!(
+                    "has {} entries, energy_gev has {}",
+                    c.value.len(),
+                    c.energy_gev.len()
+                ),
             );
         }
         for (i, &v) in c.value.iter().enumerate() {
             if !v.is_finite() || v <= 0.0 {
-                self.problem(&format!("{key}.value[{i}]"), format!("{v} must be a finite number > 0"));
+                self.problem(
+                    &format!("{key}.value[{i}]"),
+                    format!("{v} must be a finite number > 0"),
+                );
             }
         }
     }
@@ -184,7 +197,10 @@ impl ResponseSpec {
     /// The response checks with keys relative to `response.`, for `InstrumentSpec::check`.
     fn check_into(&self, outer: &mut Checker<'_>) {
         let prefix = format!("{}.response", outer.prefix);
-        let mut c = Checker { prefix: &prefix, out: &mut *outer.out };
+        let mut c = Checker {
+            prefix: &prefix,
+            out: &mut *outer.out,
+        };
         self.check_fields(&mut c);
     }
 
@@ -193,7 +209,10 @@ impl ResponseSpec {
         c.finite_in("max_zenith_deg", r.max_zenith_deg, 1.0, 180.0);
         c.positive("energy_min_gev", r.energy_min_gev);
         c.positive("energy_max_gev", r.energy_max_gev);
-        if r.energy_max_gev.is_finite() && r.energy_min_gev.is_finite() && r.energy_max_gev <= r.energy_min_gev {
+        if r.energy_max_gev.is_finite()
+            && r.energy_min_gev.is_finite()
+            && r.energy_max_gev <= r.energy_min_gev
+        {
             c.problem("energy_max_gev", "must be greater than energy_min_gev");
         }
         let a = &r.effective_area;
@@ -213,7 +232,11 @@ impl ResponseSpec {
         if a.area_m2.len() != a.zenith_deg.len() {
             c.problem(
                 "effective_area.area_m2",
-                format!("has {} rows, zenith_deg has {} entries", a.area_m2.len(), a.zenith_deg.len()),
+                format!(
+                    "has {} rows, zenith_deg has {} entries",
+                    a.area_m2.len(),
+                    a.zenith_deg.len()
+                ),
             );
         }
         for (i, row) in a.area_m2.iter().enumerate() {
@@ -239,7 +262,10 @@ impl ResponseSpec {
         c.curve("energy_resolution", &r.energy_resolution);
         c.finite_in("systematic_deg", r.systematic_deg, 0.0, 10.0);
         if r.clock_precision_ns < 0 || r.clock_precision_ns > 1_000_000_000 {
-            c.problem("clock_precision_ns", format!("{} is outside [0, 1e9]", r.clock_precision_ns));
+            c.problem(
+                "clock_precision_ns",
+                format!("{} is outside [0, 1e9]", r.clock_precision_ns),
+            );
         }
     }
 }
@@ -251,12 +277,20 @@ impl InstrumentSpec {
         let before = out.len();
         let mut c = Checker { prefix, out };
         match &self.site {
-            SiteSpec::Ground { latitude_deg, longitude_deg, altitude_m } => {
+            SiteSpec::Ground {
+                latitude_deg,
+                longitude_deg,
+                altitude_m,
+            } => {
                 c.finite_in("site.latitude_deg", *latitude_deg, -90.0, 90.0);
                 c.finite_in("site.longitude_deg", *longitude_deg, -180.0, 360.0);
                 c.finite_in("site.altitude_m", *altitude_m, -500.0, 10_000.0);
             }
-            SiteSpec::Space { pointing_ra_deg, pointing_dec_deg, ra_drift_deg_per_s } => {
+            SiteSpec::Space {
+                pointing_ra_deg,
+                pointing_dec_deg,
+                ra_drift_deg_per_s,
+            } => {
                 c.finite_in("site.pointing_ra_deg", *pointing_ra_deg, 0.0, 360.0);
                 c.finite_in("site.pointing_dec_deg", *pointing_dec_deg, -90.0, 90.0);
                 c.finite_in("site.ra_drift_deg_per_s", *ra_drift_deg_per_s, -1.0, 1.0);

@@ -1,0 +1,173 @@
+//! Engine configuration: what the daemon's `[instrument.search]` and `[instrument.assess]` tables compile to.
+//! `check` reports every problem at once, each naming its key, before an engine is built from it.
+
+use glint_science::instrument::InstrumentResponse;
+
+use crate::error::EngineError;
+
+/// Everything one instrument's engine needs.
+#[derive(Debug, Clone, PartialEq)]
+pub struct EngineConfig {
+    /// Instrument id; also stamped into the saved acceptance map so a map is never loaded for another one.
+    pub instrument: String,
+    /// The instrument's response (PSF, field of view, systematic error, clock precision).
+    pub response: InstrumentResponse,
+    /// Timescales of the ladder, seconds, strictly increasing, 1 to 32 of them, each in [1e-4, 3600].
+    pub ladder_s: Vec<f64>,
+    /// Radius of the disc each photon seeds, degrees, [0.01, 10].
+    pub search_radius_deg: f64,
+    /// Target false-alarm rate of the whole search (all timescales, whole field of view), per year.
+    pub far_per_year: f64,
+    /// Trailing window of the all-sky rate, seconds (live time is counted, dead time is not).
+    pub rate_window_s: f64,
+    /// Time constant of the acceptance map, seconds.
+    pub acceptance_tau_s: f64,
+    /// No trigger until the acceptance map holds this much (decayed) weight, unless a map was loaded or a
+    /// prior seeded it.
+    pub warmup_photons: u64,
+    /// Reorder tolerance, ns: the watermark trails the latest time seen by this much.
+    pub reorder_tolerance_ns: i64,
+    /// A frame more than this far ahead of the stream is refused as a clock jump, ns.
+    pub max_clock_jump_ns: i64,
+    /// Seeds the acceptance map with a cos^power density of weight `warmup_photons`, so triggering starts at
+    /// once; data then replace the prior with the map's time constant. None: learn from data only.
+    pub acceptance_prior_cos_power: Option<f64>,
+    /// Assessment settings.
+    pub assess: AssessConfig,
+    /// False: reorder and count only (`glint replay --no-search`); no search, no findings.
+    pub search_enabled: bool,
+}
+
+/// Assessment settings and verdict thresholds (defaults as in `deploy/glint.toml`).
+#[derive(Debug, Clone, PartialEq)]
+pub struct AssessConfig {
+    /// Shortest persistence window, seconds. Default 30.
+    pub persistence_min_s: f64,
+    /// The persistence window is at least this many times the candidate's timescale. Default 10.
+    pub persistence_timescale_factor: f64,
+    /// Window before the flash checked for earlier emission, seconds. Default 30 (the longest default
+    /// timescale).
+    pub pre_window_s: f64,
+    /// Persistent when the post-flash excess exceeds this significance. Default 3.
+    pub post_sigma_max: f64,
+    /// Persistent when the pre-flash excess exceeds this significance. Default 3.
+    pub pre_sigma_max: f64,
+    /// Instrumental when the all-sky count in the flash window (the flash's own disc left out) exceeds the
+    /// all-sky rate by this significance. Default 5.
+    pub all_sky_sigma_max: f64,
+    /// Instrumental when more than this fraction of the flash photons share a timestamp (within the clock
+    /// precision) with another flash photon. Default 0.5.
+    pub identical_fraction_max: f64,
+    /// Instrumental when the flash photons' RMS spread about their centroid exceeds the PSF's expectation by
+    /// this factor. Default 2.5.
+    pub spread_ratio_max: f64,
+    /// Undecided when dead time covers more than this fraction of the persistence window. Default 0.1.
+    pub max_dead_fraction: f64,
+    /// Most photons a candidate keeps for its assessment and fit (those within three search radii); more
+    /// are dropped and flagged `photons_capped`. Default 10000.
+    pub max_photons: usize,
+    /// Most candidates open at once; crossings that would open more are counted as suppressed, not reported.
+    /// Default 256.
+    pub max_open_candidates: usize,
+    /// Power-law index of the background spectrum (dN/dE ~ E^-index), passed to the evaporation fit.
+    /// Default 2.7 (the daemon sets the instrument's `background.spectral_index`).
+    pub background_spectral_index: f64,
+}
+
+impl Default for AssessConfig {
+    fn default() -> Self {
+        Self {
+            persistence_min_s: 30.0,
+            persistence_timescale_factor: 10.0,
+            pre_window_s: 30.0,
+            post_sigma_max: 3.0,
+            pre_sigma_max: 3.0,
+            all_sky_sigma_max: 5.0,
+            identical_fraction_max: 0.5,
+            spread_ratio_max: 2.5,
+            max_dead_fraction: 0.1,
+            max_photons: 10_000,
+            max_open_candidates: 256,
+            background_spectral_index: 2.7,
+        }
+    }
+}
+
+impl EngineConfig {
+    /// A configuration with the documented defaults (`deploy/glint.toml`) for `instrument`.
+    pub fn with_defaults(instrument: impl Into<String>, response: InstrumentResponse) -> Self {
+        Self {
+            instrument: instrument.into(),
+            response,
+            ladder_s: vec![0.01, 0.03, 0.1, 0.3, 1.0, 3.0, 10.0, 30.0],
+            search_radius_deg: 0.5,
+            far_per_year: 1.0,
+            rate_window_s: 60.0,
+            acceptance_tau_s: 21_600.0,
+            warmup_photons: 20_000,
+            reorder_tolerance_ns: 20_000_000,
+            max_clock_jump_ns: 3_600_000_000_000,
+            acceptance_prior_cos_power: None,
+            assess: AssessConfig::default(),
+            search_enabled: true,
+        }
+    }
+
+    /// Checks every field; the error lists every problem, each naming its key.
+    pub fn check(&self) -> Result<(), EngineError> {
+        let mut p = Vec::new();
+        let mut range = |key: &str, v: f64, lo: f64, hi: f64| {
+            if !v.is_finite() || v < lo || v > hi {
+                p.push(format!("{key}: {v} is outside [{lo}, {hi}]"));
+            }
+        };
+        range("search_radius_deg", self.search_radius_deg, 0.01, 10.0);
+        range("far_per_year", self.far_per_year, 1e-12, 1e12);
+        range("rate_window_s", self.rate_window_s, 0.1, 86_400.0);
+        range("acceptance_tau_s", self.acceptance_tau_s, 1.0, 1e9);
+        if let Some(c) = self.acceptance_prior_cos_power {
+            range("acceptance_prior_cos_power", c, 0.0, 20.0);
+        }
+        let a = &self.assess;
+        range("assess.persistence_min_s", a.persistence_min_s, 0.0, 86_400.0);
+        range("assess.persistence_timescale_factor", a.persistence_timescale_factor, 0.0, 1e4);
+        range("assess.pre_window_s", a.pre_window_s, 0.0, 86_400.0);
+        range("assess.post_sigma_max", a.post_sigma_max, -40.0, 40.0);
+        range("assess.pre_sigma_max", a.pre_sigma_max, -40.0, 40.0);
+        range("assess.all_sky_sigma_max", a.all_sky_sigma_max, -40.0, 40.0);
+        range("assess.identical_fraction_max", a.identical_fraction_max, 0.0, 1.0);
+        range("assess.spread_ratio_max", a.spread_ratio_max, 0.0, 1e6);
+        range("assess.max_dead_fraction", a.max_dead_fraction, 0.0, 1.0);
+        range("assess.background_spectral_index", a.background_spectral_index, 1.01, 6.0);
+        if self.ladder_s.is_empty() || self.ladder_s.len() > 32 {
+            p.push(format!("ladder_s: {} timescales, expected 1 to 32", self.ladder_s.len()));
+        }
+        for (i, &s) in self.ladder_s.iter().enumerate() {
+            if !s.is_finite() || !(1e-4..=3600.0).contains(&s) {
+                p.push(format!("ladder_s[{i}]: {s} is outside [0.0001, 3600]"));
+            }
+        }
+        if let Some(i) = self.ladder_s.windows(2).position(|w| w[1] <= w[0]) {
+            p.push(format!("ladder_s: must be strictly increasing (entry {} <= entry {i})", i + 1));
+        }
+        if self.instrument.is_empty() {
+            p.push("instrument: empty id".into());
+        }
+        if self.warmup_photons > 1_000_000_000 {
+            p.push(format!("warmup_photons: {} is above 1e9", self.warmup_photons));
+        }
+        if !(0..=3_600_000_000_000).contains(&self.reorder_tolerance_ns) {
+            p.push(format!("reorder_tolerance_ns: {} is outside [0, 3.6e12]", self.reorder_tolerance_ns));
+        }
+        if !(1..=i64::MAX / 4).contains(&self.max_clock_jump_ns) {
+            p.push(format!("max_clock_jump_ns: {} must be > 0", self.max_clock_jump_ns));
+        }
+        if a.max_photons == 0 || a.max_photons > 10_000_000 {
+            p.push(format!("assess.max_photons: {} is outside [1, 1e7]", a.max_photons));
+        }
+        if a.max_open_candidates == 0 || a.max_open_candidates > 100_000 {
+            p.push(format!("assess.max_open_candidates: {} is outside [1, 100000]", a.max_open_candidates));
+        }
+        if p.is_empty() { Ok(()) } else { Err(EngineError::Config(p)) }
+    }
+}

@@ -1,0 +1,975 @@
+//! The engine proper: frames in, event time forward, findings out. It wires the reorder stage, the dead-time
+//! ledger, the sky index, the background model, the seeded multi-timescale test (SCIENCE.md section 4),
+//! the candidates and their assessment. Everything happens in event time as released photons and the
+//! watermark pass; nothing reads a clock.
+
+use glint_science::critical::{CriticalTable, false_crossing_probability, per_seed_bound};
+use glint_science::geometry::{disc_solid_angle_sr, error_radius90_deg};
+use glint_science::poisson::{ln_sf, sigma_from_ln_p};
+use glint_wire::pb::{PhotonBatch, StreamStatus};
+
+use crate::assess::{self, AssessInput};
+use crate::background::{AcceptanceMap, AllSky, N_BINS};
+use crate::config::EngineConfig;
+use crate::dead::DeadTime;
+use crate::error::EngineError;
+use crate::finding::{Finding, Flash, PhotonRec};
+use crate::reorder::{Photon, Reorder};
+use crate::sky::{SkyIndex, radec_of, unit_vector};
+
+/// Seconds in a Julian year (365.25 days): the unit of every false-alarm rate.
+pub const SECONDS_PER_YEAR: f64 = 31_557_600.0;
+/// Critical tables span backgrounds from here (lower b uses the first, higher threshold: conservative)...
+const TABLE_B_MIN: f64 = 1e-10;
+/// ...to here (higher b is computed exactly, slowly).
+const TABLE_B_MAX: f64 = 1e4;
+/// Grid density of the critical tables.
+const TABLE_POINTS_PER_DECADE: u32 = 50;
+/// The thresholds are rebuilt when the all-sky rate has moved by more than this fraction since the last
+/// build, so a test's background is within this of R(t) x dt x a x Omega.
+const RATE_REBUILD_FRACTION: f64 = 0.02;
+/// ... and at least this often in event time (also picks up the slowly changing acceptance map).
+const MODEL_REFRESH_NS: i64 = 60_000_000_000;
+
+/// Counters and gauges, for metrics, the replay summary and the calibration tests. Vectors are indexed by
+/// timescale (the ladder's order).
+#[derive(Debug, Clone, PartialEq, Default)]
+pub struct EngineStats {
+    /// Photons taken in (late ones included, refused frames not).
+    pub photons_in: u64,
+    /// Photons released from the reorder stage in time order.
+    pub released: u64,
+    /// Photons dropped because they arrived behind the watermark.
+    pub late: u64,
+    /// Photons waiting in the reorder stage.
+    pub pending: u64,
+    /// Frames refused as clock jumps.
+    pub refused_clock_jump: u64,
+    /// Frames refused as malformed (the caller's validation should have caught them).
+    pub refused_invalid: u64,
+    /// Sequence gaps turned into dead time.
+    pub seq_gaps: u64,
+    /// Stream breaks reported by the caller.
+    pub stream_breaks: u64,
+    /// Declared dead intervals that ended behind the watermark (too late to stop tests already made).
+    pub dead_declared_late: u64,
+    /// Dead time recorded (union of intervals), ns.
+    pub dead_ns: i64,
+    /// Live time: the span from the stream's first time to the processed time, minus dead time, ns.
+    pub live_ns: i64,
+    /// Released photons that seeded tests (at least one timescale tested).
+    pub seeds_tested: u64,
+    /// Released photons not tested because the model was warming up (acceptance map below `warmup_photons`
+    /// or less than half the rate window live).
+    pub seeds_warmup: u64,
+    /// Released photons outside the field of view or in an acceptance bin with no weight.
+    pub seeds_outside_fov: u64,
+    /// Tests made, per timescale.
+    pub tests: Vec<u64>,
+    /// Tests skipped because the window touched dead time or reached before the stream began.
+    pub skipped_dead: Vec<u64>,
+    /// Tests that crossed their threshold, per timescale.
+    pub crossings: Vec<u64>,
+    /// Predicted false crossings, per timescale: the sum over tests of P(N >= n*(b) - 1 | b)
+    /// (SCIENCE.md section 4).
+    pub predicted_false_crossings: Vec<f64>,
+    /// Candidates opened (one per flash).
+    pub candidates: u64,
+    /// Candidates that crossed on each timescale at least once.
+    pub candidates_per_timescale: Vec<u64>,
+    /// Crossings not reported because `max_open_candidates` were already open.
+    pub candidates_suppressed: u64,
+    /// Candidates open now.
+    pub open_candidates: u64,
+    /// Flash findings emitted.
+    pub flashes: u64,
+    /// Assessment findings emitted.
+    pub assessments: u64,
+    /// Withdrawal findings emitted.
+    pub withdrawals: u64,
+    /// All-sky rate the current thresholds were built for, Hz (0 before the first build).
+    pub all_sky_rate_hz: f64,
+    /// Threshold rebuilds so far.
+    pub model_builds: u64,
+    /// Decayed weight of the acceptance map (effective photon count).
+    pub acceptance_weight: f64,
+    /// True once the warm-up rule is met.
+    pub warm: bool,
+    /// Photons held in the sky index.
+    pub held_photons: u64,
+    /// Active HEALPix pixels of the sky index.
+    pub active_pixels: u64,
+    /// HEALPix depth of the sky index.
+    pub sky_depth: u8,
+}
+
+/// Derived constants of a configuration.
+#[derive(Debug)]
+struct Params {
+    ladder_ns: Vec<i64>,
+    k: usize,
+    longest_ns: i64,
+    cos_r: f64,
+    cos_merge: f64,
+    omega_r: f64,
+    far_per_s: f64,
+    rate_window_ns: i64,
+    pre_ns: i64,
+    sky_retention_ns: i64,
+    allsky_retention_ns: i64,
+    refresh_ns: i64,
+}
+
+fn secs_to_ns(s: f64) -> i64 {
+    // Inputs are checked to lie within a day or so; the cast cannot saturate in practice.
+    (s * 1e9).round() as i64
+}
+
+impl Params {
+    fn new(cfg: &EngineConfig) -> Self {
+        let ladder_ns: Vec<i64> = cfg.ladder_s.iter().map(|&s| secs_to_ns(s).max(1)).collect();
+        let longest_ns = ladder_ns.last().copied().unwrap_or(1);
+        let r = cfg.search_radius_deg;
+        let pre_ns = secs_to_ns(cfg.assess.pre_window_s);
+        let rate_window_ns = secs_to_ns(cfg.rate_window_s).max(1);
+        Self {
+            k: ladder_ns.len(),
+            cos_r: r.to_radians().cos(),
+            cos_merge: (2.0 * r).to_radians().cos(),
+            omega_r: disc_solid_angle_sr(r),
+            far_per_s: cfg.far_per_year / SECONDS_PER_YEAR,
+            sky_retention_ns: longest_ns.saturating_add(pre_ns),
+            allsky_retention_ns: rate_window_ns
+                .saturating_add(longest_ns)
+                .max(longest_ns.saturating_mul(2).saturating_add(pre_ns)),
+            refresh_ns: MODEL_REFRESH_NS.min(secs_to_ns(cfg.acceptance_tau_s / 10.0)).max(1),
+            ladder_ns,
+            longest_ns,
+            rate_window_ns,
+            pre_ns,
+        }
+    }
+}
+
+/// Thresholds and backgrounds for one snapshot of (R, acceptance map); per (bin, timescale) entries are
+/// filled on first use, so the hot path is a table read and an integer compare.
+#[derive(Debug)]
+struct Model {
+    rate_hz: f64,
+    table: CriticalTable,
+    dens: Vec<f64>,
+    /// Critical count per (bin, timescale); 0 = not computed yet, u32::MAX = no acceptance there.
+    crit: Vec<u32>,
+    b: Vec<f64>,
+    pfalse: Vec<f64>,
+    taken_at: i64,
+}
+
+/// A photon of a candidate's disc, kept for the assessment and the fit.
+#[derive(Debug, Clone, Copy)]
+pub(crate) struct CandPhoton {
+    pub(crate) t: i64,
+    pub(crate) energy: f32,
+}
+
+/// An open candidate: a flash and the crossings merged into it, waiting for its persistence window.
+#[derive(Debug)]
+pub(crate) struct Candidate {
+    pub(crate) id: u64,
+    /// Centre of the candidate's disc (the first flash's position) and its acceptance bin.
+    pub(crate) pos0: [f64; 3],
+    pub(crate) bin0: u16,
+    pub(crate) zenith0: f64,
+    /// Crossings with seed time up to here update the candidate; later ones within the persistence window
+    /// are only counted.
+    pub(crate) span_limit: i64,
+    /// Earliest window start and latest seed time over the merged crossings: the flash span.
+    pub(crate) span_start: i64,
+    pub(crate) t_last: i64,
+    pub(crate) mask: u64,
+    pub(crate) best: Flash,
+    pub(crate) best_all_sky: u64,
+    pub(crate) best_all_sky_expected: f64,
+    /// All-sky photons in the pre-window (span_start - pre, span_start].
+    pub(crate) pre_all_sky: u64,
+    /// Photons released when the last crossing was processed (all those with time <= t_last).
+    pub(crate) released_at_last: u64,
+    /// Photons in the disc from (first window start - longest - pre) on, in time order.
+    pub(crate) photons: Vec<CandPhoton>,
+    pub(crate) capped: bool,
+    pub(crate) late_crossings: u64,
+}
+
+/// A released photon with what the search derives from it.
+#[derive(Debug, Clone, Copy)]
+struct Released {
+    p: Photon,
+    v: [f64; 3],
+    bin: Option<u16>,
+    slot: u32,
+}
+
+/// Where the stream is in event time.
+#[derive(Debug, Default)]
+struct StreamClock {
+    start: Option<i64>,
+    latest: Option<i64>,
+    last_seq: Option<u64>,
+    /// Set by `stream_break`: the stream time when the producer went away.
+    broken_from: Option<i64>,
+    broken: bool,
+    processed_to: Option<i64>,
+}
+
+/// One instrument's trigger engine.
+///
+/// # Call order and time
+///
+/// Feed frames in the order they arrived: [`push_batch`](Self::push_batch) for photons,
+/// [`push_status`](Self::push_status) for stream status (time moving on through quiet periods, declared dead
+/// time), [`stream_break`](Self::stream_break) when the producer disconnects, and
+/// [`finish`](Self::finish) at the end of input. Each call appends findings to the caller's buffer.
+///
+/// Time only moves forward. The watermark (latest time seen minus the reorder tolerance) never goes back;
+/// photons behind it on arrival are counted as late and dropped; a frame more than `max_clock_jump_ns` ahead
+/// of the stream is refused with [`EngineError::ClockJump`] and leaves the engine unchanged (after a stream
+/// break the next frame may start anywhere: the gap becomes dead time). Everything downstream of the reorder
+/// stage sees photons in time order, so the same frames always give the same findings, and batches shuffled
+/// within the reorder tolerance give the same findings too.
+///
+/// [`save_state`](Self::save_state) and [`load_state`](Self::load_state) carry the acceptance map across
+/// restarts; load before the first frame.
+///
+/// # Memory
+///
+/// Held state grows with (event rate x (longest timescale + pre-window)) for the sky index, with (event rate
+/// x max(rate window + longest, 2 longest + pre-window)) for the all-sky times, with the reorder tolerance for
+/// pending photons, and with the open candidates (each at most `max_photons`, at most `max_open_candidates`
+/// of them); never with uptime.
+#[derive(Debug)]
+pub struct Engine {
+    cfg: EngineConfig,
+    p: Params,
+    reorder: Reorder,
+    dead: DeadTime,
+    sky: SkyIndex,
+    accept: AcceptanceMap,
+    all_sky: AllSky,
+    model: Option<Model>,
+    rate_ok: bool,
+    warm: bool,
+    cands: Vec<Candidate>,
+    next_id: u64,
+    clock: StreamClock,
+    stats: EngineStats,
+    group: Vec<Released>,
+    hist: Vec<u32>,
+    flash_buf: Vec<(PhotonRec, [f64; 3])>,
+}
+
+impl Engine {
+    /// Builds an engine after checking the configuration.
+    pub fn new(cfg: EngineConfig) -> Result<Self, EngineError> {
+        cfg.check()?;
+        let p = Params::new(&cfg);
+        let mut accept = AcceptanceMap::new(cfg.response.max_zenith_deg(), cfg.acceptance_tau_s);
+        if let Some(power) = cfg.acceptance_prior_cos_power {
+            accept.seed_prior(power, cfg.warmup_photons.max(1) as f64);
+        }
+        let sky = SkyIndex::new(cfg.search_radius_deg);
+        let stats = EngineStats {
+            tests: vec![0; p.k],
+            skipped_dead: vec![0; p.k],
+            crossings: vec![0; p.k],
+            predicted_false_crossings: vec![0.0; p.k],
+            candidates_per_timescale: vec![0; p.k],
+            sky_depth: sky.depth(),
+            ..EngineStats::default()
+        };
+        Ok(Self {
+            hist: vec![0; p.k],
+            p,
+            reorder: Reorder::default(),
+            dead: DeadTime::default(),
+            sky,
+            accept,
+            all_sky: AllSky::default(),
+            model: None,
+            rate_ok: false,
+            warm: false,
+            cands: Vec::new(),
+            next_id: 1,
+            clock: StreamClock::default(),
+            stats,
+            group: Vec::new(),
+            flash_buf: Vec::new(),
+            cfg,
+        })
+    }
+
+    /// The configuration the engine runs with.
+    pub fn config(&self) -> &EngineConfig {
+        &self.cfg
+    }
+
+    /// Current watermark: every photon older than it has been released; None before the first frame.
+    pub fn watermark_ns(&self) -> Option<i64> {
+        self.reorder.watermark()
+    }
+
+    /// Counters and gauges.
+    pub fn stats(&self) -> EngineStats {
+        let mut s = self.stats.clone();
+        s.pending = self.reorder.len() as u64;
+        s.dead_ns = self.dead.total_ns();
+        s.live_ns = match (self.clock.start, self.clock.processed_to) {
+            (Some(a), Some(b)) => b.saturating_sub(a).saturating_sub(s.dead_ns).max(0),
+            _ => 0,
+        };
+        s.open_candidates = self.cands.len() as u64;
+        s.all_sky_rate_hz = self.model.as_ref().map_or(0.0, |m| m.rate_hz);
+        s.acceptance_weight = self.accept.weight();
+        s.warm = self.warm;
+        s.held_photons = self.sky.len() as u64;
+        s.active_pixels = self.sky.active_pixels() as u64;
+        s
+    }
+
+    /// The acceptance map as a versioned, CRC-checked blob.
+    pub fn save_state(&self) -> Vec<u8> {
+        self.accept.save(&self.cfg.instrument)
+    }
+
+    /// Loads an acceptance map saved by [`save_state`](Self::save_state) for the same instrument and field of
+    /// view; the warm-up rule is then met at once. A corrupt or foreign blob is an error and changes nothing.
+    pub fn load_state(&mut self, blob: &[u8]) -> Result<(), EngineError> {
+        self.accept.load(blob, &self.cfg.instrument)?;
+        self.model = None;
+        Ok(())
+    }
+
+    /// Takes a photon batch (already validated by the caller), releases what the watermark allows and runs
+    /// the search on it.
+    pub fn push_batch(&mut self, batch: &PhotonBatch, out: &mut Vec<Finding>) -> Result<(), EngineError> {
+        let n = batch.time_gps_ns.len();
+        let bad = |detail: String| EngineError::InvalidFrame { seq: batch.seq, detail };
+        let columns = [
+            ("ra_deg", batch.ra_deg.len()),
+            ("dec_deg", batch.dec_deg.len()),
+            ("zenith_deg", batch.zenith_deg.len()),
+            ("azimuth_deg", batch.azimuth_deg.len()),
+            ("energy_gev", batch.energy_gev.len()),
+        ];
+        for (name, len) in columns {
+            if len != n {
+                self.stats.refused_invalid += 1;
+                return Err(bad(format!("column {name} has {len} entries, expected {n}")));
+            }
+        }
+        for i in 0..n {
+            let (ra, dec) = (batch.ra_deg[i], batch.dec_deg[i]);
+            if !ra.is_finite() || !dec.is_finite() || !(-90.0..=90.0).contains(&dec) {
+                self.stats.refused_invalid += 1;
+                return Err(bad(format!("photon {i}: direction ({ra}, {dec}) is not a valid ICRS position")));
+            }
+        }
+        let Some((&tmin, &tmax)) = batch.time_gps_ns.iter().min().zip(batch.time_gps_ns.iter().max()) else {
+            if self.clock.latest.is_some() && !self.clock.broken {
+                self.note_seq(batch.seq, None);
+            }
+            return Ok(());
+        };
+        self.check_clock(batch.seq, tmax)?;
+        self.begin_frame(batch.seq, tmin);
+        for i in 0..n {
+            let t = batch.time_gps_ns[i];
+            if self.reorder.is_late(t) {
+                self.stats.late += 1;
+                continue;
+            }
+            self.reorder.push(Photon {
+                t,
+                ra: batch.ra_deg[i],
+                dec: batch.dec_deg[i],
+                energy: batch.energy_gev[i],
+                zenith: batch.zenith_deg[i],
+                azimuth: batch.azimuth_deg[i],
+            });
+        }
+        self.stats.photons_in += n as u64;
+        self.move_time(tmax);
+        self.advance(out);
+        Ok(())
+    }
+
+    /// Takes a stream status: time moves on to `now - tolerance` and declared dead intervals are recorded.
+    pub fn push_status(&mut self, status: &StreamStatus, out: &mut Vec<Finding>) -> Result<(), EngineError> {
+        let mut newest = status.now_gps_ns;
+        for (i, d) in status.dead.iter().enumerate() {
+            if d.end_gps_ns < d.start_gps_ns {
+                self.stats.refused_invalid += 1;
+                return Err(EngineError::InvalidFrame {
+                    seq: status.seq,
+                    detail: format!(
+                        "dead interval {i} ends ({}) before it starts ({})",
+                        d.end_gps_ns, d.start_gps_ns
+                    ),
+                });
+            }
+            newest = newest.max(d.end_gps_ns);
+        }
+        self.check_clock(status.seq, newest)?;
+        self.begin_frame(status.seq, status.now_gps_ns);
+        let w = self.reorder.watermark();
+        for d in &status.dead {
+            if w.is_some_and(|w| d.end_gps_ns <= w) {
+                self.stats.dead_declared_late += 1;
+            }
+            self.add_dead(d.start_gps_ns, d.end_gps_ns);
+        }
+        self.move_time(status.now_gps_ns);
+        self.advance(out);
+        Ok(())
+    }
+
+    /// The producer went away: the time until the next frame is dead, the next frame may start a new sequence
+    /// and is not checked for a clock jump.
+    pub fn stream_break(&mut self) {
+        if let Some(latest) = self.clock.latest {
+            self.clock.broken_from = Some(latest);
+        }
+        self.clock.broken = true;
+        self.stats.stream_breaks += 1;
+    }
+
+    /// End of input: releases every pending photon, assesses the candidates whose persistence window the data
+    /// covered, and assesses the rest as undecided (cut short).
+    pub fn finish(&mut self, out: &mut Vec<Finding>) {
+        let Some(latest) = self.clock.latest else { return };
+        self.reorder.advance_watermark(latest.saturating_add(1));
+        self.advance(out);
+        let cands = std::mem::take(&mut self.cands);
+        for c in cands {
+            let close = self.close_of(&c);
+            let cut = close > latest;
+            self.emit_assessment(c, close.min(latest), cut, out);
+        }
+    }
+
+    fn check_clock(&mut self, seq: u64, t: i64) -> Result<(), EngineError> {
+        if let Some(latest) = self.clock.latest {
+            let limit = self.cfg.max_clock_jump_ns;
+            if !self.clock.broken && t.saturating_sub(latest) > limit {
+                self.stats.refused_clock_jump += 1;
+                return Err(EngineError::ClockJump {
+                    seq,
+                    time_ns: t,
+                    stream_ns: latest,
+                    ahead_ns: t.saturating_sub(latest),
+                    limit_ns: limit,
+                });
+            }
+        }
+        Ok(())
+    }
+
+    /// Stream start, stream breaks and sequence gaps, for a frame whose first time is `first_t`.
+    fn begin_frame(&mut self, seq: u64, first_t: i64) {
+        if self.clock.start.is_none() {
+            self.clock.start = Some(first_t);
+        }
+        if self.clock.broken {
+            self.clock.broken = false;
+            self.clock.last_seq = None;
+            if let Some(from) = self.clock.broken_from.take() {
+                self.add_dead(from.saturating_add(1), first_t);
+            }
+        }
+        self.note_seq(seq, Some(first_t));
+    }
+
+    fn note_seq(&mut self, seq: u64, first_t: Option<i64>) {
+        if let (Some(last), Some(latest)) = (self.clock.last_seq, self.clock.latest) {
+            if seq > last.saturating_add(1) {
+                self.stats.seq_gaps += 1;
+                if let Some(t) = first_t {
+                    self.add_dead(latest.saturating_add(1), t);
+                }
+            }
+        }
+        self.clock.last_seq = Some(seq);
+    }
+
+    fn add_dead(&mut self, start: i64, end: i64) {
+        let start = self.clock.start.map_or(start, |s| start.max(s));
+        self.dead.add(start, end);
+    }
+
+    fn move_time(&mut self, t: i64) {
+        let latest = self.clock.latest.map_or(t, |l| l.max(t));
+        self.clock.latest = Some(latest);
+        self.reorder.advance_watermark(latest.saturating_sub(self.cfg.reorder_tolerance_ns));
+    }
+
+    /// Releases every photon behind the watermark, group by group of equal time, assessing candidates whose
+    /// persistence window ended before each group, then those that ended before the watermark.
+    fn advance(&mut self, out: &mut Vec<Finding>) {
+        let Some(w) = self.reorder.watermark() else { return };
+        while let Some(t) = self.reorder.next_time().filter(|&t| t < w) {
+            self.assess_due(t, out);
+            self.group.clear();
+            while let Some(p) = self.reorder.pop_before(t.saturating_add(1)) {
+                self.group.push(Released { p, v: [0.0; 3], bin: None, slot: 0 });
+            }
+            self.release_group(t, out);
+        }
+        self.assess_due(w, out);
+        let processed = self.clock.processed_to.map_or(w, |p| p.max(w));
+        self.clock.processed_to = Some(processed);
+    }
+
+    fn release_group(&mut self, t: i64, out: &mut Vec<Finding>) {
+        self.stats.released += self.group.len() as u64;
+        self.clock.processed_to = Some(self.clock.processed_to.map_or(t, |p| p.max(t)));
+        if !self.cfg.search_enabled {
+            return;
+        }
+        for i in 0..self.group.len() {
+            let p = self.group[i].p;
+            let v = unit_vector(p.ra, p.dec);
+            let bin = self.accept.bin(p.zenith, p.azimuth);
+            self.all_sky.push(t);
+            if let Some(b) = bin {
+                self.accept.add(t, b);
+            }
+            let slot = self.sky.insert(&p, v);
+            self.group[i] = Released { p, v, bin, slot };
+            for c in &mut self.cands {
+                if dot(v, c.pos0) >= self.p.cos_r {
+                    if c.photons.len() < self.cfg.assess.max_photons {
+                        c.photons.push(CandPhoton { t, energy: p.energy });
+                    } else {
+                        c.capped = true;
+                    }
+                }
+            }
+        }
+        self.sky.evict_before(t.saturating_sub(self.p.sky_retention_ns));
+        self.all_sky.evict_before(t.saturating_sub(self.p.allsky_retention_ns));
+        let oldest_needed = self
+            .cands
+            .iter()
+            .map(|c| c.span_start.saturating_sub(self.p.pre_ns).min(c.t_last))
+            .min()
+            .unwrap_or(i64::MAX)
+            .min(t.saturating_sub(self.p.allsky_retention_ns));
+        self.dead.prune_before(oldest_needed);
+        self.refresh_model(t);
+        for i in 0..self.group.len() {
+            self.seed(i, out);
+        }
+    }
+
+    fn refresh_model(&mut self, t: i64) {
+        let start = self.clock.start.unwrap_or(t);
+        let rate = self.all_sky.rate_hz(t, self.p.rate_window_ns, &self.dead, start);
+        self.rate_ok = rate.is_some();
+        if !self.warm && (self.accept.loaded() || self.accept.weight() >= self.cfg.warmup_photons as f64) {
+            self.warm = true;
+        }
+        let Some(r) = rate else { return };
+        if !self.warm {
+            return;
+        }
+        let stale = match &self.model {
+            None => true,
+            Some(m) => {
+                (r / m.rate_hz - 1.0).abs() > RATE_REBUILD_FRACTION
+                    || t.saturating_sub(m.taken_at) >= self.p.refresh_ns
+            }
+        };
+        if !stale {
+            return;
+        }
+        let built = per_seed_bound(self.p.far_per_s, self.p.k, r)
+            .and_then(|bound| CriticalTable::new(bound, TABLE_B_MIN, TABLE_B_MAX, TABLE_POINTS_PER_DECADE));
+        match built {
+            Ok(table) => {
+                let mut dens = self.model.take().map(|m| m.dens).unwrap_or_default();
+                self.accept.densities(&mut dens);
+                let n = N_BINS * self.p.k;
+                self.model = Some(Model {
+                    rate_hz: r,
+                    table,
+                    dens,
+                    crit: vec![0; n],
+                    b: vec![0.0; n],
+                    pfalse: vec![0.0; n],
+                    taken_at: t,
+                });
+                self.stats.model_builds += 1;
+            }
+            Err(_) => self.rate_ok = false,
+        }
+    }
+
+    /// The seeded test of one released photon on every timescale (SCIENCE.md section 4).
+    fn seed(&mut self, i: usize, out: &mut Vec<Finding>) {
+        let g = self.group[i];
+        let k_all = self.p.k;
+        let Some(bin) = g.bin else {
+            self.stats.seeds_outside_fov += 1;
+            return;
+        };
+        let model = match &self.model {
+            Some(m) if self.rate_ok && self.warm => m,
+            _ => {
+                self.stats.seeds_warmup += 1;
+                return;
+            }
+        };
+        if !(model.dens[usize::from(bin)] > 0.0) {
+            self.stats.seeds_outside_fov += 1;
+            return;
+        }
+        // Windows (t - dt, t] may not touch dead time nor reach before the stream began.
+        let t = g.p.t;
+        let start = self.clock.start.unwrap_or(t);
+        let horizon = self.dead.last_end_at_or_before(t).map_or(start, |e| e.max(start));
+        let kmax = if horizon > t {
+            0
+        } else {
+            let avail = t - horizon;
+            self.p.ladder_ns.partition_point(|&d| d <= avail)
+        };
+        for k in kmax..k_all {
+            self.stats.skipped_dead[k] += 1;
+        }
+        if kmax == 0 {
+            return;
+        }
+        self.stats.seeds_tested += 1;
+        self.hist.iter_mut().for_each(|h| *h = 0);
+        count_disc(&self.sky, g.slot, g.v, t, self.p.cos_r, &self.p.ladder_ns[..kmax], &mut self.hist);
+        let Some(model) = self.model.as_mut() else { return };
+        let mut n = 0u64;
+        let mut mask = 0u64;
+        let mut best: Option<(usize, u64, f64, f64)> = None;
+        let base = usize::from(bin) * k_all;
+        for k in 0..kmax {
+            n += u64::from(self.hist[k]);
+            let idx = base + k;
+            if model.crit[idx] == 0 {
+                let a = model.dens[usize::from(bin)];
+                let b = model.rate_hz * self.cfg.ladder_s[k] * a * self.p.omega_r;
+                let c = model.table.critical(b);
+                model.crit[idx] = c.max(1);
+                model.b[idx] = b;
+                model.pfalse[idx] = false_crossing_probability(b, c);
+            }
+            let crit = model.crit[idx];
+            self.stats.tests[k] += 1;
+            self.stats.predicted_false_crossings[k] += model.pfalse[idx];
+            if n >= u64::from(crit) {
+                self.stats.crossings[k] += 1;
+                mask |= 1 << k;
+                let b = model.b[idx];
+                let ln_p = ln_sf(n - 1, b);
+                if best.is_none_or(|(_, _, _, l)| ln_p < l) {
+                    best = Some((k, n, b, ln_p));
+                }
+            }
+        }
+        if let Some((k, n, b, ln_p)) = best {
+            self.on_crossing(i, k, n, b, ln_p, mask, out);
+        }
+    }
+
+    fn on_crossing(&mut self, i: usize, k: usize, n: u64, b: f64, ln_p: f64, mask: u64, out: &mut Vec<Finding>) {
+        let g = self.group[i];
+        let t = g.p.t;
+        let dt = self.p.ladder_ns[k];
+        let found = self.cands.iter().position(|c| {
+            dot(g.v, c.pos0) >= self.p.cos_merge && t <= c.t_last.saturating_add(self.persistence_ns(c))
+        });
+        if let Some(ci) = found {
+            if t > self.cands[ci].span_limit {
+                self.cands[ci].late_crossings += 1;
+                return;
+            }
+            let released = self.all_sky.released();
+            let new_bits = mask & !self.cands[ci].mask;
+            for kk in 0..self.p.k {
+                if new_bits & (1 << kk) != 0 {
+                    self.stats.candidates_per_timescale[kk] += 1;
+                }
+            }
+            let start = t.saturating_sub(dt);
+            let pre_all_sky = self.pre_all_sky(start);
+            let c = &mut self.cands[ci];
+            c.mask |= mask;
+            c.t_last = c.t_last.max(t);
+            c.released_at_last = released;
+            if start < c.span_start {
+                c.span_start = start;
+                c.pre_all_sky = pre_all_sky;
+            }
+            if ln_p < c.best.ln_p {
+                let id = c.id;
+                let flash = self.build_flash(i, k, n, b, ln_p, id);
+                let (all_sky, expected) = self.flash_all_sky(&flash, g.bin);
+                let c = &mut self.cands[ci];
+                c.best = flash;
+                c.best_all_sky = all_sky;
+                c.best_all_sky_expected = expected;
+            }
+            return;
+        }
+        if self.cands.len() >= self.cfg.assess.max_open_candidates {
+            self.stats.candidates_suppressed += 1;
+            return;
+        }
+        let id = self.next_id;
+        self.next_id += 1;
+        let flash = self.build_flash(i, k, n, b, ln_p, id);
+        let pos0 = unit_vector(flash.ra_deg, flash.dec_deg);
+        let (all_sky, expected) = self.flash_all_sky(&flash, g.bin);
+        let start = t.saturating_sub(dt);
+        let mut photons = Vec::new();
+        let mut capped = false;
+        let from = start.saturating_sub(self.p.longest_ns).saturating_sub(self.p.pre_ns);
+        let cos_r = self.p.cos_r;
+        let max = self.cfg.assess.max_photons;
+        self.sky.for_each_in_cone(flash.ra_deg, flash.dec_deg, self.cfg.search_radius_deg * 1.01, from, |h, c| {
+            if dot(h.v, pos0) >= cos_r {
+                photons.push((h.t, c.ra.to_bits(), c.dec.to_bits(), CandPhoton { t: h.t, energy: c.energy }));
+            }
+        });
+        photons.sort_by_key(|x| (x.0, x.1, x.2));
+        if photons.len() > max {
+            // Keep the newest: the flash and what follows matter more than the far pre-window.
+            photons.drain(..photons.len() - max);
+            capped = true;
+        }
+        let photons: Vec<CandPhoton> = photons.into_iter().map(|x| x.3).collect();
+        for kk in 0..self.p.k {
+            if mask & (1 << kk) != 0 {
+                self.stats.candidates_per_timescale[kk] += 1;
+            }
+        }
+        self.stats.candidates += 1;
+        self.stats.flashes += 1;
+        out.push(Finding::Flash(flash.clone()));
+        self.cands.push(Candidate {
+            id,
+            pos0,
+            bin0: g.bin.unwrap_or(0),
+            zenith0: f64::from(g.p.zenith),
+            span_limit: t.saturating_add(self.p.longest_ns),
+            span_start: start,
+            t_last: t,
+            mask,
+            pre_all_sky: self.pre_all_sky(start),
+            released_at_last: self.all_sky.released(),
+            best: flash,
+            best_all_sky: all_sky,
+            best_all_sky_expected: expected,
+            photons,
+            capped,
+            late_crossings: 0,
+        });
+    }
+
+    /// All-sky photons in (start - pre, start].
+    fn pre_all_sky(&self, start: i64) -> u64 {
+        self.all_sky.count(start.saturating_sub(self.p.pre_ns), start)
+    }
+
+    /// All-sky photons in a flash window with the flash's own photons left out, and their expectation from
+    /// the rate over the rate window just before it (outside the flash, so a jump is not diluted).
+    fn flash_all_sky(&self, f: &Flash, bin: Option<u16>) -> (u64, f64) {
+        let counts = self.all_sky.count(f.start_ns, f.end_ns).saturating_sub(f.counts);
+        let start = self.clock.start.unwrap_or(f.start_ns);
+        let live = |a: i64, b: i64| {
+            let a = a.max(start);
+            (b.saturating_sub(a) - self.dead.overlap(a.saturating_add(1), b.saturating_add(1))).max(0)
+        };
+        let before_from = f.start_ns.saturating_sub(self.p.rate_window_ns);
+        let before_live = live(before_from, f.start_ns);
+        let rate = if before_live >= self.p.rate_window_ns / 2 && before_live > 0 {
+            self.all_sky.count(before_from.max(start), f.start_ns) as f64 / (before_live as f64 * 1e-9)
+        } else {
+            self.model.as_ref().map_or(0.0, |m| m.rate_hz)
+        };
+        let a = self.model.as_ref().zip(bin).map_or(0.0, |(m, b)| m.dens[usize::from(b)]);
+        let disc_fraction = (a * self.p.omega_r).clamp(0.0, 1.0);
+        let expected = rate * live(f.start_ns, f.end_ns) as f64 * 1e-9 * (1.0 - disc_fraction);
+        (counts, expected)
+    }
+
+    fn build_flash(&mut self, i: usize, k: usize, n: u64, b: f64, ln_p: f64, id: u64) -> Flash {
+        let g = self.group[i];
+        let t = g.p.t;
+        let dt = self.p.ladder_ns[k];
+        let mut buf = std::mem::take(&mut self.flash_buf);
+        buf.clear();
+        let mut slots = [0u32; 9];
+        let ns = self.sky.neighbourhood(g.slot, &mut slots);
+        for &s in &slots[..ns] {
+            let bucket = self.sky.bucket(s);
+            for (h, c) in bucket.hot.iter().zip(bucket.cold.iter()).rev() {
+                if t - h.t >= dt {
+                    break;
+                }
+                if dot(h.v, g.v) >= self.p.cos_r {
+                    let p = c.photon(h.t);
+                    buf.push((
+                        PhotonRec {
+                            time_ns: p.t,
+                            ra_deg: p.ra,
+                            dec_deg: p.dec,
+                            energy_gev: f64::from(p.energy),
+                            zenith_deg: f64::from(p.zenith),
+                            azimuth_deg: f64::from(p.azimuth),
+                        },
+                        h.v,
+                    ));
+                }
+            }
+        }
+        buf.sort_by(|a, b| {
+            let ka = (a.0.time_ns, a.0.ra_deg.to_bits(), a.0.dec_deg.to_bits(), a.0.energy_gev.to_bits());
+            let kb = (b.0.time_ns, b.0.ra_deg.to_bits(), b.0.dec_deg.to_bits(), b.0.energy_gev.to_bits());
+            ka.cmp(&kb)
+        });
+        let mut sum = [0.0f64; 3];
+        for (_, v) in &buf {
+            sum = [sum[0] + v[0], sum[1] + v[1], sum[2] + v[2]];
+        }
+        let (ra, dec) = radec_of(sum);
+        let mut energies: Vec<f64> = buf.iter().map(|x| x.0.energy_gev).collect();
+        energies.sort_by(f64::total_cmp);
+        let median = median_sorted(&energies);
+        let resp = &self.cfg.response;
+        let sigma_psf = resp.psf_sigma_deg(median);
+        let rate = self.model.as_ref().map_or(0.0, |m| m.rate_hz);
+        let ln_trials = (self.p.k as f64 * rate * SECONDS_PER_YEAR).ln();
+        let far = (ln_p.min(0.0) + ln_trials).exp();
+        let photons: Vec<PhotonRec> = buf.iter().map(|x| x.0).collect();
+        self.flash_buf = buf;
+        Flash {
+            candidate: id,
+            start_ns: t.saturating_sub(dt),
+            end_ns: t,
+            ra_deg: ra,
+            dec_deg: dec,
+            error_radius_deg: error_radius90_deg(sigma_psf, n, resp.systematic_deg()),
+            search_radius_deg: self.cfg.search_radius_deg,
+            timescale_s: self.cfg.ladder_s[k],
+            counts: n,
+            background: b,
+            p_value: ln_p.exp(),
+            ln_p,
+            sigma: clamp_sigma(sigma_from_ln_p(ln_p)),
+            far_per_year: if far.is_finite() { far } else { 0.0 },
+            zenith_deg: f64::from(g.p.zenith),
+            photons,
+        }
+    }
+
+    fn persistence_ns(&self, c: &Candidate) -> i64 {
+        let a = &self.cfg.assess;
+        secs_to_ns(a.persistence_min_s.max(a.persistence_timescale_factor * c.best.timescale_s))
+    }
+
+    fn close_of(&self, c: &Candidate) -> i64 {
+        c.t_last.saturating_add(self.persistence_ns(c))
+    }
+
+    /// Assesses every candidate whose persistence window closed before `t` (all its photons are released).
+    fn assess_due(&mut self, t: i64, out: &mut Vec<Finding>) {
+        if self.cands.is_empty() {
+            return;
+        }
+        let mut i = 0;
+        while i < self.cands.len() {
+            let close = self.close_of(&self.cands[i]);
+            if close < t {
+                let c = self.cands.remove(i);
+                self.emit_assessment(c, close, false, out);
+            } else {
+                i += 1;
+            }
+        }
+    }
+
+    fn emit_assessment(&mut self, c: Candidate, close: i64, cut_short: bool, out: &mut Vec<Finding>) {
+        let dens = self.model.as_ref().map_or(0.0, |m| m.dens[usize::from(c.bin0)]);
+        let rate = self.model.as_ref().map_or(0.0, |m| m.rate_hz);
+        let post_all_sky = self.all_sky.released().saturating_sub(c.released_at_last);
+        let dead_post_ns = self.dead.overlap(c.t_last.saturating_add(1), close.saturating_add(1));
+        let input = AssessInput {
+            cand: &c,
+            close,
+            cut_short,
+            dead_post_ns,
+            post_all_sky,
+            density: dens,
+            omega_r: self.p.omega_r,
+            rate_hz: rate,
+            search_radius_deg: self.cfg.search_radius_deg,
+            longest_ns: self.p.longest_ns,
+            pre_ns: self.p.pre_ns,
+            response: &self.cfg.response,
+            cfg: &self.cfg.assess,
+        };
+        let (assessment, withdrawal) = assess::assess(&input);
+        self.stats.assessments += 1;
+        out.push(Finding::Assessment(assessment));
+        if let Some(w) = withdrawal {
+            self.stats.withdrawals += 1;
+            out.push(Finding::Withdrawal(w));
+        }
+    }
+}
+
+/// Counts the photons within the search radius of a seed for each timescale, in one walk back over the
+/// seed's pixel and its neighbours: `hist[k]` gets the photons whose age falls in [dt_(k-1), dt_k).
+fn count_disc(sky: &SkyIndex, slot: u32, v: [f64; 3], t: i64, cos_r: f64, ladder: &[i64], hist: &mut [u32]) {
+    let Some(&limit) = ladder.last() else { return };
+    let mut slots = [0u32; 9];
+    let ns = sky.neighbourhood(slot, &mut slots);
+    for &s in &slots[..ns] {
+        let hot = &sky.bucket(s).hot;
+        let mut k = 0;
+        for h in hot.iter().rev() {
+            let age = t - h.t;
+            if age >= limit {
+                break;
+            }
+            if h.v[0] * v[0] + h.v[1] * v[1] + h.v[2] * v[2] >= cos_r {
+                while age >= ladder[k] {
+                    k += 1;
+                }
+                hist[k] += 1;
+            }
+        }
+    }
+}
+
+pub(crate) fn dot(a: [f64; 3], b: [f64; 3]) -> f64 {
+    a[0] * b[0] + a[1] * b[1] + a[2] * b[2]
+}
+
+pub(crate) fn median_sorted(x: &[f64]) -> f64 {
+    match x.len() {
+        0 => 0.0,
+        n if n % 2 == 1 => x[n / 2],
+        n => 0.5 * (x[n / 2 - 1] + x[n / 2]),
+    }
+}
+
+/// Significances stay finite in outputs: p = 1 would be -inf and p = 0 +inf.
+pub(crate) fn clamp_sigma(z: f64) -> f64 {
+    if z.is_nan() { 0.0 } else { z.clamp(-40.0, 1000.0) }
+}

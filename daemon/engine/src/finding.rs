@@ -1,0 +1,152 @@
+//! What the engine reports: a `Flash` at the first crossing of a candidate, an `Assessment` once its
+//! persistence window has passed in event time, and a `Withdrawal` when the assessment finds an instrumental
+//! cause. The caller gives them global ids and sequence numbers; `candidate` links the three.
+
+use serde::{Deserialize, Serialize};
+
+use crate::fit::FitResult;
+
+/// One photon of a flash, as it arrived (GPS ns, ICRS degrees, GeV, instrument-frame degrees).
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct PhotonRec {
+    /// Arrival time, GPS nanoseconds.
+    pub time_ns: i64,
+    /// Right ascension, degrees.
+    pub ra_deg: f64,
+    /// Declination, degrees.
+    pub dec_deg: f64,
+    /// Reconstructed energy, GeV.
+    pub energy_gev: f64,
+    /// Zenith (or off-axis) angle, degrees.
+    pub zenith_deg: f64,
+    /// Azimuth in the instrument frame, degrees.
+    pub azimuth_deg: f64,
+}
+
+/// A seeded test that crossed its threshold: the photons within the search radius of the seed photon in
+/// the window (start_ns, end_ns] ending at the seed.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Flash {
+    /// Engine-local candidate id (1, 2, ...): links the flash to its assessment and withdrawal.
+    pub candidate: u64,
+    /// Window start (exclusive), GPS ns: the seed time minus the timescale.
+    pub start_ns: i64,
+    /// Window end (inclusive), GPS ns: the seed photon's time.
+    pub end_ns: i64,
+    /// Position: unit-vector mean of the photons' directions, ICRS degrees.
+    pub ra_deg: f64,
+    /// Declination of the position, degrees.
+    pub dec_deg: f64,
+    /// 90% error radius: 2.146 sigma_PSF(median energy) / sqrt(counts), the systematic error added in
+    /// quadrature (SCIENCE.md section 4), degrees.
+    pub error_radius_deg: f64,
+    /// Search radius of the disc, degrees.
+    pub search_radius_deg: f64,
+    /// Timescale of the window, seconds.
+    pub timescale_s: f64,
+    /// Photons in the disc and window, the seed included.
+    pub counts: u64,
+    /// Expected background in the disc and window, b = R dt a Omega_r.
+    pub background: f64,
+    /// Per-seed p-value P(N >= counts - 1 | background) (0 when it underflows; see `ln_p`).
+    pub p_value: f64,
+    /// Natural log of the p-value, exact far below the smallest f64.
+    pub ln_p: f64,
+    /// One-sided Gaussian significance of the p-value.
+    pub sigma: f64,
+    /// Predicted rate of crossings at least this rare, per year: min(p, 1) x K x R x 3.15576e7 s (Julian
+    /// year), i.e. the p-value times the seeded trials per year; at most the rate of all seeded tests.
+    pub far_per_year: f64,
+    /// Zenith (or off-axis) angle of the seed photon, degrees.
+    pub zenith_deg: f64,
+    /// The photons in the disc and window, in time order.
+    pub photons: Vec<PhotonRec>,
+}
+
+/// Outcome of an assessment.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Verdict {
+    /// No persistence, no instrumental sign.
+    Isolated,
+    /// Emission before or after the flash.
+    Persistent,
+    /// An instrumental sign (all-sky jump, identical timestamps, spread wider than the PSF); withdrawn.
+    Instrumental,
+    /// Too much dead time in the persistence window, or the input ended before it closed.
+    Undecided,
+}
+
+impl Verdict {
+    /// The verdict's name as users see it.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Self::Isolated => "isolated",
+            Self::Persistent => "persistent",
+            Self::Instrumental => "instrumental",
+            Self::Undecided => "undecided",
+        }
+    }
+}
+
+/// A candidate's assessment, made once its persistence window has passed.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Assessment {
+    /// Engine-local candidate id.
+    pub candidate: u64,
+    /// The verdict.
+    pub verdict: Verdict,
+    /// The candidate's best (lowest p) trigger.
+    pub trigger: Flash,
+    /// Photons in the disc after the flash, in (last crossing, window end].
+    pub post_counts: u64,
+    /// Expected background for them: all-sky photons in the window x a(zenith, azimuth) x Omega_r.
+    pub post_background: f64,
+    /// P(N >= post_counts | post_background).
+    pub post_p_value: f64,
+    /// Its one-sided significance (clamped to [-40, 1000]).
+    pub post_sigma: f64,
+    /// Photons in the disc in the pre-window before the flash.
+    pub pre_counts: u64,
+    /// Expected background for them.
+    pub pre_background: f64,
+    /// P(N >= pre_counts | pre_background).
+    pub pre_p_value: f64,
+    /// Its one-sided significance (clamped to [-40, 1000]).
+    pub pre_sigma: f64,
+    /// Reasons behind the verdict and caveats, e.g. `all_sky_jump`, `identical_timestamps`, `wide_spread`,
+    /// `dead_time`, `cut_short`, `post_excess`, `pre_excess`, `photons_capped`, `crossings_after_flash`.
+    pub flags: Vec<String>,
+    /// All-sky photons in the best trigger's window, the flash's own disc left out.
+    pub all_sky_counts: u64,
+    /// Their expectation from the all-sky rate just before the window.
+    pub all_sky_expected: f64,
+    /// Fraction of the trigger's photons sharing a timestamp (within the clock precision) with another.
+    pub identical_time_fraction: f64,
+    /// RMS spread of the trigger's photons about their centroid over the PSF's expectation.
+    pub spread_ratio: f64,
+    /// Dead time inside the persistence window, seconds.
+    pub dead_seconds: f64,
+    /// The evaporation fit.
+    pub fit: FitResult,
+}
+
+/// An alert retracted by the engine.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct Withdrawal {
+    /// Engine-local candidate id of the withdrawn flash.
+    pub candidate: u64,
+    /// Why.
+    pub reason: String,
+}
+
+/// Everything the engine reports.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Finding {
+    /// A new candidate's first crossing, reported at once.
+    Flash(Flash),
+    /// A candidate's assessment.
+    Assessment(Assessment),
+    /// A candidate withdrawn because its assessment found an instrumental cause.
+    Withdrawal(Withdrawal),
+}

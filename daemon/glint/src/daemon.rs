@@ -1,0 +1,460 @@
+//! `glint run`: the live daemon. Binds the ingest and subscriber listeners, starts one engine thread per
+//! instrument (fed by a bounded channel, issuing findings through the alert desk), and stops in stages on
+//! SIGTERM/SIGINT within `daemon.shutdown_deadline`: stop accepting, drain the engines (open candidates are
+//! assessed as cut short), fsync the journal, say goodbye to subscribers. A second signal exits at once.
+//! Bound addresses are logged and written to `state_dir/ports.json` (useful with port 0).
+
+use std::fs::File;
+use std::future::Future;
+use std::net::SocketAddr;
+use std::path::{Path, PathBuf};
+use std::process::ExitCode;
+use std::sync::Arc;
+use std::time::{Duration, Instant};
+
+use anyhow::{Context, anyhow, bail};
+use glint_wire::pb;
+use glint_wire::recording::{Compression, RotatingWriter, RotationPolicy};
+use tokio::net::TcpListener;
+use tokio_util::sync::CancellationToken;
+use tokio_util::task::TaskTracker;
+
+use crate::config::{Config, InstrumentConfig};
+use crate::desk::{Desk, Stamps};
+use crate::driver::InstrumentDriver;
+use crate::ingest::{self, EngineMsg, IngestShared, Slot};
+use crate::metrics::Metrics;
+use crate::subscribers::{self, Hub, Watermarks};
+use crate::timefmt::now_unix_ns;
+
+/// Arguments of `glint run`.
+#[derive(Debug, clap::Args)]
+pub(crate) struct RunArgs {
+    /// Configuration file; the embedded default when omitted.
+    #[arg(long, short, value_name = "FILE")]
+    config: Option<PathBuf>,
+}
+
+/// `glint run`: runs until SIGTERM or SIGINT.
+pub(crate) fn run_command(args: RunArgs) -> anyhow::Result<ExitCode> {
+    let cfg = crate::cli::config_or_exit(args.config.as_ref())?;
+    crate::logging::init(&cfg.daemon.log_level, cfg.daemon.log_format);
+    let rt = tokio::runtime::Builder::new_multi_thread().enable_all().build().context("cannot start the runtime")?;
+    rt.block_on(async {
+        let first = shutdown_signals()?;
+        run(cfg, first).await
+    })?;
+    Ok(ExitCode::SUCCESS)
+}
+
+/// A future that resolves on the first SIGTERM or SIGINT; a second one exits the process at once.
+fn shutdown_signals() -> anyhow::Result<impl Future<Output = ()>> {
+    use tokio::signal::unix::{SignalKind, signal};
+    let mut term = signal(SignalKind::terminate()).context("cannot install the SIGTERM handler")?;
+    let mut int = signal(SignalKind::interrupt()).context("cannot install the SIGINT handler")?;
+    let (tx, rx) = tokio::sync::oneshot::channel::<&'static str>();
+    tokio::spawn(async move {
+        let name = tokio::select! { _ = term.recv() => "SIGTERM", _ = int.recv() => "SIGINT" };
+        let _ = tx.send(name);
+        let again = tokio::select! { _ = term.recv() => "SIGTERM", _ = int.recv() => "SIGINT" };
+        tracing::error!("second signal ({again}): exiting at once");
+        std::process::exit(130);
+    });
+    Ok(async move {
+        if let Ok(name) = rx.await {
+            tracing::info!("{name} received: shutting down (a second signal exits at once)");
+        }
+    })
+}
+
+/// Runs the daemon until `shutdown` resolves (or a fatal error), then stops in stages.
+pub(crate) async fn run(cfg: Config, shutdown: impl Future<Output = ()>) -> anyhow::Result<()> {
+    let daemon = Daemon::start(cfg).await?;
+    tokio::select! {
+        () = shutdown => {}
+        () = daemon.fatal.cancelled() => tracing::error!("stopping after a fatal error"),
+    }
+    let fatal = daemon.fatal.is_cancelled();
+    daemon.shutdown().await?;
+    if fatal {
+        bail!("the daemon stopped after a fatal error (see the log)");
+    }
+    Ok(())
+}
+
+/// A running daemon: its addresses, shared state and the handles needed to stop it.
+pub(crate) struct Daemon {
+    /// Bound ingest address.
+    pub(crate) ingest_addr: SocketAddr,
+    /// Bound subscriber address.
+    pub(crate) subscribers_addr: SocketAddr,
+    /// Latency histograms and counters.
+    pub(crate) metrics: Arc<Metrics>,
+    /// The alert desk.
+    pub(crate) desk: Arc<Desk>,
+    deadline: Duration,
+    stop_accept: CancellationToken,
+    closing: CancellationToken,
+    fatal: CancellationToken,
+    ingest_tasks: TaskTracker,
+    subscriber_tasks: TaskTracker,
+    ingest: Arc<IngestShared>,
+    engines: Vec<(String, std::thread::JoinHandle<()>)>,
+    engines_done: tokio::sync::mpsc::Receiver<String>,
+    _lock: File,
+}
+
+fn state_path(state_dir: &Path, instrument: &str) -> PathBuf {
+    state_dir.join(format!("acceptance-{instrument}.bin"))
+}
+
+/// Writes a file atomically: temporary file, fsync, rename.
+fn write_atomic(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
+    use std::io::Write as _;
+    let tmp = path.with_extension("tmp");
+    let mut f = File::create(&tmp)?;
+    f.write_all(bytes)?;
+    f.sync_all()?;
+    std::fs::rename(&tmp, path)
+}
+
+impl Daemon {
+    /// Opens the state directory and journal, binds both listeners, starts the engine threads and the
+    /// listener tasks.
+    pub(crate) async fn start(cfg: Config) -> anyhow::Result<Self> {
+        let state_dir = cfg.daemon.state_dir.clone();
+        std::fs::create_dir_all(&state_dir).with_context(|| format!("cannot create state_dir {}", state_dir.display()))?;
+        let lock_path = state_dir.join("glint.lock");
+        let lock = File::create(&lock_path).with_context(|| format!("cannot create {}", lock_path.display()))?;
+        lock.try_lock().map_err(|_| anyhow!("another glint daemon is using {} (lock {} is held)", state_dir.display(), lock_path.display()))?;
+        let metrics = Arc::new(Metrics::new());
+        let (desk, report) = Desk::open(&state_dir.join("journal"), &cfg.journal, metrics.clone())
+            .with_context(|| format!("cannot open the journal in {}", state_dir.join("journal").display()))?;
+        if let Some(t) = &report.torn {
+            tracing::warn!(
+                segment = %t.path.display(),
+                offset = t.offset,
+                bytes_cut = t.bytes_cut,
+                reason = %t.reason,
+                "journal: cut a torn tail left by a crash"
+            );
+        }
+        for c in &report.corrupt_older {
+            tracing::error!("journal: corrupt record in an older segment: {c}");
+        }
+        for d in &report.deleted {
+            tracing::info!(segment = %d.display(), "journal: deleted segment past retention");
+        }
+        tracing::info!(records = report.records, segments = report.segments, last_seq = desk.last_seq(), "journal open");
+        let desk = Arc::new(desk);
+        let watermarks =
+            Arc::new(Watermarks::new(cfg.instruments.iter().map(|i| i.id.clone()).collect()));
+
+        let ingest_listener = TcpListener::bind(cfg.ingest.listen)
+            .await
+            .with_context(|| format!("cannot listen on {} (ingest.listen)", cfg.ingest.listen))?;
+        let sub_listener = TcpListener::bind(cfg.subscribers.listen)
+            .await
+            .with_context(|| format!("cannot listen on {} (subscribers.listen)", cfg.subscribers.listen))?;
+        let ingest_addr = ingest_listener.local_addr()?;
+        let subscribers_addr = sub_listener.local_addr()?;
+        let ingest_tls = cfg.ingest.tls.as_ref().map(crate::tls::acceptor).transpose().context("ingest TLS")?;
+        let sub_tls = cfg.subscribers.tls.as_ref().map(crate::tls::acceptor).transpose().context("subscriber TLS")?;
+
+        let fatal = CancellationToken::new();
+        let (done_tx, engines_done) = tokio::sync::mpsc::channel(cfg.instruments.len().max(1));
+        let mut slots = Vec::new();
+        let mut engines = Vec::new();
+        for (index, inst) in cfg.instruments.iter().enumerate() {
+            let (tx, rx) = async_channel::bounded(cfg.ingest.queue_batches.get());
+            let mut driver = InstrumentDriver::new(inst, true).with_context(|| format!("instrument {}", inst.id))?;
+            let sp = state_path(&state_dir, &inst.id);
+            match std::fs::read(&sp) {
+                Ok(blob) => match driver.load_state(&blob) {
+                    Ok(()) => tracing::info!(instrument = %inst.id, file = %sp.display(), "loaded saved engine state"),
+                    Err(e) => tracing::warn!(instrument = %inst.id, file = %sp.display(), "saved engine state not used: {e}"),
+                },
+                Err(e) if e.kind() == std::io::ErrorKind::NotFound => {}
+                Err(e) => tracing::warn!(instrument = %inst.id, file = %sp.display(), "cannot read saved engine state: {e}"),
+            }
+            let ns = |s: f64| (s * 1e9).round() as i64;
+            slots.push(Slot::new(
+                inst.id.clone(),
+                inst.token.clone(),
+                tx,
+                ns(inst.search.reorder_tolerance_s),
+                ns(inst.search.max_clock_jump_s),
+                index,
+            ));
+            let ctx = EngineThread {
+                index,
+                id: inst.id.clone(),
+                driver,
+                rx,
+                desk: desk.clone(),
+                watermarks: watermarks.clone(),
+                state_file: sp,
+                save_every: cfg.daemon.state_save_interval,
+                recorder: recorder(&cfg, inst)?,
+                fatal: fatal.clone(),
+            };
+            let done = done_tx.clone();
+            let handle = std::thread::Builder::new()
+                .name(format!("engine-{}", inst.id))
+                .spawn(move || {
+                    let id = ctx.id.clone();
+                    ctx.run();
+                    let _ = done.blocking_send(id);
+                })
+                .context("cannot start an engine thread")?;
+            engines.push((inst.id.clone(), handle));
+        }
+        let ingest = Arc::new(IngestShared {
+            slots,
+            max_frame: cfg.daemon.max_frame_bytes,
+            ack_every: cfg.ingest.ack_every.get(),
+            watermarks: watermarks.clone(),
+            metrics: metrics.clone(),
+        });
+        let closing = CancellationToken::new();
+        let hub = Arc::new(Hub {
+            desk: desk.clone(),
+            cfg: cfg.subscribers.clone(),
+            max_frame: cfg.daemon.max_frame_bytes,
+            watermarks,
+            metrics: metrics.clone(),
+            closing: closing.clone(),
+        });
+        let stop_accept = CancellationToken::new();
+        let ingest_tasks = TaskTracker::new();
+        let subscriber_tasks = TaskTracker::new();
+        tokio::spawn(ingest::serve(ingest_listener, ingest_tls, ingest.clone(), ingest_tasks.clone(), stop_accept.clone()));
+        tokio::spawn(subscribers::serve(sub_listener, sub_tls, hub, subscriber_tasks.clone(), stop_accept.clone()));
+        let mut metrics_addr = None;
+        if let Some(addr) = cfg.metrics_listen {
+            let l = TcpListener::bind(addr).await.with_context(|| format!("cannot listen on {addr} (metrics.listen)"))?;
+            metrics_addr = Some(l.local_addr()?);
+            let m = metrics.clone();
+            let stop = stop_accept.clone();
+            tokio::spawn(async move {
+                tokio::select! { () = crate::metrics::serve(l, m) => {}, () = stop.cancelled() => {} }
+            });
+        }
+        tracing::info!("ingest listening on {ingest_addr}");
+        tracing::info!("subscribers listening on {subscribers_addr}");
+        if let Some(a) = metrics_addr {
+            tracing::info!("metrics listening on {a}");
+        }
+        let ports = serde_json::json!({
+            "ingest": ingest_addr.to_string(),
+            "subscribers": subscribers_addr.to_string(),
+            "metrics": metrics_addr.map(|a| a.to_string()),
+            "pid": std::process::id(),
+        });
+        let ports_path = state_dir.join("ports.json");
+        write_atomic(&ports_path, ports.to_string().as_bytes())
+            .with_context(|| format!("cannot write {}", ports_path.display()))?;
+        Ok(Self {
+            ingest_addr,
+            subscribers_addr,
+            metrics,
+            desk,
+            deadline: cfg.daemon.shutdown_deadline,
+            stop_accept,
+            closing,
+            fatal,
+            ingest_tasks,
+            subscriber_tasks,
+            ingest,
+            engines,
+            engines_done,
+            _lock: lock,
+        })
+    }
+
+    /// Resolves when a part of the daemon failed beyond repair (e.g. the journal cannot be written).
+    pub(crate) fn fatal(&self) -> CancellationToken {
+        self.fatal.clone()
+    }
+
+    /// Stops in stages within the configured deadline.
+    pub(crate) async fn shutdown(mut self) -> anyhow::Result<()> {
+        let started = Instant::now();
+        let end = tokio::time::Instant::now() + self.deadline;
+        let late = |stage: &str| anyhow!("shutdown deadline of {:.1} s passed while {stage}", self.deadline.as_secs_f64());
+        // 1. Stop accepting; producers are told the daemon is going and their connections end.
+        self.stop_accept.cancel();
+        self.ingest_tasks.close();
+        tokio::time::timeout_at(end, self.ingest_tasks.wait()).await.map_err(|_| late("closing producer connections"))?;
+        // 2. Drain the engines: each takes what is queued, assesses its open candidates, saves its state.
+        for slot in &self.ingest.slots {
+            slot.tx.close();
+        }
+        let mut left = self.engines.len();
+        while left > 0 {
+            match tokio::time::timeout_at(end, self.engines_done.recv()).await {
+                Ok(Some(id)) => {
+                    tracing::info!(instrument = %id, "engine drained");
+                    left -= 1;
+                }
+                Ok(None) => break,
+                Err(_) => return Err(late("draining the engines")),
+            }
+        }
+        for (_, h) in self.engines.drain(..) {
+            let _ = h.join();
+        }
+        // 3. Journal on disk (every alert already was before it was sent; this covers the last ones).
+        let desk = self.desk.clone();
+        tokio::task::spawn_blocking(move || desk.sync()).await?.context("final journal fsync")?;
+        // 4. Goodbye to subscribers: what is left, then a closing heartbeat.
+        self.closing.cancel();
+        self.subscriber_tasks.close();
+        tokio::time::timeout_at(end, self.subscriber_tasks.wait()).await.map_err(|_| late("saying goodbye to subscribers"))?;
+        tracing::info!(last_seq = self.desk.last_seq(), "shut down in {:.2} s", started.elapsed().as_secs_f64());
+        Ok(())
+    }
+}
+
+fn recorder(cfg: &Config, inst: &InstrumentConfig) -> anyhow::Result<Option<RotatingWriter>> {
+    if !cfg.ingest.record {
+        return Ok(None);
+    }
+    let policy = RotationPolicy {
+        max_bytes: std::num::NonZeroU64::new(cfg.ingest.record_rotate_bytes),
+        max_duration_ns: std::num::NonZeroU64::new(u64::try_from(cfg.ingest.record_rotate.as_nanos()).unwrap_or(u64::MAX)),
+    };
+    let dir = cfg.daemon.state_dir.join("recordings");
+    let w = RotatingWriter::new(&dir, inst.id.clone(), Compression::Zstd(3), policy)
+        .with_context(|| format!("cannot record into {}", dir.display()))?;
+    Ok(Some(w))
+}
+
+/// One instrument's engine, on its own thread.
+struct EngineThread {
+    index: usize,
+    id: String,
+    driver: InstrumentDriver,
+    rx: async_channel::Receiver<EngineMsg>,
+    desk: Arc<Desk>,
+    watermarks: Arc<Watermarks>,
+    state_file: PathBuf,
+    save_every: Duration,
+    recorder: Option<RotatingWriter>,
+    fatal: CancellationToken,
+}
+
+impl EngineThread {
+    fn run(mut self) {
+        let mut out = Vec::new();
+        let mut last_save = Instant::now();
+        let mut event_ns = 0;
+        // Takes messages until ingest closes the channel (shutdown); then drains.
+        while let Ok(msg) = self.rx.recv_blocking() {
+            let received = match msg {
+                EngineMsg::Hello(h) => {
+                    self.record(pb::producer_frame::Body::Hello(h), event_ns);
+                    continue;
+                }
+                EngineMsg::StreamBreak => {
+                    self.driver.stream_break();
+                    continue;
+                }
+                EngineMsg::Batch(b, received) => {
+                    let b = self.record_batch(b, event_ns);
+                    if let Err(r) = self.driver.on_batch(&b, &mut out) {
+                        tracing::warn!(instrument = %self.id, seq = r.seq, code = r.code.as_str_name(), "engine refused a batch: {}", r.detail);
+                    }
+                    received
+                }
+                EngineMsg::Status(s, received) => {
+                    event_ns = event_ns.max(s.now_gps_ns);
+                    let s = self.record_status(s, event_ns);
+                    if let Err(r) = self.driver.on_status(&s, &mut out) {
+                        tracing::warn!(instrument = %self.id, seq = r.seq, code = r.code.as_str_name(), "engine refused a status frame: {}", r.detail);
+                    }
+                    received
+                }
+            };
+            if let Some(w) = self.driver.watermark_ns() {
+                event_ns = event_ns.max(w);
+                self.watermarks.set(self.index, w);
+            }
+            self.issue(&mut out, received);
+            if last_save.elapsed() >= self.save_every {
+                self.save();
+                last_save = Instant::now();
+            }
+        }
+        self.driver.finish(&mut out);
+        self.issue(&mut out, 0);
+        self.save();
+        if let Some(w) = self.recorder.take() {
+            if let Err(e) = w.finish() {
+                tracing::warn!(instrument = %self.id, "recording not finished cleanly: {e}");
+            }
+        }
+    }
+
+    fn issue(&mut self, out: &mut Vec<glint_engine::Finding>, received: i64) {
+        if out.is_empty() {
+            return;
+        }
+        let stamps = Stamps { received_unix_ns: received, decided_unix_ns: now_unix_ns() };
+        match self.desk.issue(&self.id, out, stamps) {
+            Ok(alerts) => {
+                for a in alerts {
+                    tracing::info!(instrument = %self.id, seq = a.seq, id = %a.id, kind = crate::alerts::kind_name(a.kind), "alert issued");
+                }
+            }
+            Err(e) => {
+                tracing::error!(instrument = %self.id, "cannot issue {} alert(s): {e}", out.len());
+                self.fatal.cancel();
+            }
+        }
+        out.clear();
+    }
+
+    fn save(&self) {
+        let blob = self.driver.save_state();
+        match write_atomic(&self.state_file, &blob) {
+            Ok(()) => tracing::debug!(instrument = %self.id, bytes = blob.len(), "engine state saved"),
+            Err(e) => tracing::warn!(instrument = %self.id, file = %self.state_file.display(), "cannot save engine state: {e}"),
+        }
+    }
+
+    fn record(&mut self, body: pb::producer_frame::Body, event_ns: i64) -> pb::producer_frame::Body {
+        let Some(w) = self.recorder.as_mut() else { return body };
+        let frame = pb::ProducerFrame { body: Some(body) };
+        let result = match &frame.body {
+            Some(pb::producer_frame::Body::Hello(_)) => w.set_header(frame.clone(), event_ns),
+            _ => w.write_frame(&frame, event_ns),
+        };
+        if let Err(e) = result {
+            tracing::error!(instrument = %self.id, "recording stopped: {e}");
+            self.recorder = None;
+        }
+        // Cannot be None: it was set just above.
+        frame.body.unwrap_or(pb::producer_frame::Body::Status(pb::StreamStatus::default()))
+    }
+
+    fn record_batch(&mut self, b: pb::PhotonBatch, event_ns: i64) -> pb::PhotonBatch {
+        if self.recorder.is_none() {
+            return b;
+        }
+        match self.record(pb::producer_frame::Body::Batch(b), event_ns) {
+            pb::producer_frame::Body::Batch(b) => b,
+            _ => pb::PhotonBatch::default(),
+        }
+    }
+
+    fn record_status(&mut self, s: pb::StreamStatus, event_ns: i64) -> pb::StreamStatus {
+        if self.recorder.is_none() {
+            return s;
+        }
+        match self.record(pb::producer_frame::Body::Status(s), event_ns) {
+            pb::producer_frame::Body::Status(s) => s,
+            _ => pb::StreamStatus::default(),
+        }
+    }
+}

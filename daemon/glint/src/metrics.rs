@@ -1,0 +1,250 @@
+//! The daemon's telemetry: latency histograms per stage and end to end (hdrhistogram, nanoseconds), counters
+//! of photons, frames, alerts and connections, and an optional plain-HTTP endpoint serving them in the
+//! Prometheus text format. Memory is fixed: four histograms and a handful of atomics.
+
+use std::fmt::Write as _;
+use std::sync::Mutex;
+use std::sync::atomic::{AtomicI64, AtomicU64, Ordering};
+use std::time::Duration;
+
+use hdrhistogram::Histogram;
+use tokio::io::{AsyncReadExt, AsyncWriteExt};
+use tokio::net::TcpListener;
+
+/// A stage of the path from a producer's frame to a subscriber's socket.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub(crate) enum Stage {
+    /// Frame read to finding decided (queue wait, reorder hold excluded: it is event time).
+    Decide,
+    /// Finding decided to journal record fsynced.
+    Journal,
+    /// Journal fsync to the alert frame handed to a subscriber's socket.
+    Send,
+    /// Frame read to the alert frame handed to a subscriber's socket.
+    EndToEnd,
+}
+
+impl Stage {
+    const ALL: [Self; 4] = [Self::Decide, Self::Journal, Self::Send, Self::EndToEnd];
+
+    fn index(self) -> usize {
+        match self {
+            Self::Decide => 0,
+            Self::Journal => 1,
+            Self::Send => 2,
+            Self::EndToEnd => 3,
+        }
+    }
+
+    /// Name used in logs and the Prometheus labels.
+    pub(crate) fn name(self) -> &'static str {
+        match self {
+            Self::Decide => "decide",
+            Self::Journal => "journal",
+            Self::Send => "send",
+            Self::EndToEnd => "end_to_end",
+        }
+    }
+}
+
+/// Percentiles of one stage, milliseconds.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub(crate) struct Percentiles {
+    /// Values recorded.
+    pub(crate) count: u64,
+    /// Median.
+    pub(crate) p50_ms: f64,
+    /// 99th percentile.
+    pub(crate) p99_ms: f64,
+    /// 99.9th percentile.
+    pub(crate) p999_ms: f64,
+    /// Largest.
+    pub(crate) max_ms: f64,
+}
+
+/// Counters and histograms shared by every part of the daemon.
+#[derive(Debug)]
+pub(crate) struct Metrics {
+    hists: Mutex<Vec<Histogram<u64>>>,
+    /// Photons taken into engine queues.
+    pub(crate) photons: AtomicU64,
+    /// Photons in batches refused by validation.
+    pub(crate) refused_photons: AtomicU64,
+    /// Frames refused (validation, clock jump, protocol).
+    pub(crate) refused_frames: AtomicU64,
+    /// Producer connections refused at Hello.
+    pub(crate) refused_connections: AtomicU64,
+    /// Alerts issued, by kind: flash, assessment, withdrawal.
+    pub(crate) alerts: [AtomicU64; 3],
+    /// Producers connected now.
+    pub(crate) producers: AtomicI64,
+    /// Subscribers connected now.
+    pub(crate) subscribers: AtomicI64,
+    /// Subscribers dropped for an unwritable socket.
+    pub(crate) subscribers_dropped: AtomicU64,
+}
+
+/// Longest latency the histograms track: one hour in nanoseconds (longer values are clamped).
+const MAX_TRACKED_NS: u64 = 3_600_000_000_000;
+
+impl Default for Metrics {
+    fn default() -> Self {
+        Self::new()
+    }
+}
+
+impl Metrics {
+    /// Empty counters and histograms.
+    pub(crate) fn new() -> Self {
+        let hists = Stage::ALL
+            .iter()
+            .map(|_| Histogram::new_with_bounds(1, MAX_TRACKED_NS, 3).expect("constant histogram bounds are valid"))
+            .collect();
+        Self {
+            hists: Mutex::new(hists),
+            photons: AtomicU64::new(0),
+            refused_photons: AtomicU64::new(0),
+            refused_frames: AtomicU64::new(0),
+            refused_connections: AtomicU64::new(0),
+            alerts: [AtomicU64::new(0), AtomicU64::new(0), AtomicU64::new(0)],
+            producers: AtomicI64::new(0),
+            subscribers: AtomicI64::new(0),
+            subscribers_dropped: AtomicU64::new(0),
+        }
+    }
+
+    /// Records one latency between two wall-clock stamps (Unix ns). Absent (0) or reversed stamps are not
+    /// recorded: a clock step must not put a negative value in a histogram.
+    pub(crate) fn record(&self, stage: Stage, from_unix_ns: i64, to_unix_ns: i64) {
+        if from_unix_ns <= 0 || to_unix_ns < from_unix_ns {
+            return;
+        }
+        let ns = u64::try_from(to_unix_ns - from_unix_ns).unwrap_or(0).clamp(1, MAX_TRACKED_NS);
+        if let Ok(mut h) = self.hists.lock() {
+            // Cannot fail: the value was clamped into the tracked range.
+            let _ = h[stage.index()].record(ns);
+        }
+    }
+
+    /// Percentiles of one stage so far.
+    pub(crate) fn percentiles(&self, stage: Stage) -> Percentiles {
+        let ms = |ns: u64| ns as f64 / 1e6;
+        match self.hists.lock() {
+            Ok(h) => {
+                let h = &h[stage.index()];
+                Percentiles {
+                    count: h.len(),
+                    p50_ms: ms(h.value_at_quantile(0.5)),
+                    p99_ms: ms(h.value_at_quantile(0.99)),
+                    p999_ms: ms(h.value_at_quantile(0.999)),
+                    max_ms: ms(h.max()),
+                }
+            }
+            Err(_) => Percentiles { count: 0, p50_ms: 0.0, p99_ms: 0.0, p999_ms: 0.0, max_ms: 0.0 },
+        }
+    }
+
+    /// Counts an issued alert by its kind.
+    pub(crate) fn count_alert(&self, kind: i32) {
+        let i = match glint_wire::pb::AlertKind::try_from(kind) {
+            Ok(glint_wire::pb::AlertKind::Flash) => 0,
+            Ok(glint_wire::pb::AlertKind::Assessment) => 1,
+            Ok(glint_wire::pb::AlertKind::Withdrawal) => 2,
+            _ => return,
+        };
+        self.alerts[i].fetch_add(1, Ordering::Relaxed);
+    }
+
+    /// Everything in the Prometheus text exposition format.
+    pub(crate) fn prometheus_text(&self) -> String {
+        let mut s = String::new();
+        let get = |a: &AtomicU64| a.load(Ordering::Relaxed);
+        let counters = [
+            ("glint_photons_total", "Photons taken into engine queues.", get(&self.photons)),
+            ("glint_refused_photons_total", "Photons in refused batches.", get(&self.refused_photons)),
+            ("glint_refused_frames_total", "Producer frames refused.", get(&self.refused_frames)),
+            ("glint_refused_connections_total", "Producer connections refused at Hello.", get(&self.refused_connections)),
+            ("glint_subscribers_dropped_total", "Subscribers dropped for an unwritable socket.", get(&self.subscribers_dropped)),
+        ];
+        for (name, help, v) in counters {
+            let _ = writeln!(s, "# HELP {name} {help}\n# TYPE {name} counter\n{name} {v}");
+        }
+        let _ = writeln!(s, "# HELP glint_alerts_total Alerts issued, by kind.\n# TYPE glint_alerts_total counter");
+        for (i, kind) in ["flash", "assessment", "withdrawal"].iter().enumerate() {
+            let _ = writeln!(s, "glint_alerts_total{{kind=\"{kind}\"}} {}", get(&self.alerts[i]));
+        }
+        for (name, help, v) in [
+            ("glint_producers", "Producers connected.", self.producers.load(Ordering::Relaxed)),
+            ("glint_subscribers", "Subscribers connected.", self.subscribers.load(Ordering::Relaxed)),
+        ] {
+            let _ = writeln!(s, "# HELP {name} {help}\n# TYPE {name} gauge\n{name} {v}");
+        }
+        let _ = writeln!(
+            s,
+            "# HELP glint_latency_seconds Latency per stage, from frame receipt to subscriber socket.\n# TYPE glint_latency_seconds summary"
+        );
+        for stage in Stage::ALL {
+            let p = self.percentiles(stage);
+            let name = stage.name();
+            for (q, v) in [("0.5", p.p50_ms), ("0.99", p.p99_ms), ("0.999", p.p999_ms), ("1", p.max_ms)] {
+                let _ = writeln!(s, "glint_latency_seconds{{stage=\"{name}\",quantile=\"{q}\"}} {}", v / 1e3);
+            }
+            let _ = writeln!(s, "glint_latency_seconds_count{{stage=\"{name}\"}} {}", p.count);
+        }
+        s
+    }
+}
+
+/// Serves `GET /metrics` (any path, in fact) over plain HTTP/1.1 until the task is dropped. One request per
+/// connection; a request is read for at most two seconds.
+pub(crate) async fn serve(listener: TcpListener, metrics: std::sync::Arc<Metrics>) {
+    loop {
+        let (mut sock, _) = match listener.accept().await {
+            Ok(s) => s,
+            Err(e) => {
+                tracing::warn!(error = %e, "metrics: accept failed");
+                tokio::time::sleep(Duration::from_millis(100)).await;
+                continue;
+            }
+        };
+        let m = metrics.clone();
+        tokio::spawn(async move {
+            let mut buf = [0u8; 1024];
+            let _ = tokio::time::timeout(Duration::from_secs(2), sock.read(&mut buf)).await;
+            let body = m.prometheus_text();
+            let head = format!(
+                "HTTP/1.1 200 OK\r\nContent-Type: text/plain; version=0.0.4\r\nContent-Length: {}\r\nConnection: close\r\n\r\n",
+                body.len()
+            );
+            let _ = sock.write_all(head.as_bytes()).await;
+            let _ = sock.write_all(body.as_bytes()).await;
+            let _ = sock.shutdown().await;
+        });
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn percentiles_and_text_format() {
+        let m = Metrics::new();
+        // 1..=1000 microseconds: p50 about 0.5 ms, max 1 ms (hdrhistogram keeps 3 significant digits).
+        for us in 1..=1000_i64 {
+            m.record(Stage::EndToEnd, 1_000, 1_000 + us * 1_000);
+        }
+        // Absent and reversed stamps are ignored.
+        m.record(Stage::EndToEnd, 0, 5);
+        m.record(Stage::EndToEnd, 10, 5);
+        let p = m.percentiles(Stage::EndToEnd);
+        assert_eq!(p.count, 1000);
+        assert!((p.p50_ms - 0.5).abs() < 0.002, "{p:?}");
+        assert!((p.p99_ms - 0.99).abs() < 0.002, "{p:?}");
+        assert!((p.max_ms - 1.0).abs() < 0.002, "{p:?}");
+        m.count_alert(glint_wire::pb::AlertKind::Assessment as i32);
+        let text = m.prometheus_text();
+        assert!(text.contains("glint_alerts_total{kind=\"assessment\"} 1"), "{text}");
+        assert!(text.contains("glint_latency_seconds_count{stage=\"end_to_end\"} 1000"), "{text}");
+    }
+}

@@ -1,0 +1,404 @@
+//! The subscriber listener: receiving telescopes and people connect, send one `Subscribe` (or an operator's
+//! `WithdrawRequest`), and get a replay from the journal followed by live alerts and heartbeats. Each
+//! connection is a task with its own cursor into the desk; it waits on a watch of the newest sequence
+//! number, never on a queue, and is dropped (with a log line) when its socket stays unwritable too long.
+
+use std::net::SocketAddr;
+use std::sync::Arc;
+use std::sync::atomic::{AtomicI64, Ordering};
+use std::time::Duration;
+
+use futures::{SinkExt, StreamExt};
+use glint_wire::pb::{self, subscriber_frame, subscriber_request};
+use subtle::ConstantTimeEq;
+use tokio::net::TcpListener;
+use tokio::sync::Semaphore;
+use tokio_rustls::TlsAcceptor;
+use tokio_util::codec::Framed;
+use tokio_util::sync::CancellationToken;
+use tokio_util::task::TaskTracker;
+use tracing::Instrument;
+
+use crate::codec::{SubscriberServerCodec, subscriber_refusal};
+use crate::config::{Secret, SubscribersConfig};
+use crate::desk::Desk;
+use crate::metrics::{Metrics, Stage};
+use crate::timefmt::now_unix_ns;
+use crate::tls::{self, BoxIo};
+
+/// How long a new connection may take to send its request.
+const REQUEST_TIMEOUT: Duration = Duration::from_secs(10);
+/// Alerts read per step of a subscriber's cursor; bounds the memory one subscriber holds at a time.
+const READ_CHUNK: usize = 256;
+
+/// Compares a token in constant time (for equal lengths; the length itself is not secret).
+pub(crate) fn token_matches(given: &str, expected: &Secret) -> bool {
+    given.as_bytes().ct_eq(expected.expose().as_bytes()).into()
+}
+
+/// Each instrument's event time (engine watermark), published by the engine threads for heartbeats.
+#[derive(Debug)]
+pub(crate) struct Watermarks {
+    names: Vec<String>,
+    values: Vec<AtomicI64>,
+}
+
+impl Watermarks {
+    /// One zeroed watermark per instrument, in configuration order.
+    pub(crate) fn new(names: Vec<String>) -> Self {
+        let values = names.iter().map(|_| AtomicI64::new(0)).collect();
+        Self { names, values }
+    }
+
+    /// Sets instrument `i`'s watermark, GPS ns.
+    pub(crate) fn set(&self, i: usize, gps_ns: i64) {
+        if let Some(v) = self.values.get(i) {
+            v.store(gps_ns, Ordering::Relaxed);
+        }
+    }
+
+    /// Instrument `i`'s watermark, GPS ns (0 before its first photon).
+    pub(crate) fn get(&self, i: usize) -> i64 {
+        self.values.get(i).map_or(0, |v| v.load(Ordering::Relaxed))
+    }
+
+    fn snapshot(&self) -> (Vec<String>, Vec<i64>) {
+        (self.names.clone(), self.values.iter().map(|v| v.load(Ordering::Relaxed)).collect())
+    }
+}
+
+/// What every subscriber connection shares.
+#[derive(Debug)]
+pub(crate) struct Hub {
+    /// Source of alerts.
+    pub(crate) desk: Arc<Desk>,
+    /// Tokens, heartbeat, timeouts, limits.
+    pub(crate) cfg: SubscribersConfig,
+    /// Frame size limit.
+    pub(crate) max_frame: usize,
+    /// Engine event times for heartbeats.
+    pub(crate) watermarks: Arc<Watermarks>,
+    /// Latency histograms and counters.
+    pub(crate) metrics: Arc<Metrics>,
+    /// Cancelled when the daemon says goodbye: each subscriber sends what is left, a closing heartbeat, and
+    /// ends.
+    pub(crate) closing: CancellationToken,
+}
+
+/// Accepts subscribers until `stop` is cancelled; every connection task is spawned on `tracker`.
+pub(crate) async fn serve(
+    listener: TcpListener,
+    tls: Option<TlsAcceptor>,
+    hub: Arc<Hub>,
+    tracker: TaskTracker,
+    stop: CancellationToken,
+) {
+    let permits = Arc::new(Semaphore::new(hub.cfg.max_connections.get()));
+    let mut backoff = Duration::from_millis(10);
+    loop {
+        let accepted = tokio::select! {
+            () = stop.cancelled() => return,
+            a = listener.accept() => a,
+        };
+        let (tcp, peer) = match accepted {
+            Ok(x) => {
+                backoff = Duration::from_millis(10);
+                x
+            }
+            Err(e) => {
+                // Out of file descriptors and the like: wait, so the loop does not spin.
+                tracing::warn!(error = %e, "subscribers: accept failed, retrying in {} ms", backoff.as_millis());
+                tokio::time::sleep(backoff).await;
+                backoff = (backoff * 2).min(Duration::from_secs(1));
+                continue;
+            }
+        };
+        let permit = permits.clone().try_acquire_owned().ok();
+        let hub = hub.clone();
+        let tls = tls.clone();
+        let span = tracing::info_span!("subscriber", %peer);
+        tracker.spawn(
+            async move {
+                let io = match tls::accept(tcp, tls.as_ref()).await {
+                    Ok(io) => io,
+                    Err(e) => {
+                        tracing::warn!("connection failed: {e:#}");
+                        return;
+                    }
+                };
+                let mut framed = Framed::new(io, SubscriberServerCodec::new(hub.max_frame));
+                let Some(_permit) = permit else {
+                    let detail = format!("subscriber limit of {} connections reached", hub.cfg.max_connections);
+                    tracing::warn!("refused: {detail}");
+                    let _ = framed.send(subscriber_refusal(pb::RefusalCode::BadRequest, detail)).await;
+                    return;
+                };
+                if let Err(e) = handle(framed, peer, &hub).await {
+                    tracing::info!("closed: {e:#}");
+                }
+            }
+            .instrument(span),
+        );
+    }
+}
+
+type Conn = Framed<BoxIo, SubscriberServerCodec>;
+
+async fn refuse(framed: &mut Conn, code: pb::RefusalCode, detail: String) -> anyhow::Result<()> {
+    tracing::warn!(code = code.as_str_name(), "refused: {detail}");
+    let _ = tokio::time::timeout(REQUEST_TIMEOUT, framed.send(subscriber_refusal(code, detail))).await;
+    Ok(())
+}
+
+async fn handle(mut framed: Conn, peer: SocketAddr, hub: &Hub) -> anyhow::Result<()> {
+    let req = match tokio::time::timeout(REQUEST_TIMEOUT, framed.next()).await {
+        Err(_) => {
+            let detail = format!("no request within {} s", REQUEST_TIMEOUT.as_secs());
+            return refuse(&mut framed, pb::RefusalCode::ProtocolViolation, detail).await;
+        }
+        Ok(None) => return Ok(()),
+        Ok(Some(Err(e))) => {
+            let code = e.refusal_code().unwrap_or(pb::RefusalCode::MalformedFrame);
+            return refuse(&mut framed, code, e.to_string()).await;
+        }
+        Ok(Some(Ok(req))) => req,
+    };
+    match req.body {
+        Some(subscriber_request::Body::Subscribe(s)) => subscribe(framed, peer, s, hub).await,
+        Some(subscriber_request::Body::Withdraw(w)) => withdraw(framed, w, hub).await,
+        None => refuse(&mut framed, pb::RefusalCode::ProtocolViolation, "request has no body".into()).await,
+    }
+}
+
+async fn withdraw(mut framed: Conn, w: pb::WithdrawRequest, hub: &Hub) -> anyhow::Result<()> {
+    let allowed = hub.cfg.operator_token.as_ref().is_some_and(|t| token_matches(&w.token, t));
+    if !allowed {
+        return refuse(&mut framed, pb::RefusalCode::BadToken, "withdrawals need the operator token".into()).await;
+    }
+    let desk = hub.desk.clone();
+    let (id, reason, operator) = (w.alert_id.clone(), w.reason.clone(), w.operator.clone());
+    let result = tokio::task::spawn_blocking(move || desk.withdraw(&id, &reason, &operator)).await?;
+    match result {
+        Ok(alert) => {
+            let frame = pb::SubscriberFrame { body: Some(subscriber_frame::Body::Alert((*alert).clone())) };
+            tokio::time::timeout(REQUEST_TIMEOUT, framed.send(frame)).await??;
+            Ok(())
+        }
+        Err(e) => refuse(&mut framed, pb::RefusalCode::BadRequest, e.to_string()).await,
+    }
+}
+
+/// What a subscriber asked for.
+struct Filter {
+    kinds: Vec<i32>,
+    min_sigma: f64,
+}
+
+impl Filter {
+    /// Kinds filter, then the significance cut (withdrawals always pass it, so a retraction is never missed).
+    fn wants(&self, a: &pb::Alert) -> bool {
+        let kind_ok = self.kinds.is_empty() || self.kinds.contains(&a.kind);
+        let sigma_ok = self.min_sigma <= 0.0
+            || a.kind == pb::AlertKind::Withdrawal as i32
+            || a.trigger.as_ref().is_some_and(|t| t.sigma >= self.min_sigma);
+        kind_ok && sigma_ok
+    }
+}
+
+async fn subscribe(mut framed: Conn, peer: SocketAddr, s: pb::Subscribe, hub: &Hub) -> anyhow::Result<()> {
+    // Every token is compared, so the time taken does not tell which one came close.
+    let mut ok = hub.cfg.tokens.iter().fold(false, |acc, t| acc | token_matches(&s.token, t));
+    ok |= hub.cfg.operator_token.as_ref().is_some_and(|t| token_matches(&s.token, t));
+    if !ok {
+        return refuse(&mut framed, pb::RefusalCode::BadToken, "subscriber token not accepted".into()).await;
+    }
+    if s.schema_version > glint_wire::SCHEMA_VERSION {
+        let detail = format!(
+            "schema version {} is not supported (this daemon writes version {})",
+            s.schema_version,
+            glint_wire::SCHEMA_VERSION
+        );
+        return refuse(&mut framed, pb::RefusalCode::SchemaUnsupported, detail).await;
+    }
+    let last = hub.desk.last_seq();
+    if s.resume_after > last {
+        let detail = format!("resume_after {} is newer than the newest alert in the journal ({last})", s.resume_after);
+        return refuse(&mut framed, pb::RefusalCode::BadRequest, detail).await;
+    }
+    if !s.min_sigma.is_finite() || s.min_sigma < 0.0 {
+        return refuse(&mut framed, pb::RefusalCode::BadRequest, format!("min_sigma {} must be >= 0", s.min_sigma)).await;
+    }
+    let welcome = pb::Welcome {
+        schema_version: glint_wire::SCHEMA_VERSION,
+        server: format!("glint {}", env!("CARGO_PKG_VERSION")),
+        max_frame_bytes: u32::try_from(hub.max_frame).unwrap_or(u32::MAX),
+        last_seq: last,
+    };
+    let t = hub.cfg.unwritable_timeout;
+    tokio::time::timeout(t, framed.send(pb::SubscriberFrame { body: Some(subscriber_frame::Body::Welcome(welcome)) }))
+        .await
+        .map_err(|_| anyhow::anyhow!("welcome not written within {} s", t.as_secs_f64()))??;
+    let client = if s.client.is_empty() { peer.to_string() } else { s.client.clone() };
+    let mut cursor = if s.resume_after > 0 {
+        s.resume_after
+    } else if s.replay_all {
+        0
+    } else {
+        last
+    };
+    tracing::info!(client = %client, resume_after = cursor, kinds = ?s.kinds, min_sigma = s.min_sigma, "subscribed");
+    hub.metrics.subscribers.fetch_add(1, Ordering::Relaxed);
+    let filter = Filter { kinds: s.kinds.clone(), min_sigma: s.min_sigma };
+    let result = stream_alerts(framed, &client, &mut cursor, last, &filter, hub).await;
+    hub.metrics.subscribers.fetch_sub(1, Ordering::Relaxed);
+    match &result {
+        Err(e) => tracing::info!(client = %client, last_seq_sent = cursor, "subscriber gone: {e:#}"),
+        Ok(()) => tracing::info!(client = %client, last_seq_sent = cursor, "subscriber closed"),
+    }
+    result
+}
+
+/// Why a stream to one subscriber ended early.
+#[derive(Debug, thiserror::Error)]
+enum StreamEnd {
+    #[error("socket unwritable for {0:?}; dropped")]
+    Unwritable(Duration),
+    #[error("{0}")]
+    Other(#[from] anyhow::Error),
+}
+
+async fn stream_alerts(
+    framed: Conn,
+    client: &str,
+    cursor: &mut u64,
+    live_from: u64,
+    filter: &Filter,
+    hub: &Hub,
+) -> anyhow::Result<()> {
+    let (mut sink, mut stream) = framed.split();
+    let mut watch = hub.desk.watch();
+    let beat = hub.cfg.heartbeat;
+    let mut next_beat = tokio::time::Instant::now() + beat;
+    let timeout = hub.cfg.unwritable_timeout;
+    let mut closing = false;
+    loop {
+        // Catch up to the newest published alert, one bounded chunk at a time.
+        while *cursor < hub.desk.last_seq() {
+            let chunk = match hub.desk.read_cached(*cursor, READ_CHUNK) {
+                Some(c) => c,
+                None => {
+                    let (desk, after) = (hub.desk.clone(), *cursor);
+                    tokio::task::spawn_blocking(move || desk.read_from_disk(after, READ_CHUNK)).await??
+                }
+            };
+            let Some(newest) = chunk.last().map(|a| a.seq) else {
+                // Nothing readable although the journal is ahead (deleted by retention or corrupt): skip on.
+                tracing::warn!(client, from = *cursor, "alerts after seq {} are no longer in the journal", *cursor);
+                *cursor = hub.desk.last_seq();
+                break;
+            };
+            let mut live = Vec::new();
+            let sent = async {
+                for a in chunk.iter().filter(|a| filter.wants(a)) {
+                    let mut a = (**a).clone();
+                    a.replayed = a.seq <= live_from;
+                    if let Some(l) = a.latency.as_mut() {
+                        l.sent_unix_ns = now_unix_ns();
+                        if !a.replayed {
+                            live.push((l.received_unix_ns, l.journaled_unix_ns));
+                        }
+                    }
+                    sink.feed(pb::SubscriberFrame { body: Some(subscriber_frame::Body::Alert(a)) }).await?;
+                }
+                sink.flush().await
+            };
+            match tokio::time::timeout(timeout, sent).await {
+                Err(_) => {
+                    hub.metrics.subscribers_dropped.fetch_add(1, Ordering::Relaxed);
+                    tracing::warn!(client, last_seq_sent = *cursor, "dropping subscriber: socket unwritable for {:.1} s", timeout.as_secs_f64());
+                    return Err(StreamEnd::Unwritable(timeout).into());
+                }
+                Ok(r) => r?,
+            }
+            let done = now_unix_ns();
+            for (received, journaled) in live {
+                hub.metrics.record(Stage::Send, journaled, done);
+                hub.metrics.record(Stage::EndToEnd, received, done);
+            }
+            *cursor = newest;
+            next_beat = tokio::time::Instant::now() + beat;
+        }
+        if closing {
+            send_heartbeat(&mut sink, hub, true, timeout).await?;
+            let _ = tokio::time::timeout(timeout, sink.close()).await;
+            return Ok(());
+        }
+        tokio::select! {
+            changed = watch.changed() => {
+                if changed.is_err() {
+                    closing = true;
+                }
+            }
+            () = tokio::time::sleep_until(next_beat) => {
+                send_heartbeat(&mut sink, hub, false, timeout).await?;
+                next_beat = tokio::time::Instant::now() + beat;
+            }
+            () = hub.closing.cancelled() => closing = true,
+            incoming = stream.next() => match incoming {
+                // A subscriber sends one request; anything more is ignored, the end of its stream ends ours.
+                Some(Ok(_)) => {}
+                Some(Err(e)) => return Err(anyhow::anyhow!("reading from subscriber: {e}")),
+                None => return Ok(()),
+            },
+        }
+    }
+}
+
+async fn send_heartbeat(
+    sink: &mut futures::stream::SplitSink<Conn, pb::SubscriberFrame>,
+    hub: &Hub,
+    closing: bool,
+    timeout: Duration,
+) -> anyhow::Result<()> {
+    let (instruments, watermark_gps_ns) = hub.watermarks.snapshot();
+    let hb = pb::Heartbeat { unix_ns: now_unix_ns(), last_seq: hub.desk.last_seq(), instruments, watermark_gps_ns, closing };
+    let frame = pb::SubscriberFrame { body: Some(subscriber_frame::Body::Heartbeat(hb)) };
+    match tokio::time::timeout(timeout, sink.send(frame)).await {
+        Err(_) => {
+            hub.metrics.subscribers_dropped.fetch_add(1, Ordering::Relaxed);
+            tracing::warn!("dropping subscriber: socket unwritable for {:.1} s", timeout.as_secs_f64());
+            Err(StreamEnd::Unwritable(timeout).into())
+        }
+        Ok(r) => Ok(r?),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn filter_by_kind_and_sigma_lets_withdrawals_through() {
+        let alert = |kind: pb::AlertKind, sigma: f64| pb::Alert {
+            kind: kind as i32,
+            trigger: Some(pb::Trigger { sigma, ..Default::default() }),
+            ..Default::default()
+        };
+        let f = Filter { kinds: vec![pb::AlertKind::Flash as i32, pb::AlertKind::Withdrawal as i32], min_sigma: 5.0 };
+        assert!(f.wants(&alert(pb::AlertKind::Flash, 5.0)));
+        assert!(!f.wants(&alert(pb::AlertKind::Flash, 4.9)));
+        assert!(!f.wants(&alert(pb::AlertKind::Assessment, 9.0)));
+        assert!(f.wants(&alert(pb::AlertKind::Withdrawal, 1.0)));
+        let all = Filter { kinds: vec![], min_sigma: 0.0 };
+        assert!(all.wants(&pb::Alert::default()));
+    }
+
+    #[test]
+    fn tokens_compare_exactly() {
+        let t = Secret::new("demo-subscriber-token");
+        assert!(token_matches("demo-subscriber-token", &t));
+        assert!(!token_matches("demo-subscriber-tokeN", &t));
+        assert!(!token_matches("demo-subscriber-token ", &t));
+        assert!(!token_matches("", &t));
+    }
+}

@@ -1,0 +1,66 @@
+//! `glint withdraw ID --reason TEXT`: an operator retracts an alert. The request goes to the daemon's
+//! subscriber port with the operator token; the daemon journals a withdrawal alert through the same desk path
+//! as every other alert and sends it to all subscribers. The command prints the withdrawal's id.
+
+use std::path::PathBuf;
+use std::process::ExitCode;
+use std::time::Duration;
+
+use anyhow::{Context, anyhow, bail};
+use futures::{SinkExt, StreamExt};
+use glint_wire::pb::{self, subscriber_frame, subscriber_request};
+use tokio_util::codec::Framed;
+
+use crate::codec::{SubscriberClientCodec, refusal_name};
+use crate::listen::read_token;
+use crate::tls::{self, ClientTls};
+
+/// Arguments of `glint withdraw`.
+#[derive(Debug, clap::Args)]
+pub(crate) struct WithdrawArgs {
+    /// Id of the alert to withdraw, e.g. GL-ventisca-array-20261201T233112.123-42.
+    id: String,
+    /// Why, in words; copied into the withdrawal alert.
+    #[arg(long)]
+    reason: String,
+    /// The daemon's subscriber address.
+    #[arg(long, value_name = "HOST:PORT")]
+    from: String,
+    /// File holding the operator token.
+    #[arg(long, value_name = "FILE")]
+    token_file: PathBuf,
+    /// Operator's name or initials, for the daemon's log (default: $USER).
+    #[arg(long)]
+    operator: Option<String>,
+    /// Connect with TLS, trusting the CA certificates in this PEM file.
+    #[arg(long, value_name = "FILE")]
+    tls_ca: Option<PathBuf>,
+}
+
+/// `glint withdraw`.
+pub(crate) fn run(args: WithdrawArgs) -> anyhow::Result<ExitCode> {
+    if args.reason.trim().is_empty() {
+        bail!("--reason must say why the alert is withdrawn");
+    }
+    let token = read_token(&args.token_file)?;
+    let tls = args.tls_ca.as_deref().map(ClientTls::from_ca_file).transpose()?;
+    let operator = args.operator.clone().or_else(|| std::env::var("USER").ok()).unwrap_or_default();
+    let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().context("cannot start the runtime")?;
+    let alert = rt.block_on(async {
+        let io = tls::connect(&args.from, tls.as_ref()).await?;
+        let mut framed = Framed::new(io, SubscriberClientCodec::new(glint_wire::DEFAULT_MAX_FRAME_BYTES.max(64 << 20)));
+        let req = pb::WithdrawRequest { token, alert_id: args.id.clone(), reason: args.reason.clone(), operator };
+        framed.send(pb::SubscriberRequest { body: Some(subscriber_request::Body::Withdraw(req)) }).await?;
+        let reply = tokio::time::timeout(Duration::from_secs(30), framed.next())
+            .await
+            .map_err(|_| anyhow!("no reply from {} within 30 s", args.from))?
+            .ok_or_else(|| anyhow!("{} closed the connection without a reply", args.from))??;
+        match reply.body {
+            Some(subscriber_frame::Body::Alert(a)) => Ok(a),
+            Some(subscriber_frame::Body::Refusal(r)) => Err(anyhow!("{} refused: {} ({})", args.from, refusal_name(r.code), r.detail)),
+            _ => Err(anyhow!("{} sent an unexpected reply", args.from)),
+        }
+    })?;
+    println!("withdrew {} with {} (seq {})", alert.withdrawn_id, alert.id, alert.seq);
+    Ok(ExitCode::SUCCESS)
+}
