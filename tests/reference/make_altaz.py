@@ -63,7 +63,10 @@ def main() -> None:
             t = Time(iso, scale="utc", location=loc)
             t.delta_ut1_utc = 0.0
             # GPS seconds since 1980-01-06T00:00:00 UTC = TAI - 19 s.
-            gps_ns = int(round((t.tai - Time("1980-01-06T00:00:19", scale="tai")).to_value(u.s) * 1e9))
+            # GPS seconds since 1980-01-06T00:00:00 UTC (= TAI - 19 s), rounded to the microsecond: the float
+            # difference carries ~0.2 us of rounding, and every time in the grid is a whole second.
+            gps_s = (t.tai - Time("1980-01-06T00:00:19", scale="tai")).to_value(u.s)
+            gps_ns = int(round(gps_s * 1e6)) * 1000
             gmst = t.sidereal_time("mean", longitude=0.0 * u.deg, model="IAU2006").deg
             frame = AltAz(obstime=t, location=loc, pressure=0.0 * u.hPa)
             ra, dec = np.meshgrid(RA_DEG, DEC_DEG, indexing="ij")

@@ -37,6 +37,8 @@ pub(crate) struct AcceptanceMap {
     t_ref: Option<i64>,
     /// Time of the newest photon added.
     t_last: Option<i64>,
+    /// Time of the newest photon of a loaded map, written back until new photons arrive.
+    t_saved: i64,
     loaded: bool,
 }
 
@@ -50,6 +52,7 @@ impl AcceptanceMap {
             total: 0.0,
             t_ref: None,
             t_last: None,
+            t_saved: 0,
             loaded: false,
         }
     }
@@ -163,7 +166,7 @@ impl AcceptanceMap {
             (Some(r), Some(l)) => 1.0 / self.growth(l, r),
             _ => 1.0,
         };
-        b.extend_from_slice(&self.t_last.unwrap_or(0).to_le_bytes());
+        b.extend_from_slice(&self.t_last.unwrap_or(self.t_saved).to_le_bytes());
         b.extend_from_slice(&(self.total * scale).to_le_bytes());
         for w in &self.w {
             b.extend_from_slice(&(w * scale).to_le_bytes());
@@ -212,7 +215,7 @@ impl AcceptanceMap {
                 self.max_zenith_deg
             )));
         }
-        let _t_saved = r.i64()?;
+        let t_saved = r.i64()?;
         let total = r.f64()?;
         let mut w = Vec::with_capacity(N_BINS);
         for i in 0..N_BINS {
@@ -233,6 +236,7 @@ impl AcceptanceMap {
         self.total = total;
         self.t_ref = None;
         self.t_last = None;
+        self.t_saved = t_saved;
         self.loaded = true;
         Ok(())
     }
@@ -313,9 +317,6 @@ impl AllSky {
         Some(n as f64 / (live as f64 * 1e-9))
     }
 
-    pub(crate) fn len(&self) -> usize {
-        self.times.len()
-    }
 }
 
 #[cfg(test)]
@@ -378,6 +379,7 @@ mod tests {
         }
         assert!((n.weight() - m.weight()).abs() < 1e-9 * m.weight());
         assert!(n.loaded());
+        assert_eq!(n.save("inst"), blob, "save(load(blob)) gives the blob back");
         let mut bad = blob.clone();
         bad[40] ^= 1;
         assert!(matches!(n.load(&bad, "inst"), Err(EngineError::State(_))));

@@ -70,6 +70,7 @@ impl DeadTime {
     }
 
     /// Intervals held now.
+    #[cfg(test)]
     pub(crate) fn len(&self) -> usize {
         self.intervals.len()
     }

@@ -9,13 +9,14 @@ use glint_science::instrument::{AreaTable, CurveTable, InstrumentResponse, Respo
 use rand::{RngExt, SeedableRng};
 use rand_distr::{Distribution, Poisson, StandardNormal};
 use rand_pcg::Pcg64;
+use std::sync::OnceLock;
 
 /// Trials per statistical check (the brief's minimum).
 static TRIALS: std::sync::LazyLock<usize> = std::sync::LazyLock::new(|| std::env::var("NT").map(|v| v.parse().unwrap()).unwrap_or(200));
 /// An arbitrary GPS time for the explosion, ns.
 const T0_NS: i64 = 1_400_000_000_000_000_000;
 /// Expected signal photons of the standard scenario.
-const SIGNAL_PHOTONS: f64 = 40.0;
+static SIGNAL_PHOTONS: std::sync::LazyLock<f64> = std::sync::LazyLock::new(|| std::env::var("SIG").map(|v| v.parse().unwrap()).unwrap_or(40.0));
 
 /// An invented ground array (numbers for tests of statistical behaviour only, not check values):
 /// area rising from 300 GeV to 100 TeV, resolution 50% falling to 25%, 10 ns clock.
@@ -60,7 +61,7 @@ impl Scenario {
             response: ground_response(),
             zenith_deg: 20.0,
             psf_containment: 0.68,
-            background_rate_hz: 0.2,
+            background_rate_hz: std::env::var("BG").map(|v| v.parse().unwrap()).unwrap_or(0.2),
             background_index: 2.7,
             pre_s: 20.0,
             post_s: 10.0,
@@ -153,28 +154,34 @@ impl<'a> BurstSampler<'a> {
     }
 }
 
-/// The burst as the tests need it: the distance giving `SIGNAL_PHOTONS` expected photons, and the time
+/// The burst as the tests need it: the distance giving `*SIGNAL_PHOTONS` expected photons, and the time
 /// before the explosion within which the last signal photon falls with 95% probability.
 struct Calibration {
     distance_pc: f64,
     t0_bound_s: f64,
 }
 
-/// Estimates the kept fraction and the time-to-go distribution of kept photons from 400k proposals.
-fn calibrate(s: &Scenario) -> Calibration {
-    let sampler = BurstSampler::new(s);
-    let mut rng = Pcg64::seed_from_u64(0x6c69_6e74);
-    let proposals = 400_000;
-    let mut taus: Vec<f64> = (0..proposals).filter_map(|_| sampler.propose(&mut rng)).map(|(t, _)| t).collect();
-    taus.sort_by(f64::total_cmp);
-    let kept = taus.len() as f64 / f64::from(proposals);
-    // Photons expected at 1 pc; they scale as d^-2.
-    let at_1pc = sampler.proposals(1.0) * kept;
-    let distance_pc = (at_1pc / SIGNAL_PHOTONS).sqrt();
-    // P(no signal photon within x of t0) = exp(-N P(tau < x)) = 5%: P(tau < x) = ln(20) / N.
-    let fraction = 20.0_f64.ln() / SIGNAL_PHOTONS;
-    let t0_bound_s = taus[(fraction * taus.len() as f64) as usize];
-    Calibration { distance_pc, t0_bound_s }
+/// Estimates the kept fraction and the time-to-go distribution of kept photons from 1M proposals, once for
+/// all tests of the standard scenario.
+fn calibration() -> &'static Calibration {
+    static CALIBRATION: OnceLock<Calibration> = OnceLock::new();
+    CALIBRATION.get_or_init(|| {
+        let s = Scenario::standard();
+        let sampler = BurstSampler::new(&s);
+        let mut rng = Pcg64::seed_from_u64(0x6c69_6e74);
+        let proposals = 1_000_000;
+        let mut taus: Vec<f64> =
+            (0..proposals).filter_map(|_| sampler.propose(&mut rng)).map(|(t, _)| t).collect();
+        taus.sort_by(f64::total_cmp);
+        let kept = taus.len() as f64 / f64::from(proposals);
+        // Photons expected at 1 pc; they scale as d^-2.
+        let at_1pc = sampler.proposals(1.0) * kept;
+        let distance_pc = (at_1pc / *SIGNAL_PHOTONS).sqrt();
+        // P(no signal photon within x of t0) = exp(-N P(tau < x)) = 5%: P(tau < x) = ln(20) / N.
+        let fraction = 20.0_f64.ln() / *SIGNAL_PHOTONS;
+        let t0_bound_s = taus[(fraction * taus.len() as f64) as usize];
+        Calibration { distance_pc, t0_bound_s }
+    })
 }
 
 fn draw_background(s: &Scenario, rng: &mut Pcg64, times: &mut Vec<i64>, energies: &mut Vec<f64>) {
@@ -216,8 +223,14 @@ fn draw_afterglow(
     }
 }
 
-/// Fits `TRIALS` bursts (plus background) at `distance_pc` and returns the results.
-fn burst_trials(s: &Scenario, distance_pc: f64, seed: u64) -> Vec<FitResult> {
+/// One fitted burst and the number of burst photons actually drawn for it.
+struct Trial {
+    fit: FitResult,
+    signal_photons: usize,
+}
+
+/// Fits `TRIALS` bursts (plus background) at `distance_pc`.
+fn burst_trials(s: &Scenario, distance_pc: f64, seed: u64) -> Vec<Trial> {
     let sampler = BurstSampler::new(s);
     let mut rng = Pcg64::seed_from_u64(seed);
     let mut times = Vec::new();
@@ -227,86 +240,91 @@ fn burst_trials(s: &Scenario, distance_pc: f64, seed: u64) -> Vec<FitResult> {
             times.clear();
             energies.clear();
             sampler.draw(distance_pc, &mut rng, &mut times, &mut energies);
+            let signal_photons = times.len();
             draw_background(s, &mut rng, &mut times, &mut energies);
-            let r = fit_evaporation(&s.input(&times, &energies));
-            assert!(r.converged, "trial {trial} ({} photons): {}", times.len(), r.reason);
-            r
+            let fit = fit_evaporation(&s.input(&times, &energies));
+            assert!(fit.converged, "trial {trial} ({} photons): {}", times.len(), fit.reason);
+            Trial { fit, signal_photons }
         })
         .collect()
 }
 
-fn fraction(results: &[FitResult], pass: impl Fn(&FitResult) -> bool) -> f64 {
-    results.iter().filter(|r| pass(r)).count() as f64 / results.len() as f64
+fn fraction(trials: &[Trial], pass: impl Fn(&FitResult) -> bool) -> f64 {
+    trials.iter().filter(|t| pass(&t.fit)).count() as f64 / trials.len() as f64
 }
 
 #[test]
 fn distance_interval_covers_the_true_distance_in_90_percent_of_trials() {
     let s = Scenario::standard();
-    let c = calibrate(&s);
-    let results = burst_trials(&s, c.distance_pc, 1);
+    let c = calibration();
+    let trials = burst_trials(&s, c.distance_pc, 1);
     let d = c.distance_pc;
-    let covered = fraction(&results, |r| r.distance_pc_lo <= d && d <= r.distance_pc_hi);
-    let below = fraction(&results, |r| r.distance_pc_hi < d);
-    eprintln!("true distance {d:.4} pc: 90% interval covers it in {covered:.3} of {TRIALS} (too near: {below:.3})");
+    let covered = fraction(&trials, |r| r.distance_pc_lo <= d && d <= r.distance_pc_hi);
+    let too_near = fraction(&trials, |r| r.distance_pc_hi < d);
+    eprintln!("true distance {d:.4} pc: the 90% interval covers it in {covered:.3} of {} (below it: {too_near:.3})", *TRIALS);
     // Nominal 90%; with 200 trials the binomial spread is 2.1%, so [0.85, 0.95] is +-2.4 sigma.
     assert!((0.85..=0.95).contains(&covered), "coverage {covered}");
-    for r in &results {
+    for t in &trials {
+        let r = &t.fit;
         assert!(r.distance_pc_lo < r.distance_pc && r.distance_pc < r.distance_pc_hi, "{r:?}");
     }
 }
 
 #[test]
-fn distance_estimate_is_centred_on_the_truth() {
-    // Common practice, no source: the maximum-likelihood estimate of d ~ N^-1/2 with N ~ 40 is biased by
-    // a few percent at most; its median over 200 trials lies within 5% of the truth.
+fn distance_and_counts_are_centred_on_the_truth() {
     let s = Scenario::standard();
-    let c = calibrate(&s);
-    let results = burst_trials(&s, c.distance_pc, 2);
-    let mut ratios: Vec<f64> = results.iter().map(|r| r.distance_pc / c.distance_pc).collect();
+    let c = calibration();
+    let trials = burst_trials(&s, c.distance_pc, 2);
+    let mut ratios: Vec<f64> = trials.iter().map(|t| t.fit.distance_pc / c.distance_pc).collect();
     ratios.sort_by(f64::total_cmp);
     let median = ratios[ratios.len() / 2];
-    let counts: f64 = results.iter().map(|r| r.signal_counts).sum::<f64>() / results.len() as f64;
-    eprintln!("median fitted/true distance {median:.4}; mean fitted signal counts {counts:.2}");
+    let excess: f64 =
+        trials.iter().map(|t| t.fit.signal_counts - t.signal_photons as f64).sum::<f64>() / trials.len() as f64;
+    eprintln!("median fitted/true distance {median:.4}; fitted minus drawn signal photons, mean {excess:.3}");
+    // Common practice, no source: the maximum-likelihood estimate of d ~ N^-1/2 with N ~ 40 is biased by a
+    // few percent at most, so its median over 200 trials lies within 5% of the truth.
     assert!((0.95..=1.05).contains(&median), "median ratio {median}");
-    // [calc] from the scenario: 40 expected signal photons, 0.2 Hz x 30 s = 6 background photons.
-    assert!((counts - SIGNAL_PHOTONS).abs() < 3.0, "mean signal counts {counts}");
-    assert!(results.iter().all(|r| (r.background_counts - 6.0).abs() < 1e-9));
+    // The fitted signal counts follow the photons drawn (6 background photons are shared out between the
+    // two components, so a trial may differ by a few; the mean by well under one).
+    assert!(excess.abs() < 1.0, "mean fitted - drawn signal photons {excess}");
+    // [calc] from the scenario: 0.2 Hz x 30 s.
+    assert!(trials.iter().all(|t| (t.fit.background_counts - 6.0).abs() < 1e-9));
 }
 
 #[test]
 fn explosion_time_falls_within_the_expected_spread() {
     let s = Scenario::standard();
-    let c = calibrate(&s);
-    let results = burst_trials(&s, c.distance_pc, 3);
+    let c = calibration();
+    let trials = burst_trials(&s, c.distance_pc, 3);
     let bound_ns = c.t0_bound_s * 1e9;
-    let errors: Vec<f64> = results.iter().map(|r| (r.explosion_ns - T0_NS) as f64).collect();
+    let errors: Vec<f64> = trials.iter().map(|t| (t.fit.explosion_ns - T0_NS) as f64).collect();
     let within = errors.iter().filter(|e| e.abs() <= bound_ns).count() as f64 / errors.len() as f64;
     let mut abs: Vec<f64> = errors.iter().map(|e| e.abs() * 1e-9).collect();
     abs.sort_by(f64::total_cmp);
     eprintln!(
-        "|t0 fit - t0 true|: median {:.2e} s, 90th percentile {:.2e} s; bound {:.2e} s holds in {within:.3}",
+        "|t0 fit - t0 true|: median {:.2e} s, 90th percentile {:.2e} s; the bound {:.2e} s holds in {within:.3}",
         abs[abs.len() / 2],
         abs[abs.len() * 9 / 10],
         c.t0_bound_s
     );
-    // The last signal photon falls within the bound of t0 in 95% of bursts (by construction of the bound);
-    // the fit anchors t0 one clock step after it unless background photons confuse it.
+    // The last burst photon falls within the bound of t0 in 95% of bursts (the bound is made so); the fit
+    // puts t0 one clock step after it unless background photons lead it astray.
     assert!(within >= 0.90, "t0 within {bound_ns} ns in only {within} of trials");
 }
 
 #[test]
 fn template_p_is_roughly_uniform_for_the_true_model() {
     let s = Scenario::standard();
-    let c = calibrate(&s);
-    let results = burst_trials(&s, c.distance_pc, 4);
-    let below_5 = fraction(&results, |r| r.template_p < 0.05);
-    let below_50 = fraction(&results, |r| r.template_p < 0.5);
+    let c = calibration();
+    let trials = burst_trials(&s, c.distance_pc, 4);
+    let below_5 = fraction(&trials, |r| r.template_p < 0.05);
+    let below_50 = fraction(&trials, |r| r.template_p < 0.5);
     eprintln!("true model: template_p < 0.05 in {below_5:.3}, < 0.5 in {below_50:.3}");
-    assert!(results.iter().all(|r| r.gof_test == "ks_time" && (0.0..=1.0).contains(&r.template_p)));
-    // Nominal 0.05 and 0.5; the burst's intensity is fitted, which makes the KS p-value somewhat
-    // conservative (Lilliefors 1967), so the bands allow fewer small p-values than nominal.
+    assert!(trials.iter().all(|t| t.fit.gof_test == "ks_time" && (0.0..=1.0).contains(&t.fit.template_p)));
+    // Nominal 0.05 and 0.5; bands of about +-3 binomial sigma for 200 trials (fitting the burst's intensity
+    // can make a KS p-value conservative, Lilliefors 1967, so the lower bands are a little wider).
     assert!((0.01..=0.12).contains(&below_5), "fraction below 0.05: {below_5}");
-    assert!((0.3..=0.6).contains(&below_50), "fraction below 0.5: {below_50}");
+    assert!((0.38..=0.62).contains(&below_50), "fraction below 0.5: {below_50}");
 }
 
 #[test]
@@ -321,7 +339,7 @@ fn template_p_is_small_for_an_afterglow_like_light_curve() {
         times.clear();
         energies.clear();
         // Onset 10 s into the window, decaying with a 3 s time constant: bright at the start, fading.
-        draw_afterglow(&s, SIGNAL_PHOTONS, 10.0, 3.0, &mut rng, &mut times, &mut energies);
+        draw_afterglow(&s, *SIGNAL_PHOTONS, 10.0, 3.0, &mut rng, &mut times, &mut energies);
         draw_background(&s, &mut rng, &mut times, &mut energies);
         let r = fit_evaporation(&s.input(&times, &energies));
         if r.converged {
@@ -332,7 +350,7 @@ fn template_p_is_small_for_an_afterglow_like_light_curve() {
         }
     }
     let frac = f64::from(small) / *TRIALS as f64;
-    eprintln!("afterglow: {fitted} of {TRIALS} fitted, template_p < 0.05 in {frac:.3}");
+    eprintln!("afterglow: {fitted} of {} fitted, template_p < 0.05 in {frac:.3}", *TRIALS);
     assert!(frac >= 0.8, "template_p < 0.05 in only {frac} of afterglow trials");
 }
 

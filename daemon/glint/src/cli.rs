@@ -33,6 +33,8 @@ enum Command {
     CheckConfig(CheckConfigArgs),
     /// Run the daemon: ingest, engines, alert desk, subscribers (until SIGTERM or SIGINT).
     Run(crate::daemon::RunArgs),
+    /// Run the whole pipeline on the built-in demo scenario, in one process, and print the alerts.
+    Demo(crate::demo::DemoArgs),
     /// Play a recording into a running daemon, as a producer would.
     Feed(crate::feed::FeedArgs),
     /// Subscribe to a daemon's alerts and print them (or run a command per alert).
@@ -72,6 +74,7 @@ pub(crate) fn dispatch(cli: Cli) -> anyhow::Result<ExitCode> {
     let result = match cli.command {
         Command::CheckConfig(a) => check_config(&a),
         Command::Run(a) => crate::daemon::run_command(a),
+        Command::Demo(a) => crate::demo::run(a),
         Command::Feed(a) => crate::feed::run(a),
         Command::Listen(a) => crate::listen::run(a),
         Command::Withdraw(a) => crate::withdraw::run(a),

@@ -42,7 +42,10 @@ pub(crate) struct FrameCodec<In, Out> {
 impl<In, Out> FrameCodec<In, Out> {
     /// A codec with this frame size limit.
     pub(crate) fn new(max_frame: usize) -> Self {
-        Self { decoder: FrameDecoder::new(max_frame), _types: PhantomData }
+        Self {
+            decoder: FrameDecoder::new(max_frame),
+            _types: PhantomData,
+        }
     }
 }
 
@@ -84,14 +87,22 @@ pub(crate) type SubscriberClientCodec = FrameCodec<pb::SubscriberFrame, pb::Subs
 /// A refusal reply for a producer.
 pub(crate) fn ingest_refusal(code: pb::RefusalCode, detail: impl Into<String>, seq: u64) -> pb::IngestReply {
     pb::IngestReply {
-        body: Some(pb::ingest_reply::Body::Refusal(pb::Refusal { code: code as i32, detail: detail.into(), seq })),
+        body: Some(pb::ingest_reply::Body::Refusal(pb::Refusal {
+            code: code as i32,
+            detail: detail.into(),
+            seq,
+        })),
     }
 }
 
 /// A refusal frame for a subscriber or operator.
 pub(crate) fn subscriber_refusal(code: pb::RefusalCode, detail: impl Into<String>) -> pb::SubscriberFrame {
     pb::SubscriberFrame {
-        body: Some(pb::subscriber_frame::Body::Refusal(pb::Refusal { code: code as i32, detail: detail.into(), seq: 0 })),
+        body: Some(pb::subscriber_frame::Body::Refusal(pb::Refusal {
+            code: code as i32,
+            detail: detail.into(),
+            seq: 0,
+        })),
     }
 }
 
@@ -134,7 +145,10 @@ mod tests {
         assert!(err.to_string().contains("64"), "{err}");
         // The encoder keeps the limit too.
         let batch = pb::ProducerFrame {
-            body: Some(pb::producer_frame::Body::Batch(pb::PhotonBatch { time_gps_ns: vec![1_400_000_000_000_000_000; 40], ..Default::default() })),
+            body: Some(pb::producer_frame::Body::Batch(pb::PhotonBatch {
+                time_gps_ns: vec![1_400_000_000_000_000_000; 40],
+                ..Default::default()
+            })),
         };
         assert!(client.encode(batch, &mut BytesMut::new()).is_err());
         assert_eq!(refusal_name(pb::RefusalCode::BadToken as i32), "BAD_TOKEN");

@@ -39,7 +39,10 @@ pub(crate) struct RunArgs {
 pub(crate) fn run_command(args: RunArgs) -> anyhow::Result<ExitCode> {
     let cfg = crate::cli::config_or_exit(args.config.as_ref())?;
     crate::logging::init(&cfg.daemon.log_level, cfg.daemon.log_format);
-    let rt = tokio::runtime::Builder::new_multi_thread().enable_all().build().context("cannot start the runtime")?;
+    let rt = tokio::runtime::Builder::new_multi_thread()
+        .enable_all()
+        .build()
+        .context("cannot start the runtime")?;
     rt.block_on(async {
         let first = shutdown_signals()?;
         run(cfg, first).await
@@ -123,13 +126,26 @@ impl Daemon {
     /// listener tasks.
     pub(crate) async fn start(cfg: Config) -> anyhow::Result<Self> {
         let state_dir = cfg.daemon.state_dir.clone();
-        std::fs::create_dir_all(&state_dir).with_context(|| format!("cannot create state_dir {}", state_dir.display()))?;
+        std::fs::create_dir_all(&state_dir)
+            .with_context(|| format!("cannot create state_dir {}", state_dir.display()))?;
         let lock_path = state_dir.join("glint.lock");
-        let lock = File::create(&lock_path).with_context(|| format!("cannot create {}", lock_path.display()))?;
-        lock.try_lock().map_err(|_| anyhow!("another glint daemon is using {} (lock {} is held)", state_dir.display(), lock_path.display()))?;
+        let lock =
+            File::create(&lock_path).with_context(|| format!("cannot create {}", lock_path.display()))?;
+        lock.try_lock().map_err(|_| {
+            anyhow!(
+                "another glint daemon is using {} (lock {} is held)",
+                state_dir.display(),
+                lock_path.display()
+            )
+        })?;
         let metrics = Arc::new(Metrics::new());
         let (desk, report) = Desk::open(&state_dir.join("journal"), &cfg.journal, metrics.clone())
-            .with_context(|| format!("cannot open the journal in {}", state_dir.join("journal").display()))?;
+            .with_context(|| {
+                format!(
+                    "cannot open the journal in {}",
+                    state_dir.join("journal").display()
+                )
+            })?;
         if let Some(t) = &report.torn {
             tracing::warn!(
                 segment = %t.path.display(),
@@ -145,10 +161,16 @@ impl Daemon {
         for d in &report.deleted {
             tracing::info!(segment = %d.display(), "journal: deleted segment past retention");
         }
-        tracing::info!(records = report.records, segments = report.segments, last_seq = desk.last_seq(), "journal open");
+        tracing::info!(
+            records = report.records,
+            segments = report.segments,
+            last_seq = desk.last_seq(),
+            "journal open"
+        );
         let desk = Arc::new(desk);
-        let watermarks =
-            Arc::new(Watermarks::new(cfg.instruments.iter().map(|i| i.id.clone()).collect()));
+        let watermarks = Arc::new(Watermarks::new(
+            cfg.instruments.iter().map(|i| i.id.clone()).collect(),
+        ));
 
         let ingest_listener = TcpListener::bind(cfg.ingest.listen)
             .await
@@ -158,8 +180,20 @@ impl Daemon {
             .with_context(|| format!("cannot listen on {} (subscribers.listen)", cfg.subscribers.listen))?;
         let ingest_addr = ingest_listener.local_addr()?;
         let subscribers_addr = sub_listener.local_addr()?;
-        let ingest_tls = cfg.ingest.tls.as_ref().map(crate::tls::acceptor).transpose().context("ingest TLS")?;
-        let sub_tls = cfg.subscribers.tls.as_ref().map(crate::tls::acceptor).transpose().context("subscriber TLS")?;
+        let ingest_tls = cfg
+            .ingest
+            .tls
+            .as_ref()
+            .map(crate::tls::acceptor)
+            .transpose()
+            .context("ingest TLS")?;
+        let sub_tls = cfg
+            .subscribers
+            .tls
+            .as_ref()
+            .map(crate::tls::acceptor)
+            .transpose()
+            .context("subscriber TLS")?;
 
         let fatal = CancellationToken::new();
         let (done_tx, engines_done) = tokio::sync::mpsc::channel(cfg.instruments.len().max(1));
@@ -167,15 +201,22 @@ impl Daemon {
         let mut engines = Vec::new();
         for (index, inst) in cfg.instruments.iter().enumerate() {
             let (tx, rx) = async_channel::bounded(cfg.ingest.queue_batches.get());
-            let mut driver = InstrumentDriver::new(inst, true).with_context(|| format!("instrument {}", inst.id))?;
+            let mut driver =
+                InstrumentDriver::new(inst, true).with_context(|| format!("instrument {}", inst.id))?;
             let sp = state_path(&state_dir, &inst.id);
             match std::fs::read(&sp) {
                 Ok(blob) => match driver.load_state(&blob) {
-                    Ok(()) => tracing::info!(instrument = %inst.id, file = %sp.display(), "loaded saved engine state"),
-                    Err(e) => tracing::warn!(instrument = %inst.id, file = %sp.display(), "saved engine state not used: {e}"),
+                    Ok(()) => {
+                        tracing::info!(instrument = %inst.id, file = %sp.display(), "loaded saved engine state")
+                    }
+                    Err(e) => {
+                        tracing::warn!(instrument = %inst.id, file = %sp.display(), "saved engine state not used: {e}")
+                    }
                 },
                 Err(e) if e.kind() == std::io::ErrorKind::NotFound => {}
-                Err(e) => tracing::warn!(instrument = %inst.id, file = %sp.display(), "cannot read saved engine state: {e}"),
+                Err(e) => {
+                    tracing::warn!(instrument = %inst.id, file = %sp.display(), "cannot read saved engine state: {e}")
+                }
             }
             let ns = |s: f64| (s * 1e9).round() as i64;
             slots.push(Slot::new(
@@ -184,7 +225,6 @@ impl Daemon {
                 tx,
                 ns(inst.search.reorder_tolerance_s),
                 ns(inst.search.max_clock_jump_s),
-                index,
             ));
             let ctx = EngineThread {
                 index,
@@ -213,7 +253,6 @@ impl Daemon {
             slots,
             max_frame: cfg.daemon.max_frame_bytes,
             ack_every: cfg.ingest.ack_every.get(),
-            watermarks: watermarks.clone(),
             metrics: metrics.clone(),
         });
         let closing = CancellationToken::new();
@@ -228,11 +267,25 @@ impl Daemon {
         let stop_accept = CancellationToken::new();
         let ingest_tasks = TaskTracker::new();
         let subscriber_tasks = TaskTracker::new();
-        tokio::spawn(ingest::serve(ingest_listener, ingest_tls, ingest.clone(), ingest_tasks.clone(), stop_accept.clone()));
-        tokio::spawn(subscribers::serve(sub_listener, sub_tls, hub, subscriber_tasks.clone(), stop_accept.clone()));
+        tokio::spawn(ingest::serve(
+            ingest_listener,
+            ingest_tls,
+            ingest.clone(),
+            ingest_tasks.clone(),
+            stop_accept.clone(),
+        ));
+        tokio::spawn(subscribers::serve(
+            sub_listener,
+            sub_tls,
+            hub,
+            subscriber_tasks.clone(),
+            stop_accept.clone(),
+        ));
         let mut metrics_addr = None;
         if let Some(addr) = cfg.metrics_listen {
-            let l = TcpListener::bind(addr).await.with_context(|| format!("cannot listen on {addr} (metrics.listen)"))?;
+            let l = TcpListener::bind(addr)
+                .await
+                .with_context(|| format!("cannot listen on {addr} (metrics.listen)"))?;
             metrics_addr = Some(l.local_addr()?);
             let m = metrics.clone();
             let stop = stop_accept.clone();
@@ -281,11 +334,18 @@ impl Daemon {
     pub(crate) async fn shutdown(mut self) -> anyhow::Result<()> {
         let started = Instant::now();
         let end = tokio::time::Instant::now() + self.deadline;
-        let late = |stage: &str| anyhow!("shutdown deadline of {:.1} s passed while {stage}", self.deadline.as_secs_f64());
+        let late = |stage: &str| {
+            anyhow!(
+                "shutdown deadline of {:.1} s passed while {stage}",
+                self.deadline.as_secs_f64()
+            )
+        };
         // 1. Stop accepting; producers are told the daemon is going and their connections end.
         self.stop_accept.cancel();
         self.ingest_tasks.close();
-        tokio::time::timeout_at(end, self.ingest_tasks.wait()).await.map_err(|_| late("closing producer connections"))?;
+        tokio::time::timeout_at(end, self.ingest_tasks.wait())
+            .await
+            .map_err(|_| late("closing producer connections"))?;
         // 2. Drain the engines: each takes what is queued, assesses its open candidates, saves its state.
         for slot in &self.ingest.slots {
             slot.tx.close();
@@ -306,12 +366,20 @@ impl Daemon {
         }
         // 3. Journal on disk (every alert already was before it was sent; this covers the last ones).
         let desk = self.desk.clone();
-        tokio::task::spawn_blocking(move || desk.sync()).await?.context("final journal fsync")?;
+        tokio::task::spawn_blocking(move || desk.sync())
+            .await?
+            .context("final journal fsync")?;
         // 4. Goodbye to subscribers: what is left, then a closing heartbeat.
         self.closing.cancel();
         self.subscriber_tasks.close();
-        tokio::time::timeout_at(end, self.subscriber_tasks.wait()).await.map_err(|_| late("saying goodbye to subscribers"))?;
-        tracing::info!(last_seq = self.desk.last_seq(), "shut down in {:.2} s", started.elapsed().as_secs_f64());
+        tokio::time::timeout_at(end, self.subscriber_tasks.wait())
+            .await
+            .map_err(|_| late("saying goodbye to subscribers"))?;
+        tracing::info!(
+            last_seq = self.desk.last_seq(),
+            "shut down in {:.2} s",
+            started.elapsed().as_secs_f64()
+        );
         Ok(())
     }
 }
@@ -322,7 +390,9 @@ fn recorder(cfg: &Config, inst: &InstrumentConfig) -> anyhow::Result<Option<Rota
     }
     let policy = RotationPolicy {
         max_bytes: std::num::NonZeroU64::new(cfg.ingest.record_rotate_bytes),
-        max_duration_ns: std::num::NonZeroU64::new(u64::try_from(cfg.ingest.record_rotate.as_nanos()).unwrap_or(u64::MAX)),
+        max_duration_ns: std::num::NonZeroU64::new(
+            u64::try_from(cfg.ingest.record_rotate.as_nanos()).unwrap_or(u64::MAX),
+        ),
     };
     let dir = cfg.daemon.state_dir.join("recordings");
     let w = RotatingWriter::new(&dir, inst.id.clone(), Compression::Zstd(3), policy)
@@ -357,6 +427,7 @@ impl EngineThread {
                     continue;
                 }
                 EngineMsg::StreamBreak => {
+                    tracing::info!(instrument = %self.id, "stream break: dead time until the producer's next frame");
                     self.driver.stream_break();
                     continue;
                 }
@@ -389,6 +460,17 @@ impl EngineThread {
         self.driver.finish(&mut out);
         self.issue(&mut out, 0);
         self.save();
+        let st = self.driver.engine_stats();
+        tracing::info!(
+            instrument = %self.id,
+            photons = st.photons_in,
+            late = st.late,
+            stream_breaks = st.stream_breaks,
+            seq_gaps = st.seq_gaps,
+            dead_s = st.dead_ns as f64 / 1e9,
+            live_s = st.live_ns as f64 / 1e9,
+            "engine finished"
+        );
         if let Some(w) = self.recorder.take() {
             if let Err(e) = w.finish() {
                 tracing::warn!(instrument = %self.id, "recording not finished cleanly: {e}");
@@ -400,7 +482,10 @@ impl EngineThread {
         if out.is_empty() {
             return;
         }
-        let stamps = Stamps { received_unix_ns: received, decided_unix_ns: now_unix_ns() };
+        let stamps = Stamps {
+            received_unix_ns: received,
+            decided_unix_ns: now_unix_ns(),
+        };
         match self.desk.issue(&self.id, out, stamps) {
             Ok(alerts) => {
                 for a in alerts {
@@ -419,12 +504,16 @@ impl EngineThread {
         let blob = self.driver.save_state();
         match write_atomic(&self.state_file, &blob) {
             Ok(()) => tracing::debug!(instrument = %self.id, bytes = blob.len(), "engine state saved"),
-            Err(e) => tracing::warn!(instrument = %self.id, file = %self.state_file.display(), "cannot save engine state: {e}"),
+            Err(e) => {
+                tracing::warn!(instrument = %self.id, file = %self.state_file.display(), "cannot save engine state: {e}")
+            }
         }
     }
 
     fn record(&mut self, body: pb::producer_frame::Body, event_ns: i64) -> pb::producer_frame::Body {
-        let Some(w) = self.recorder.as_mut() else { return body };
+        let Some(w) = self.recorder.as_mut() else {
+            return body;
+        };
         let frame = pb::ProducerFrame { body: Some(body) };
         let result = match &frame.body {
             Some(pb::producer_frame::Body::Hello(_)) => w.set_header(frame.clone(), event_ns),
@@ -435,7 +524,9 @@ impl EngineThread {
             self.recorder = None;
         }
         // Cannot be None: it was set just above.
-        frame.body.unwrap_or(pb::producer_frame::Body::Status(pb::StreamStatus::default()))
+        frame
+            .body
+            .unwrap_or(pb::producer_frame::Body::Status(pb::StreamStatus::default()))
     }
 
     fn record_batch(&mut self, b: pb::PhotonBatch, event_ns: i64) -> pb::PhotonBatch {

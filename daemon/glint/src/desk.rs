@@ -80,7 +80,10 @@ pub(crate) struct Desk {
 
 impl std::fmt::Debug for Desk {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
-        f.debug_struct("Desk").field("journal_dir", &self.journal_dir).field("last_seq", &self.last_seq()).finish()
+        f.debug_struct("Desk")
+            .field("journal_dir", &self.journal_dir)
+            .field("last_seq", &self.last_seq())
+            .finish()
     }
 }
 
@@ -92,11 +95,19 @@ fn lock<T>(m: &Mutex<T>) -> std::sync::MutexGuard<'_, T> {
 impl Desk {
     /// Opens the journal in `dir` (cutting a torn tail, applying retention) and loads its newest alerts into
     /// the in-memory tail.
-    pub(crate) fn open(dir: &Path, cfg: &JournalConfig, metrics: Arc<Metrics>) -> Result<(Self, OpenReport), DeskError> {
+    pub(crate) fn open(
+        dir: &Path,
+        cfg: &JournalConfig,
+        metrics: Arc<Metrics>,
+    ) -> Result<(Self, OpenReport), DeskError> {
         let mut tail = VecDeque::with_capacity(TAIL_CAPACITY);
         let mut withdrawn = BTreeSet::new();
-        let (journal, report) =
-            Journal::open(dir, cfg.segment_bytes, cfg.retention, now_unix_ns(), &mut |rec: &journal::Record| {
+        let (journal, report) = Journal::open(
+            dir,
+            cfg.segment_bytes,
+            cfg.retention,
+            now_unix_ns(),
+            &mut |rec: &journal::Record| {
                 if !rec.alert.withdrawn_id.is_empty() {
                     withdrawn.insert(rec.alert.withdrawn_id.clone());
                 }
@@ -104,13 +115,19 @@ impl Desk {
                     tail.pop_front();
                 }
                 tail.push_back(Arc::new(rec.alert.clone()));
-            })?;
+            },
+        )?;
         // A torn tail was cut after its records were seen: keep only what the journal still holds.
         let last = journal.last_seq();
         tail.retain(|a: &Arc<pb::Alert>| a.seq <= last && a.seq >= journal.first_seq());
         let (published, _) = watch::channel(last);
         let desk = Self {
-            inner: Mutex::new(Inner { sequencer: Sequencer::starting_at(last + 1), journal, withdrawn, stopped: false }),
+            inner: Mutex::new(Inner {
+                sequencer: Sequencer::starting_at(last + 1),
+                journal,
+                withdrawn,
+                stopped: false,
+            }),
             tail: RwLock::new(tail),
             published,
             journal_dir: dir.to_path_buf(),
@@ -153,12 +170,19 @@ impl Desk {
 
     /// An operator's withdrawal of the alert `alert_id`: journalled and published like any alert. Runs file
     /// I/O: call it from a blocking thread.
-    pub(crate) fn withdraw(&self, alert_id: &str, reason: &str, operator: &str) -> Result<Arc<pb::Alert>, WithdrawError> {
+    pub(crate) fn withdraw(
+        &self,
+        alert_id: &str,
+        reason: &str,
+        operator: &str,
+    ) -> Result<Arc<pb::Alert>, WithdrawError> {
         let reason = reason.trim();
         if reason.is_empty() {
             return Err(WithdrawError::NoReason);
         }
-        let target = self.find(alert_id)?.ok_or_else(|| WithdrawError::NotFound(alert_id.to_string()))?;
+        let target = self
+            .find(alert_id)?
+            .ok_or_else(|| WithdrawError::NotFound(alert_id.to_string()))?;
         if target.kind == pb::AlertKind::Withdrawal as i32 {
             return Err(WithdrawError::IsWithdrawal(alert_id.to_string()));
         }
@@ -190,14 +214,20 @@ impl Desk {
         if g.stopped {
             return Err(DeskError::Stopped);
         }
-        let written = alerts.iter().try_for_each(|a| g.journal.append(a, now)).and_then(|()| g.journal.sync());
+        let written = alerts
+            .iter()
+            .try_for_each(|a| g.journal.append(a, now))
+            .and_then(|()| g.journal.sync());
         if let Err(e) = written {
             g.stopped = true;
             return Err(e.into());
         }
         let journaled = now_unix_ns();
         let mut out = Vec::with_capacity(alerts.len());
-        let mut tail = self.tail.write().unwrap_or_else(std::sync::PoisonError::into_inner);
+        let mut tail = self
+            .tail
+            .write()
+            .unwrap_or_else(std::sync::PoisonError::into_inner);
         for a in alerts.iter_mut() {
             if !a.withdrawn_id.is_empty() {
                 g.withdrawn.insert(a.withdrawn_id.clone());
@@ -209,8 +239,10 @@ impl Desk {
                     journaled_unix_ns: journaled,
                     ..Default::default()
                 });
-                self.metrics.record(Stage::Decide, stamps.received_unix_ns, stamps.decided_unix_ns);
-                self.metrics.record(Stage::Journal, stamps.decided_unix_ns, journaled);
+                self.metrics
+                    .record(Stage::Decide, stamps.received_unix_ns, stamps.decided_unix_ns);
+                self.metrics
+                    .record(Stage::Journal, stamps.decided_unix_ns, journaled);
             }
             self.metrics.count_alert(a.kind);
             let a = Arc::new(std::mem::take(a));
@@ -239,19 +271,32 @@ impl Desk {
         if after >= upto {
             return Some(Vec::new());
         }
-        let tail = self.tail.read().unwrap_or_else(std::sync::PoisonError::into_inner);
+        let tail = self
+            .tail
+            .read()
+            .unwrap_or_else(std::sync::PoisonError::into_inner);
         let front = tail.front()?.seq;
         if front > after + 1 {
             return None;
         }
         let skip = usize::try_from(after + 1 - front).unwrap_or(usize::MAX);
-        Some(tail.iter().skip(skip).take_while(|a| a.seq <= upto).take(max).cloned().collect())
+        Some(
+            tail.iter()
+                .skip(skip)
+                .take_while(|a| a.seq <= upto)
+                .take(max)
+                .cloned()
+                .collect(),
+        )
     }
 
     /// Like [`read_cached`](Self::read_cached) but from the journal files: blocking I/O.
     pub(crate) fn read_from_disk(&self, after: u64, max: usize) -> Result<Vec<Arc<pb::Alert>>, JournalError> {
         let upto = self.last_seq();
-        Ok(journal::read_after(&self.journal_dir, after, upto, max)?.into_iter().map(Arc::new).collect())
+        Ok(journal::read_after(&self.journal_dir, after, upto, max)?
+            .into_iter()
+            .map(Arc::new)
+            .collect())
     }
 
     /// The alert with this id, from memory or disk (blocking I/O).
@@ -276,7 +321,10 @@ pub(crate) mod tests {
     use std::time::Duration;
 
     pub(crate) fn journal_cfg() -> JournalConfig {
-        JournalConfig { segment_bytes: 1 << 20, retention: Duration::from_secs(86_400) }
+        JournalConfig {
+            segment_bytes: 1 << 20,
+            retention: Duration::from_secs(86_400),
+        }
     }
 
     /// Issues `n` made-up flash alerts straight through the commit path (no engine needed).
@@ -291,11 +339,18 @@ pub(crate) mod tests {
             a.withdrawn_id.clear();
             a.reason.clear();
             a.instrument = "ventisca-array".into();
-            a.trigger = Some(pb::Trigger { sigma: 4.0 + (seq % 5) as f64, end_gps_ns: 1_400_000_000_000_000_000, ..Default::default() });
+            a.trigger = Some(pb::Trigger {
+                sigma: 4.0 + (seq % 5) as f64,
+                end_gps_ns: 1_400_000_000_000_000_000,
+                ..Default::default()
+            });
             alerts::stamp(&mut a, seq, unix_ns_to_gps_ns(now));
             alerts.push(a);
         }
-        let stamps = Stamps { received_unix_ns, decided_unix_ns: received_unix_ns };
+        let stamps = Stamps {
+            received_unix_ns,
+            decided_unix_ns: received_unix_ns,
+        };
         desk.commit(&mut g, alerts, stamps, now).unwrap()
     }
 
@@ -316,23 +371,46 @@ pub(crate) mod tests {
         // Memory and disk agree.
         let mem = desk.read_cached(1, 10).unwrap();
         let disk = desk.read_from_disk(1, 10).unwrap();
-        assert_eq!(mem.iter().map(|a| a.id.clone()).collect::<Vec<_>>(), disk.iter().map(|a| a.id.clone()).collect::<Vec<_>>());
+        assert_eq!(
+            mem.iter().map(|a| a.id.clone()).collect::<Vec<_>>(),
+            disk.iter().map(|a| a.id.clone()).collect::<Vec<_>>()
+        );
         assert_eq!(mem.len(), 2);
         // Operator withdrawal by id, then a second one is refused.
         let id = got[1].id.clone();
-        let wd = desk.withdraw(&id, "cosmic-ray shower in the camera", "ops").unwrap();
-        assert_eq!((wd.seq, wd.withdrawn_id.as_str(), wd.kind), (4, id.as_str(), pb::AlertKind::Withdrawal as i32));
+        let wd = desk
+            .withdraw(&id, "cosmic-ray shower in the camera", "ops")
+            .unwrap();
+        assert_eq!(
+            (wd.seq, wd.withdrawn_id.as_str(), wd.kind),
+            (4, id.as_str(), pb::AlertKind::Withdrawal as i32)
+        );
         assert_eq!(wd.instrument, "ventisca-array");
-        assert!(matches!(desk.withdraw(&id, "again", "ops"), Err(WithdrawError::AlreadyWithdrawn(_))));
-        assert!(matches!(desk.withdraw(&wd.id, "x", "ops"), Err(WithdrawError::IsWithdrawal(_))));
-        assert!(matches!(desk.withdraw("GL-nope-1", "x", "ops"), Err(WithdrawError::NotFound(_))));
-        assert!(matches!(desk.withdraw(&got[0].id, "  ", "ops"), Err(WithdrawError::NoReason)));
+        assert!(matches!(
+            desk.withdraw(&id, "again", "ops"),
+            Err(WithdrawError::AlreadyWithdrawn(_))
+        ));
+        assert!(matches!(
+            desk.withdraw(&wd.id, "x", "ops"),
+            Err(WithdrawError::IsWithdrawal(_))
+        ));
+        assert!(matches!(
+            desk.withdraw("GL-nope-1", "x", "ops"),
+            Err(WithdrawError::NotFound(_))
+        ));
+        assert!(matches!(
+            desk.withdraw(&got[0].id, "  ", "ops"),
+            Err(WithdrawError::NoReason)
+        ));
         drop(desk);
         // Reopened: numbering continues, the tail is reloaded, the withdrawal is remembered.
         let (desk, rep) = Desk::open(tmp.path(), &journal_cfg(), m).unwrap();
         assert_eq!((desk.last_seq(), rep.records), (4, 4));
         assert_eq!(desk.read_cached(0, 10).unwrap().len(), 4);
-        assert!(matches!(desk.withdraw(&id, "again", "ops"), Err(WithdrawError::AlreadyWithdrawn(_))));
+        assert!(matches!(
+            desk.withdraw(&id, "again", "ops"),
+            Err(WithdrawError::AlreadyWithdrawn(_))
+        ));
         assert_eq!(issue_test_flashes(&desk, 1, 0)[0].seq, 5);
     }
 
@@ -344,8 +422,14 @@ pub(crate) mod tests {
         issue_test_flashes(&desk, n, 0);
         assert!(desk.read_cached(0, 5).is_none());
         let first = desk.read_from_disk(0, 5).unwrap();
-        assert_eq!(first.iter().map(|a| a.seq).collect::<Vec<_>>(), vec![1, 2, 3, 4, 5]);
+        assert_eq!(
+            first.iter().map(|a| a.seq).collect::<Vec<_>>(),
+            vec![1, 2, 3, 4, 5]
+        );
         let recent = desk.read_cached(n as u64 - 3, 100).unwrap();
-        assert_eq!(recent.iter().map(|a| a.seq).collect::<Vec<_>>(), vec![n as u64 - 2, n as u64 - 1, n as u64]);
+        assert_eq!(
+            recent.iter().map(|a| a.seq).collect::<Vec<_>>(),
+            vec![n as u64 - 2, n as u64 - 1, n as u64]
+        );
     }
 }

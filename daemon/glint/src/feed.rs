@@ -36,7 +36,9 @@ impl FromStr for Speed {
         }
         match s.trim_end_matches('x').parse::<f64>() {
             Ok(v) if v.is_finite() && v > 0.0 => Ok(Self::Times(v)),
-            _ => Err(format!("'{s}' is not a speed: give a factor > 0 (e.g. 1, 20, 0.5) or 'max'")),
+            _ => Err(format!(
+                "'{s}' is not a speed: give a factor > 0 (e.g. 1, 20, 0.5) or 'max'"
+            )),
         }
     }
 }
@@ -88,7 +90,11 @@ pub(crate) struct FeedReport {
 impl FeedReport {
     /// Photons per wall second.
     pub(crate) fn photons_per_s(&self) -> f64 {
-        if self.wall_s > 0.0 { self.photons as f64 / self.wall_s } else { 0.0 }
+        if self.wall_s > 0.0 {
+            self.photons as f64 / self.wall_s
+        } else {
+            0.0
+        }
     }
 }
 
@@ -145,14 +151,17 @@ where
     let mut pending = None;
     let mut instrument = target.instrument.clone();
     match rx.recv().await {
-        Some(Ok(pb::ProducerFrame { body: Some(producer_frame::Body::Hello(h)) })) => {
+        Some(Ok(pb::ProducerFrame {
+            body: Some(producer_frame::Body::Hello(h)),
+        })) => {
             instrument.get_or_insert(h.instrument);
         }
         Some(Ok(f)) => pending = Some(f),
         Some(Err(e)) => return Err(e),
         None => bail!("the recording holds no frame"),
     }
-    let instrument = instrument.ok_or_else(|| anyhow!("the recording has no Hello: name the instrument with --instrument"))?;
+    let instrument = instrument
+        .ok_or_else(|| anyhow!("the recording has no Hello: name the instrument with --instrument"))?;
     let io = tls::connect(&target.addr, target.tls.as_ref()).await?;
     let mut framed = Framed::new(io, IngestClientCodec::new(target.max_frame));
     let hello = pb::Hello {
@@ -161,7 +170,11 @@ where
         schema_version: glint_wire::SCHEMA_VERSION,
         producer: target.producer.clone(),
     };
-    framed.send(pb::ProducerFrame { body: Some(producer_frame::Body::Hello(hello)) }).await?;
+    framed
+        .send(pb::ProducerFrame {
+            body: Some(producer_frame::Body::Hello(hello)),
+        })
+        .await?;
     match tokio::time::timeout(Duration::from_secs(30), framed.next()).await {
         Err(_) => bail!("no reply to the Hello from {} within 30 s", target.addr),
         Ok(None) => bail!("{} closed the connection after the Hello", target.addr),
@@ -169,9 +182,17 @@ where
         Ok(Some(Ok(r))) => match r.body {
             Some(ingest_reply::Body::Welcome(_)) => {}
             Some(ingest_reply::Body::Refusal(r)) => {
-                bail!("{} refused {instrument}: {} ({})", target.addr, refusal_name(r.code), r.detail)
+                bail!(
+                    "{} refused {instrument}: {} ({})",
+                    target.addr,
+                    refusal_name(r.code),
+                    r.detail
+                )
             }
-            _ => bail!("{} answered the Hello with something other than Welcome", target.addr),
+            _ => bail!(
+                "{} answered the Hello with something other than Welcome",
+                target.addr
+            ),
         },
     }
     let (mut sink, mut replies) = framed.split();
@@ -240,7 +261,9 @@ where
         }
         last_seq = last_seq.max(seq_of(&frame));
         report.frames += 1;
-        sink.feed(frame).await.with_context(|| format!("sending to {}", target.addr))?;
+        sink.feed(frame)
+            .await
+            .with_context(|| format!("sending to {}", target.addr))?;
     }
     sink.flush().await?;
     let _ = reader.await;

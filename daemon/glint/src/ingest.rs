@@ -24,7 +24,7 @@ use crate::codec::{IngestServerCodec, ingest_refusal};
 use crate::config::Secret;
 use crate::driver::InstrumentDriver;
 use crate::metrics::Metrics;
-use crate::subscribers::{Watermarks, token_matches};
+use crate::subscribers::token_matches;
 use crate::timefmt::now_unix_ns;
 use crate::tls::{self, BoxIo};
 
@@ -61,8 +61,6 @@ pub(crate) struct Slot {
     pub(crate) reorder_tolerance_ns: i64,
     /// A batch this far ahead of the engine's event time is refused as a clock jump, ns.
     pub(crate) max_clock_jump_ns: i64,
-    /// Index into the watermarks.
-    pub(crate) index: usize,
     /// A producer is connected.
     busy: AtomicBool,
     /// Highest seq taken from this instrument (any connection).
@@ -77,7 +75,6 @@ impl Slot {
         tx: async_channel::Sender<EngineMsg>,
         reorder_tolerance_ns: i64,
         max_clock_jump_ns: i64,
-        index: usize,
     ) -> Self {
         Self {
             id,
@@ -85,7 +82,6 @@ impl Slot {
             tx,
             reorder_tolerance_ns,
             max_clock_jump_ns,
-            index,
             busy: AtomicBool::new(false),
             last_seq: AtomicU64::new(0),
         }
@@ -101,8 +97,6 @@ pub(crate) struct IngestShared {
     pub(crate) max_frame: usize,
     /// Ack after this many frames.
     pub(crate) ack_every: usize,
-    /// Engine event times (for the clock-jump check).
-    pub(crate) watermarks: Arc<Watermarks>,
     /// Counters.
     pub(crate) metrics: Arc<Metrics>,
 }
@@ -166,9 +160,19 @@ async fn reply(framed: &mut Conn, r: pb::IngestReply) -> bool {
     matches!(tokio::time::timeout(IO_TIMEOUT, framed.send(r)).await, Ok(Ok(())))
 }
 
-async fn refuse_and_close(framed: &mut Conn, metrics: &Metrics, code: pb::RefusalCode, detail: String, seq: u64) {
-    tracing::warn!(code = code.as_str_name(), seq, "refused, closing: {detail}");
-    metrics.refused_connections.fetch_add(1, Ordering::Relaxed);
+async fn refuse_and_close(
+    framed: &mut Conn,
+    metrics: &Metrics,
+    code: pb::RefusalCode,
+    detail: String,
+    seq: u64,
+) {
+    if code == pb::RefusalCode::ShuttingDown {
+        tracing::info!(seq, "closing: {detail}");
+    } else {
+        tracing::warn!(code = code.as_str_name(), seq, "refused, closing: {detail}");
+        metrics.refused_connections.fetch_add(1, Ordering::Relaxed);
+    }
     reply(framed, ingest_refusal(code, detail, seq)).await;
     let _ = tokio::time::timeout(IO_TIMEOUT, framed.close()).await;
 }
@@ -196,31 +200,61 @@ async fn handle(io: BoxIo, peer: SocketAddr, shared: &IngestShared, stop: &Cance
     let hello = match first {
         Err(_) => {
             let detail = format!("no Hello within {} s", IO_TIMEOUT.as_secs());
-            return refuse_and_close(&mut framed, metrics, pb::RefusalCode::ProtocolViolation, detail, 0).await;
+            return refuse_and_close(
+                &mut framed,
+                metrics,
+                pb::RefusalCode::ProtocolViolation,
+                detail,
+                0,
+            )
+            .await;
         }
         Ok(None) => return,
         Ok(Some(Err(e))) => {
             let code = e.refusal_code().unwrap_or(pb::RefusalCode::MalformedFrame);
             return refuse_and_close(&mut framed, metrics, code, e.to_string(), 0).await;
         }
-        Ok(Some(Ok(pb::ProducerFrame { body: Some(producer_frame::Body::Hello(h)) }))) => h,
+        Ok(Some(Ok(pb::ProducerFrame {
+            body: Some(producer_frame::Body::Hello(h)),
+        }))) => h,
         Ok(Some(Ok(_))) => {
             let detail = "the first frame must be a Hello".to_string();
-            return refuse_and_close(&mut framed, metrics, pb::RefusalCode::ProtocolViolation, detail, 0).await;
+            return refuse_and_close(
+                &mut framed,
+                metrics,
+                pb::RefusalCode::ProtocolViolation,
+                detail,
+                0,
+            )
+            .await;
         }
     };
     if let Err(e) = validate::validate_hello(&hello) {
         return refuse_and_close(&mut framed, metrics, e.refusal_code(), e.to_string(), 0).await;
     }
     let Some(slot) = shared.slots.iter().find(|s| s.id == hello.instrument) else {
-        let detail = format!("instrument '{}' is not configured in this daemon", hello.instrument);
-        return refuse_and_close(&mut framed, metrics, pb::RefusalCode::UnknownInstrument, detail, 0).await;
+        let detail = format!(
+            "instrument '{}' is not configured in this daemon",
+            hello.instrument
+        );
+        return refuse_and_close(
+            &mut framed,
+            metrics,
+            pb::RefusalCode::UnknownInstrument,
+            detail,
+            0,
+        )
+        .await;
     };
     if !token_matches(&hello.token, &slot.token) {
         let detail = format!("token not accepted for instrument '{}'", slot.id);
         return refuse_and_close(&mut framed, metrics, pb::RefusalCode::BadToken, detail, 0).await;
     }
-    if slot.busy.compare_exchange(false, true, Ordering::AcqRel, Ordering::Acquire).is_err() {
+    if slot
+        .busy
+        .compare_exchange(false, true, Ordering::AcqRel, Ordering::Acquire)
+        .is_err()
+    {
         let detail = format!("another producer is connected for instrument '{}'", slot.id);
         return refuse_and_close(&mut framed, metrics, pb::RefusalCode::InstrumentBusy, detail, 0).await;
     }
@@ -232,15 +266,35 @@ async fn handle(io: BoxIo, peer: SocketAddr, shared: &IngestShared, stop: &Cance
         max_frame_bytes: u32::try_from(shared.max_frame).unwrap_or(u32::MAX),
         last_seq: slot.last_seq.load(Ordering::Acquire),
     };
-    if !reply(&mut framed, pb::IngestReply { body: Some(ingest_reply::Body::Welcome(welcome)) }).await {
+    if !reply(
+        &mut framed,
+        pb::IngestReply {
+            body: Some(ingest_reply::Body::Welcome(welcome)),
+        },
+    )
+    .await
+    {
         return;
     }
     tracing::info!(instrument = %slot.id, producer = %hello.producer, "producer connected");
-    let redacted = pb::Hello { token: String::new(), ..hello };
+    let redacted = pb::Hello {
+        token: String::new(),
+        ..hello
+    };
     if slot.tx.send(EngineMsg::Hello(redacted)).await.is_err() {
         return;
     }
-    let mut conn = Connection { slot, shared, last_seq: 0, taken_seq: 0, acked_seq: 0, photons: 0, refused: 0, unacked: 0 };
+    let mut conn = Connection {
+        slot,
+        shared,
+        latest_ns: None,
+        last_seq: 0,
+        taken_seq: 0,
+        acked_seq: 0,
+        photons: 0,
+        refused: 0,
+        unacked: 0,
+    };
     let why = conn.stream(&mut framed, stop).await;
     // Whatever ended the stream, the time until the producer is back is dead time.
     let _ = slot.tx.send(EngineMsg::StreamBreak).await;
@@ -257,6 +311,8 @@ async fn handle(io: BoxIo, peer: SocketAddr, shared: &IngestShared, stop: &Cance
 struct Connection<'a> {
     slot: &'a Slot,
     shared: &'a IngestShared,
+    /// Latest photon time taken on this connection, GPS ns.
+    latest_ns: Option<i64>,
     /// Highest seq seen on this connection.
     last_seq: u64,
     /// Highest seq handed to the engine.
@@ -272,27 +328,44 @@ impl Connection<'_> {
         self.unacked = 0;
         self.acked_seq = self.taken_seq;
         pb::IngestReply {
-            body: Some(ingest_reply::Body::Ack(pb::Ack { seq: self.taken_seq, photons: self.photons, refused: self.refused })),
+            body: Some(ingest_reply::Body::Ack(pb::Ack {
+                seq: self.taken_seq,
+                photons: self.photons,
+                refused: self.refused,
+            })),
         }
     }
 
-    /// Checks the sequence number of a batch or status frame; `Err` closes the connection.
-    async fn check_seq(&mut self, seq: u64) -> Result<(), String> {
+    /// Checks the sequence number of a batch or status frame; `Err` closes the connection. A forward jump is
+    /// a gap the engine turns into dead time itself.
+    fn check_seq(&mut self, seq: u64) -> Result<(), String> {
         if seq <= self.last_seq {
-            return Err(format!("seq {seq} does not follow {} (sequence numbers must increase)", self.last_seq));
+            return Err(format!(
+                "seq {seq} does not follow {} (sequence numbers must increase)",
+                self.last_seq
+            ));
         }
         if self.last_seq != 0 && seq != self.last_seq + 1 {
             tracing::warn!(instrument = %self.slot.id, from = self.last_seq, to = seq, "sequence gap: dead time until this frame");
-            self.slot.tx.send(EngineMsg::StreamBreak).await.map_err(|_| "the engine has stopped".to_string())?;
         }
         self.last_seq = seq;
         Ok(())
     }
 
-    async fn warn(&mut self, framed: &mut Conn, code: pb::RefusalCode, detail: String, seq: u64, photons: u64) -> bool {
+    async fn warn(
+        &mut self,
+        framed: &mut Conn,
+        code: pb::RefusalCode,
+        detail: String,
+        seq: u64,
+        photons: u64,
+    ) -> bool {
         tracing::warn!(instrument = %self.slot.id, code = code.as_str_name(), seq, "frame refused: {detail}");
         self.refused += photons;
-        self.shared.metrics.refused_photons.fetch_add(photons, Ordering::Relaxed);
+        self.shared
+            .metrics
+            .refused_photons
+            .fetch_add(photons, Ordering::Relaxed);
         self.shared.metrics.refused_frames.fetch_add(1, Ordering::Relaxed);
         reply(framed, ingest_refusal(code, detail, seq)).await
     }
@@ -336,8 +409,15 @@ impl Connection<'_> {
             match frame.body {
                 Some(producer_frame::Body::Batch(b)) => {
                     let n = b.time_gps_ns.len() as u64;
-                    if let Err(detail) = self.check_seq(b.seq).await {
-                        refuse_and_close(framed, metrics, pb::RefusalCode::ProtocolViolation, detail.clone(), b.seq).await;
+                    if let Err(detail) = self.check_seq(b.seq) {
+                        refuse_and_close(
+                            framed,
+                            metrics,
+                            pb::RefusalCode::ProtocolViolation,
+                            detail.clone(),
+                            b.seq,
+                        )
+                        .await;
                         return detail;
                     }
                     if let Err(r) = InstrumentDriver::check_batch(&b, self.slot.reorder_tolerance_ns) {
@@ -346,17 +426,27 @@ impl Connection<'_> {
                         }
                         continue;
                     }
-                    let wm = self.shared.watermarks.get(self.slot.index);
-                    if let Some(t) = b.time_gps_ns.iter().copied().max().filter(|t| wm > 0 && t - wm > self.slot.max_clock_jump_ns) {
-                        let detail = format!(
-                            "photon time {t} is {:.1} s ahead of the stream's event time {wm}, more than the {:.0} s allowed",
-                            (t - wm) as f64 / 1e9,
-                            self.slot.max_clock_jump_ns as f64 / 1e9
-                        );
-                        if !self.warn(framed, pb::RefusalCode::ClockJump, detail, b.seq, n).await {
-                            return "warning not written".into();
+                    let newest = b.time_gps_ns.iter().copied().max();
+                    // Ahead of this connection's own stream by more than allowed: a clock jump. The first
+                    // batch of a connection is exempt (a producer may come back after a long outage).
+                    if let (Some(t), Some(latest)) = (newest, self.latest_ns) {
+                        if t - latest > self.slot.max_clock_jump_ns {
+                            let detail = format!(
+                                "photon time {t} is {:.1} s ahead of the stream's latest time {latest}, more than the {:.0} s allowed",
+                                (t - latest) as f64 / 1e9,
+                                self.slot.max_clock_jump_ns as f64 / 1e9
+                            );
+                            if !self
+                                .warn(framed, pb::RefusalCode::ClockJump, detail, b.seq, n)
+                                .await
+                            {
+                                return "warning not written".into();
+                            }
+                            continue;
                         }
-                        continue;
+                    }
+                    if let Some(t) = newest {
+                        self.latest_ns = Some(self.latest_ns.map_or(t, |l| l.max(t)));
                     }
                     let seq = b.seq;
                     // Waits while the engine's queue is full: the socket is not read meanwhile.
@@ -366,8 +456,15 @@ impl Connection<'_> {
                     self.taken(seq, n);
                 }
                 Some(producer_frame::Body::Status(s)) => {
-                    if let Err(detail) = self.check_seq(s.seq).await {
-                        refuse_and_close(framed, metrics, pb::RefusalCode::ProtocolViolation, detail.clone(), s.seq).await;
+                    if let Err(detail) = self.check_seq(s.seq) {
+                        refuse_and_close(
+                            framed,
+                            metrics,
+                            pb::RefusalCode::ProtocolViolation,
+                            detail.clone(),
+                            s.seq,
+                        )
+                        .await;
                         return detail;
                     }
                     if let Err(e) = validate::validate_status(&s) {
@@ -384,12 +481,26 @@ impl Connection<'_> {
                 }
                 Some(producer_frame::Body::Hello(_)) => {
                     let detail = "a second Hello on one connection".to_string();
-                    refuse_and_close(framed, metrics, pb::RefusalCode::ProtocolViolation, detail.clone(), 0).await;
+                    refuse_and_close(
+                        framed,
+                        metrics,
+                        pb::RefusalCode::ProtocolViolation,
+                        detail.clone(),
+                        0,
+                    )
+                    .await;
                     return detail;
                 }
                 None => {
                     let detail = "frame has no body".to_string();
-                    refuse_and_close(framed, metrics, pb::RefusalCode::MalformedFrame, detail.clone(), 0).await;
+                    refuse_and_close(
+                        framed,
+                        metrics,
+                        pb::RefusalCode::MalformedFrame,
+                        detail.clone(),
+                        0,
+                    )
+                    .await;
                     return detail;
                 }
             }

@@ -131,10 +131,16 @@ impl SegmentReader {
             }
         }
         if got < header.len() {
-            return Err(JournalError::BadHeader { path: path.to_path_buf(), detail: format!("only {got} bytes") });
+            return Err(JournalError::BadHeader {
+                path: path.to_path_buf(),
+                detail: format!("only {got} bytes"),
+            });
         }
         if header[..8] != MAGIC {
-            return Err(JournalError::BadHeader { path: path.to_path_buf(), detail: "magic is not GLINTJNL".into() });
+            return Err(JournalError::BadHeader {
+                path: path.to_path_buf(),
+                detail: "magic is not GLINTJNL".into(),
+            });
         }
         let version = u32::from_le_bytes([header[8], header[9], header[10], header[11]]);
         if version != FORMAT_VERSION {
@@ -143,13 +149,22 @@ impl SegmentReader {
                 detail: format!("format version {version}, this build reads {FORMAT_VERSION}"),
             });
         }
-        Ok(Self { path: path.to_path_buf(), file, offset: HEADER_LEN })
+        Ok(Self {
+            path: path.to_path_buf(),
+            file,
+            offset: HEADER_LEN,
+        })
     }
 
     /// The next record, or why there is none. I/O errors other than a short read are returned as errors.
     fn next(&mut self) -> Result<Result<Record, Stop>, JournalError> {
         let start = self.offset;
-        let bad = |reason: String| Ok(Err(Stop::Bad { offset: start, reason }));
+        let bad = |reason: String| {
+            Ok(Err(Stop::Bad {
+                offset: start,
+                reason,
+            }))
+        };
         let mut head = [0u8; RECORD_HEADER_LEN as usize];
         match read_full(&mut self.file, &mut head).map_err(io_err(&self.path, "read"))? {
             0 => return Ok(Err(Stop::End)),
@@ -178,7 +193,10 @@ impl SegmentReader {
             Err(e) => return bad(format!("record does not decode: {e}")),
         };
         self.offset = start + RECORD_HEADER_LEN + u64::from(len);
-        Ok(Ok(Record { written_unix_ns, alert }))
+        Ok(Ok(Record {
+            written_unix_ns,
+            alert,
+        }))
     }
 }
 
@@ -221,7 +239,9 @@ fn list_segments(dir: &Path) -> Result<Vec<(u64, PathBuf)>, JournalError> {
         let entry = entry.map_err(io_err(dir, "list"))?;
         let name = entry.file_name();
         let Some(name) = name.to_str() else { continue };
-        let first = name.strip_prefix(SEGMENT_PREFIX).and_then(|r| r.strip_suffix(SEGMENT_SUFFIX));
+        let first = name
+            .strip_prefix(SEGMENT_PREFIX)
+            .and_then(|r| r.strip_suffix(SEGMENT_SUFFIX));
         if let Some(first_seq) = first.and_then(|f| f.parse::<u64>().ok()) {
             out.push((first_seq, entry.path()));
         }
@@ -231,7 +251,9 @@ fn list_segments(dir: &Path) -> Result<Vec<(u64, PathBuf)>, JournalError> {
 }
 
 fn sync_dir(dir: &Path) -> Result<(), JournalError> {
-    File::open(dir).and_then(|d| d.sync_all()).map_err(io_err(dir, "sync directory"))
+    File::open(dir)
+        .and_then(|d| d.sync_all())
+        .map_err(io_err(dir, "sync directory"))
 }
 
 /// The writer side: owned by the alert desk, one per daemon.
@@ -281,7 +303,11 @@ impl Journal {
                         reason: format!("bad header ({detail})"),
                     });
                     write_header(&path)?;
-                    segments.push(Segment { first_seq, path, newest_unix_ns: 0 });
+                    segments.push(Segment {
+                        first_seq,
+                        path,
+                        newest_unix_ns: 0,
+                    });
                     continue;
                 }
                 Err(e) => return Err(e),
@@ -301,30 +327,51 @@ impl Journal {
             if let Stop::Bad { offset, reason } = stop {
                 if newest {
                     let len = fs::metadata(&path).map_err(io_err(&path, "stat"))?.len();
-                    let f = OpenOptions::new().write(true).open(&path).map_err(io_err(&path, "open"))?;
+                    let f = OpenOptions::new()
+                        .write(true)
+                        .open(&path)
+                        .map_err(io_err(&path, "open"))?;
                     f.set_len(offset).map_err(io_err(&path, "truncate"))?;
                     f.sync_all().map_err(io_err(&path, "sync"))?;
-                    report.torn = Some(TornTail { path: path.clone(), offset, bytes_cut: len - offset, reason });
+                    report.torn = Some(TornTail {
+                        path: path.clone(),
+                        offset,
+                        bytes_cut: len - offset,
+                        reason,
+                    });
                 } else {
-                    report.corrupt_older.push(format!("{} at offset {offset}: {reason}", path.display()));
+                    report
+                        .corrupt_older
+                        .push(format!("{} at offset {offset}: {reason}", path.display()));
                 }
             }
             if newest {
                 active_len = reader.offset;
             }
-            segments.push(Segment { first_seq, path, newest_unix_ns });
+            segments.push(Segment {
+                first_seq,
+                path,
+                newest_unix_ns,
+            });
         }
         // An empty newest segment still fixes where numbering continues.
         if let Some(s) = segments.last() {
             last_seq = last_seq.max(s.first_seq.saturating_sub(1));
         }
         let active = match segments.last() {
-            Some(s) => OpenOptions::new().append(true).open(&s.path).map_err(io_err(&s.path, "open"))?,
+            Some(s) => OpenOptions::new()
+                .append(true)
+                .open(&s.path)
+                .map_err(io_err(&s.path, "open"))?,
             None => {
                 let path = dir.join(segment_name(last_seq + 1));
                 let f = create_segment(&path)?;
                 sync_dir(dir)?;
-                segments.push(Segment { first_seq: last_seq + 1, path, newest_unix_ns: 0 });
+                segments.push(Segment {
+                    first_seq: last_seq + 1,
+                    path,
+                    newest_unix_ns: 0,
+                });
                 f
             }
         };
@@ -356,7 +403,10 @@ impl Journal {
     /// Appends one alert (its `seq` must be `last_seq + 1`). Not durable until [`sync`](Self::sync).
     pub(crate) fn append(&mut self, alert: &pb::Alert, now_unix_ns: i64) -> Result<(), JournalError> {
         if alert.seq != self.last_seq + 1 {
-            return Err(JournalError::OutOfSequence { expected: self.last_seq + 1, got: alert.seq });
+            return Err(JournalError::OutOfSequence {
+                expected: self.last_seq + 1,
+                got: alert.seq,
+            });
         }
         if self.active_len >= self.segment_bytes && self.active_len > HEADER_LEN {
             self.rotate(alert.seq, now_unix_ns)?;
@@ -393,7 +443,9 @@ impl Journal {
     }
 
     fn active_path(&self) -> &Path {
-        self.segments.last().map_or(self.dir.as_path(), |s| s.path.as_path())
+        self.segments
+            .last()
+            .map_or(self.dir.as_path(), |s| s.path.as_path())
     }
 
     fn rotate(&mut self, first_seq: u64, now_unix_ns: i64) -> Result<(), JournalError> {
@@ -402,7 +454,11 @@ impl Journal {
         self.active = create_segment(&path)?;
         sync_dir(&self.dir)?;
         self.active_len = HEADER_LEN;
-        self.segments.push(Segment { first_seq, path, newest_unix_ns: 0 });
+        self.segments.push(Segment {
+            first_seq,
+            path,
+            newest_unix_ns: 0,
+        });
         let deleted = self.apply_retention(now_unix_ns)?;
         for d in deleted {
             tracing::info!(segment = %d.display(), "journal: deleted segment past retention");
@@ -437,7 +493,11 @@ impl Journal {
 }
 
 fn write_header(path: &Path) -> Result<(), JournalError> {
-    let mut f = OpenOptions::new().write(true).truncate(true).open(path).map_err(io_err(path, "open"))?;
+    let mut f = OpenOptions::new()
+        .write(true)
+        .truncate(true)
+        .open(path)
+        .map_err(io_err(path, "open"))?;
     let mut header = Vec::with_capacity(HEADER_LEN as usize);
     header.extend_from_slice(&MAGIC);
     header.extend_from_slice(&FORMAT_VERSION.to_le_bytes());
@@ -446,7 +506,11 @@ fn write_header(path: &Path) -> Result<(), JournalError> {
 }
 
 fn create_segment(path: &Path) -> Result<File, JournalError> {
-    let mut f = OpenOptions::new().create_new(true).append(true).open(path).map_err(io_err(path, "create"))?;
+    let mut f = OpenOptions::new()
+        .create_new(true)
+        .append(true)
+        .open(path)
+        .map_err(io_err(path, "create"))?;
     let mut header = Vec::with_capacity(HEADER_LEN as usize);
     header.extend_from_slice(&MAGIC);
     header.extend_from_slice(&FORMAT_VERSION.to_le_bytes());
@@ -458,14 +522,22 @@ fn create_segment(path: &Path) -> Result<File, JournalError> {
 /// Reads up to `max` alerts with `after < seq <= upto`, oldest first, from the segments in `dir`. Used by
 /// subscribers resuming from older than the desk's in-memory tail; runs on a blocking thread. A corrupt
 /// record ends the read of its segment (logged) and reading goes on with the next segment.
-pub(crate) fn read_after(dir: &Path, after: u64, upto: u64, max: usize) -> Result<Vec<pb::Alert>, JournalError> {
+pub(crate) fn read_after(
+    dir: &Path,
+    after: u64,
+    upto: u64,
+    max: usize,
+) -> Result<Vec<pb::Alert>, JournalError> {
     let mut out = Vec::new();
     if after >= upto || max == 0 {
         return Ok(out);
     }
     let segments = list_segments(dir)?;
     // The last segment whose first seq is <= after + 1 holds the first record wanted.
-    let start = segments.iter().rposition(|(first, _)| *first <= after + 1).unwrap_or(0);
+    let start = segments
+        .iter()
+        .rposition(|(first, _)| *first <= after + 1)
+        .unwrap_or(0);
     for (_, path) in &segments[start..] {
         let mut reader = match SegmentReader::open(path) {
             Ok(r) => r,
@@ -503,7 +575,9 @@ pub(crate) fn read_after(dir: &Path, after: u64, upto: u64, max: usize) -> Resul
 
 /// Reads the one alert with sequence number `seq`, if the journal still holds it.
 pub(crate) fn read_one(dir: &Path, seq: u64) -> Result<Option<pb::Alert>, JournalError> {
-    Ok(read_after(dir, seq.saturating_sub(1), seq, 1)?.into_iter().find(|a| a.seq == seq))
+    Ok(read_after(dir, seq.saturating_sub(1), seq, 1)?
+        .into_iter()
+        .find(|a| a.seq == seq))
 }
 
 /// Bytes of the record for `alert` (header included), for tests and size planning.
@@ -529,7 +603,11 @@ mod tests {
             id: format!("GL-test-{seq}"),
             kind: pb::AlertKind::Flash as i32,
             instrument: "ventisca-array".into(),
-            trigger: Some(pb::Trigger { counts: seq * 3, sigma: 5.5, ..Default::default() }),
+            trigger: Some(pb::Trigger {
+                counts: seq * 3,
+                sigma: 5.5,
+                ..Default::default()
+            }),
             ..Default::default()
         }
     }
@@ -552,7 +630,10 @@ mod tests {
         }
         j.sync().unwrap();
         let err = j.append(&alert(9), 10).unwrap_err();
-        assert!(matches!(err, JournalError::OutOfSequence { expected: 6, got: 9 }), "{err}");
+        assert!(
+            matches!(err, JournalError::OutOfSequence { expected: 6, got: 9 }),
+            "{err}"
+        );
         drop(j);
         let (j, rep) = open(tmp.path(), 1 << 20, 20);
         assert_eq!((j.last_seq(), rep.records), (5, 5));
@@ -611,7 +692,10 @@ mod tests {
             let (j, rep) = open(tmp.path(), 1 << 20, 20);
             assert_eq!(j.last_seq(), 1, "cut at {cut}");
             let torn = rep.torn.unwrap_or_else(|| panic!("cut at {cut} not reported"));
-            assert_eq!((torn.offset, torn.bytes_cut), (first_end as u64, (cut - first_end) as u64));
+            assert_eq!(
+                (torn.offset, torn.bytes_cut),
+                (first_end as u64, (cut - first_end) as u64)
+            );
         }
         // A cut exactly at a record boundary is no tear at all.
         fs::write(&path, &full[..first_end]).unwrap();
@@ -629,9 +713,16 @@ mod tests {
             j.append(&alert(s), 10).unwrap();
             j.sync().unwrap();
         }
-        let names: Vec<u64> = list_segments(tmp.path()).unwrap().into_iter().map(|(f, _)| f).collect();
+        let names: Vec<u64> = list_segments(tmp.path())
+            .unwrap()
+            .into_iter()
+            .map(|(f, _)| f)
+            .collect();
         assert_eq!(names, vec![1, 4, 7, 10]);
-        assert_eq!(seqs(&read_after(tmp.path(), 2, 10, 100).unwrap()), (3..=10).collect::<Vec<_>>());
+        assert_eq!(
+            seqs(&read_after(tmp.path(), 2, 10, 100).unwrap()),
+            (3..=10).collect::<Vec<_>>()
+        );
         assert_eq!(seqs(&read_after(tmp.path(), 6, 8, 100).unwrap()), vec![7, 8]);
         drop(j);
         let (j, rep) = open(tmp.path(), HEADER_LEN + 3 * per, 20);
@@ -655,14 +746,25 @@ mod tests {
         // Rotation on day 3 applies a one-day retention: the two day-0 segments go, day 2 stays.
         j.append(&alert(7), 3 * DAY_NS).unwrap();
         j.sync().unwrap();
-        let names: Vec<u64> = list_segments(tmp.path()).unwrap().into_iter().map(|(f, _)| f).collect();
+        let names: Vec<u64> = list_segments(tmp.path())
+            .unwrap()
+            .into_iter()
+            .map(|(f, _)| f)
+            .collect();
         assert_eq!(names, vec![5, 7]);
         assert_eq!(j.first_seq(), 5);
         // Reading from before the oldest kept record starts at the oldest kept.
         assert_eq!(seqs(&read_after(tmp.path(), 0, 7, 100).unwrap()), vec![5, 6, 7]);
         drop(j);
         // Years later, a reopen keeps only the newest segment, and numbering continues.
-        let (mut j, rep) = Journal::open(tmp.path(), seg, Duration::from_secs(86_400), 400 * DAY_NS, &mut |_| {}).unwrap();
+        let (mut j, rep) = Journal::open(
+            tmp.path(),
+            seg,
+            Duration::from_secs(86_400),
+            400 * DAY_NS,
+            &mut |_| {},
+        )
+        .unwrap();
         assert_eq!(rep.deleted.len(), 1);
         assert_eq!((j.last_seq(), j.first_seq()), (7, 7));
         j.append(&alert(8), 400 * DAY_NS).unwrap();
@@ -675,7 +777,10 @@ mod tests {
         fs::write(tmp.path().join(segment_name(5)), b"").unwrap();
         let err = Journal::open(tmp.path(), 1 << 20, Duration::from_secs(60), 0, &mut |_| {}).unwrap_err();
         let text = err.to_string();
-        assert!(text.contains(&segment_name(1)) && text.contains("magic"), "{text}");
+        assert!(
+            text.contains(&segment_name(1)) && text.contains("magic"),
+            "{text}"
+        );
     }
 
     #[test]

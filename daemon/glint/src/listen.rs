@@ -63,7 +63,8 @@ pub(crate) struct ListenArgs {
 
 /// Reads a token file: its content with surrounding whitespace removed; an empty file is an error.
 pub(crate) fn read_token(path: &Path) -> anyhow::Result<String> {
-    let t = std::fs::read_to_string(path).with_context(|| format!("cannot read token file {}", path.display()))?;
+    let t = std::fs::read_to_string(path)
+        .with_context(|| format!("cannot read token file {}", path.display()))?;
     let t = t.trim();
     if t.is_empty() {
         bail!("token file {} is empty", path.display());
@@ -108,12 +109,24 @@ pub(crate) enum ListenEnd {
 
 /// Subscribes and hands every new alert (seq above the last one seen) to `on_alert`, reconnecting with
 /// backoff when the connection drops (and after a closing heartbeat when `reconnect`). A refusal is final.
-pub(crate) async fn listen_loop(opts: &ListenOptions, reconnect: bool, on_alert: &mut OnAlert<'_>) -> anyhow::Result<ListenEnd> {
+pub(crate) async fn listen_loop(
+    opts: &ListenOptions,
+    reconnect: bool,
+    on_alert: &mut OnAlert<'_>,
+) -> anyhow::Result<ListenEnd> {
     let mut last_seen = opts.resume_after;
     let mut first = true;
     let mut backoff = Duration::from_millis(200);
     loop {
-        match session(opts, last_seen, first && opts.replay_all && last_seen == 0, &mut last_seen, on_alert).await {
+        match session(
+            opts,
+            last_seen,
+            first && opts.replay_all && last_seen == 0,
+            &mut last_seen,
+            on_alert,
+        )
+        .await
+        {
             Ok(SessionEnd::Done) => return Ok(ListenEnd::Done),
             Ok(SessionEnd::Closed) if !reconnect => return Ok(ListenEnd::DaemonClosed),
             Ok(SessionEnd::Closed) => {
@@ -125,7 +138,10 @@ pub(crate) async fn listen_loop(opts: &ListenOptions, reconnect: bool, on_alert:
                 if welcomed {
                     backoff = Duration::from_millis(200);
                 }
-                eprintln!("glint listen: {e:#}; reconnecting in {:.1} s", backoff.as_secs_f64());
+                eprintln!(
+                    "glint listen: {e:#}; reconnecting in {:.1} s",
+                    backoff.as_secs_f64()
+                );
             }
         }
         first = false;
@@ -166,7 +182,9 @@ async fn session(
         replay_all,
     };
     framed
-        .send(pb::SubscriberRequest { body: Some(subscriber_request::Body::Subscribe(sub)) })
+        .send(pb::SubscriberRequest {
+            body: Some(subscriber_request::Body::Subscribe(sub)),
+        })
         .await
         .map_err(|e| lost(anyhow!("sending subscribe to {}: {e}", opts.addr)))?;
     let mut welcomed = false;
@@ -174,9 +192,24 @@ async fn session(
     let silence = Duration::from_secs(120);
     loop {
         let frame = match tokio::time::timeout(silence, framed.next()).await {
-            Err(_) => return Err(SessionError::Lost(anyhow!("no frame from {} for {} s", opts.addr, silence.as_secs()), welcomed)),
-            Ok(None) => return Err(SessionError::Lost(anyhow!("{} closed the connection", opts.addr), welcomed)),
-            Ok(Some(Err(e))) => return Err(SessionError::Lost(anyhow!("reading from {}: {e}", opts.addr), welcomed)),
+            Err(_) => {
+                return Err(SessionError::Lost(
+                    anyhow!("no frame from {} for {} s", opts.addr, silence.as_secs()),
+                    welcomed,
+                ));
+            }
+            Ok(None) => {
+                return Err(SessionError::Lost(
+                    anyhow!("{} closed the connection", opts.addr),
+                    welcomed,
+                ));
+            }
+            Ok(Some(Err(e))) => {
+                return Err(SessionError::Lost(
+                    anyhow!("reading from {}: {e}", opts.addr),
+                    welcomed,
+                ));
+            }
             Ok(Some(Ok(f))) => f,
         };
         match frame.body {
@@ -185,7 +218,12 @@ async fn session(
                 tracing::debug!(server = %w.server, last_seq = w.last_seq, "welcomed");
             }
             Some(subscriber_frame::Body::Refusal(r)) => {
-                return Err(SessionError::Refused(anyhow!("{} refused: {} ({})", opts.addr, refusal_name(r.code), r.detail)));
+                return Err(SessionError::Refused(anyhow!(
+                    "{} refused: {} ({})",
+                    opts.addr,
+                    refusal_name(r.code),
+                    r.detail
+                )));
             }
             Some(subscriber_frame::Body::Heartbeat(h)) => {
                 if h.closing {
@@ -213,13 +251,20 @@ fn parse_kinds(names: &[String]) -> anyhow::Result<Vec<pb::AlertKind>> {
     names
         .iter()
         .filter(|n| !n.trim().is_empty())
-        .map(|n| alerts::parse_kind(n).ok_or_else(|| anyhow!("unknown alert kind '{n}' (flash, assessment, withdrawal, heartbeat, test)")))
+        .map(|n| {
+            alerts::parse_kind(n).ok_or_else(|| {
+                anyhow!("unknown alert kind '{n}' (flash, assessment, withdrawal, heartbeat, test)")
+            })
+        })
         .collect()
 }
 
 fn read_state(path: &Path) -> anyhow::Result<u64> {
     match std::fs::read_to_string(path) {
-        Ok(t) => t.trim().parse().with_context(|| format!("state file {} does not hold a sequence number", path.display())),
+        Ok(t) => t
+            .trim()
+            .parse()
+            .with_context(|| format!("state file {} does not hold a sequence number", path.display())),
         Err(e) if e.kind() == std::io::ErrorKind::NotFound => Ok(0),
         Err(e) => Err(e).with_context(|| format!("cannot read state file {}", path.display())),
     }
@@ -229,8 +274,11 @@ fn read_state(path: &Path) -> anyhow::Result<u64> {
 fn write_state(path: &Path, seq: u64) -> anyhow::Result<()> {
     let tmp = path.with_extension("tmp");
     let mut f = std::fs::File::create(&tmp).with_context(|| format!("cannot write {}", tmp.display()))?;
-    writeln!(f, "{seq}").and_then(|()| f.sync_all()).with_context(|| format!("cannot write {}", tmp.display()))?;
-    std::fs::rename(&tmp, path).with_context(|| format!("cannot rename {} to {}", tmp.display(), path.display()))
+    writeln!(f, "{seq}")
+        .and_then(|()| f.sync_all())
+        .with_context(|| format!("cannot write {}", tmp.display()))?;
+    std::fs::rename(&tmp, path)
+        .with_context(|| format!("cannot rename {} to {}", tmp.display(), path.display()))
 }
 
 fn run_exec(cmd: &str, json: &str) -> anyhow::Result<()> {
@@ -242,7 +290,9 @@ fn run_exec(cmd: &str, json: &str) -> anyhow::Result<()> {
         .with_context(|| format!("cannot run '{cmd}'"))?;
     if let Some(mut stdin) = child.stdin.take() {
         // A command that does not read its input is fine.
-        let _ = stdin.write_all(json.as_bytes()).and_then(|()| stdin.write_all(b"\n"));
+        let _ = stdin
+            .write_all(json.as_bytes())
+            .and_then(|()| stdin.write_all(b"\n"));
     }
     let status = child.wait().with_context(|| format!("waiting for '{cmd}'"))?;
     if !status.success() {
@@ -275,7 +325,10 @@ pub(crate) fn run(args: ListenArgs) -> anyhow::Result<ExitCode> {
         tls,
         max_frame: glint_wire::DEFAULT_MAX_FRAME_BYTES.max(64 << 20),
     };
-    let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().context("cannot start the runtime")?;
+    let rt = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .context("cannot start the runtime")?;
     let mut count = 0u64;
     let max = args.max_alerts;
     let mut on_alert = |a: &pb::Alert| -> anyhow::Result<bool> {
@@ -301,7 +354,8 @@ pub(crate) fn run(args: ListenArgs) -> anyhow::Result<ExitCode> {
     let result = rt.block_on(async {
         match args.timeout_s {
             Some(t) => {
-                let d = Duration::try_from_secs_f64(t).map_err(|_| anyhow!("--timeout-s {t} is not a duration"))?;
+                let d = Duration::try_from_secs_f64(t)
+                    .map_err(|_| anyhow!("--timeout-s {t} is not a duration"))?;
                 match tokio::time::timeout(d, fut).await {
                     Ok(r) => r.map(Some),
                     Err(_) => Ok(None),
@@ -313,7 +367,10 @@ pub(crate) fn run(args: ListenArgs) -> anyhow::Result<ExitCode> {
     match result? {
         Some(_) => Ok(ExitCode::SUCCESS),
         None => match max {
-            Some(m) => Err(anyhow!("timed out after {} s with {count} of {m} alerts", args.timeout_s.unwrap_or(0.0))),
+            Some(m) => Err(anyhow!(
+                "timed out after {} s with {count} of {m} alerts",
+                args.timeout_s.unwrap_or(0.0)
+            )),
             None => Ok(ExitCode::SUCCESS),
         },
     }

@@ -10,6 +10,7 @@ mod cli;
 mod codec;
 mod config;
 mod daemon;
+mod demo;
 mod desk;
 mod driver;
 mod feed;

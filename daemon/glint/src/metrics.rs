@@ -98,7 +98,9 @@ impl Metrics {
     pub(crate) fn new() -> Self {
         let hists = Stage::ALL
             .iter()
-            .map(|_| Histogram::new_with_bounds(1, MAX_TRACKED_NS, 3).expect("constant histogram bounds are valid"))
+            .map(|_| {
+                Histogram::new_with_bounds(1, MAX_TRACKED_NS, 3).expect("constant histogram bounds are valid")
+            })
             .collect();
         Self {
             hists: Mutex::new(hists),
@@ -119,7 +121,9 @@ impl Metrics {
         if from_unix_ns <= 0 || to_unix_ns < from_unix_ns {
             return;
         }
-        let ns = u64::try_from(to_unix_ns - from_unix_ns).unwrap_or(0).clamp(1, MAX_TRACKED_NS);
+        let ns = u64::try_from(to_unix_ns - from_unix_ns)
+            .unwrap_or(0)
+            .clamp(1, MAX_TRACKED_NS);
         if let Ok(mut h) = self.hists.lock() {
             // Cannot fail: the value was clamped into the tracked range.
             let _ = h[stage.index()].record(ns);
@@ -140,7 +144,13 @@ impl Metrics {
                     max_ms: ms(h.max()),
                 }
             }
-            Err(_) => Percentiles { count: 0, p50_ms: 0.0, p99_ms: 0.0, p999_ms: 0.0, max_ms: 0.0 },
+            Err(_) => Percentiles {
+                count: 0,
+                p50_ms: 0.0,
+                p99_ms: 0.0,
+                p999_ms: 0.0,
+                max_ms: 0.0,
+            },
         }
     }
 
@@ -160,22 +170,57 @@ impl Metrics {
         let mut s = String::new();
         let get = |a: &AtomicU64| a.load(Ordering::Relaxed);
         let counters = [
-            ("glint_photons_total", "Photons taken into engine queues.", get(&self.photons)),
-            ("glint_refused_photons_total", "Photons in refused batches.", get(&self.refused_photons)),
-            ("glint_refused_frames_total", "Producer frames refused.", get(&self.refused_frames)),
-            ("glint_refused_connections_total", "Producer connections refused at Hello.", get(&self.refused_connections)),
-            ("glint_subscribers_dropped_total", "Subscribers dropped for an unwritable socket.", get(&self.subscribers_dropped)),
+            (
+                "glint_photons_total",
+                "Photons taken into engine queues.",
+                get(&self.photons),
+            ),
+            (
+                "glint_refused_photons_total",
+                "Photons in refused batches.",
+                get(&self.refused_photons),
+            ),
+            (
+                "glint_refused_frames_total",
+                "Producer frames refused.",
+                get(&self.refused_frames),
+            ),
+            (
+                "glint_refused_connections_total",
+                "Producer connections refused at Hello.",
+                get(&self.refused_connections),
+            ),
+            (
+                "glint_subscribers_dropped_total",
+                "Subscribers dropped for an unwritable socket.",
+                get(&self.subscribers_dropped),
+            ),
         ];
         for (name, help, v) in counters {
             let _ = writeln!(s, "# HELP {name} {help}\n# TYPE {name} counter\n{name} {v}");
         }
-        let _ = writeln!(s, "# HELP glint_alerts_total Alerts issued, by kind.\n# TYPE glint_alerts_total counter");
+        let _ = writeln!(
+            s,
+            "# HELP glint_alerts_total Alerts issued, by kind.\n# TYPE glint_alerts_total counter"
+        );
         for (i, kind) in ["flash", "assessment", "withdrawal"].iter().enumerate() {
-            let _ = writeln!(s, "glint_alerts_total{{kind=\"{kind}\"}} {}", get(&self.alerts[i]));
+            let _ = writeln!(
+                s,
+                "glint_alerts_total{{kind=\"{kind}\"}} {}",
+                get(&self.alerts[i])
+            );
         }
         for (name, help, v) in [
-            ("glint_producers", "Producers connected.", self.producers.load(Ordering::Relaxed)),
-            ("glint_subscribers", "Subscribers connected.", self.subscribers.load(Ordering::Relaxed)),
+            (
+                "glint_producers",
+                "Producers connected.",
+                self.producers.load(Ordering::Relaxed),
+            ),
+            (
+                "glint_subscribers",
+                "Subscribers connected.",
+                self.subscribers.load(Ordering::Relaxed),
+            ),
         ] {
             let _ = writeln!(s, "# HELP {name} {help}\n# TYPE {name} gauge\n{name} {v}");
         }
@@ -186,8 +231,17 @@ impl Metrics {
         for stage in Stage::ALL {
             let p = self.percentiles(stage);
             let name = stage.name();
-            for (q, v) in [("0.5", p.p50_ms), ("0.99", p.p99_ms), ("0.999", p.p999_ms), ("1", p.max_ms)] {
-                let _ = writeln!(s, "glint_latency_seconds{{stage=\"{name}\",quantile=\"{q}\"}} {}", v / 1e3);
+            for (q, v) in [
+                ("0.5", p.p50_ms),
+                ("0.99", p.p99_ms),
+                ("0.999", p.p999_ms),
+                ("1", p.max_ms),
+            ] {
+                let _ = writeln!(
+                    s,
+                    "glint_latency_seconds{{stage=\"{name}\",quantile=\"{q}\"}} {}",
+                    v / 1e3
+                );
             }
             let _ = writeln!(s, "glint_latency_seconds_count{{stage=\"{name}\"}} {}", p.count);
         }
@@ -244,7 +298,13 @@ mod tests {
         assert!((p.max_ms - 1.0).abs() < 0.002, "{p:?}");
         m.count_alert(glint_wire::pb::AlertKind::Assessment as i32);
         let text = m.prometheus_text();
-        assert!(text.contains("glint_alerts_total{kind=\"assessment\"} 1"), "{text}");
-        assert!(text.contains("glint_latency_seconds_count{stage=\"end_to_end\"} 1000"), "{text}");
+        assert!(
+            text.contains("glint_alerts_total{kind=\"assessment\"} 1"),
+            "{text}"
+        );
+        assert!(
+            text.contains("glint_latency_seconds_count{stage=\"end_to_end\"} 1000"),
+            "{text}"
+        );
     }
 }

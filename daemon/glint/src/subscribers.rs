@@ -63,7 +63,10 @@ impl Watermarks {
     }
 
     fn snapshot(&self) -> (Vec<String>, Vec<i64>) {
-        (self.names.clone(), self.values.iter().map(|v| v.load(Ordering::Relaxed)).collect())
+        (
+            self.names.clone(),
+            self.values.iter().map(|v| v.load(Ordering::Relaxed)).collect(),
+        )
     }
 }
 
@@ -128,9 +131,14 @@ pub(crate) async fn serve(
                 };
                 let mut framed = Framed::new(io, SubscriberServerCodec::new(hub.max_frame));
                 let Some(_permit) = permit else {
-                    let detail = format!("subscriber limit of {} connections reached", hub.cfg.max_connections);
+                    let detail = format!(
+                        "subscriber limit of {} connections reached",
+                        hub.cfg.max_connections
+                    );
                     tracing::warn!("refused: {detail}");
-                    let _ = framed.send(subscriber_refusal(pb::RefusalCode::BadRequest, detail)).await;
+                    let _ = framed
+                        .send(subscriber_refusal(pb::RefusalCode::BadRequest, detail))
+                        .await;
                     return;
                 };
                 if let Err(e) = handle(framed, peer, &hub).await {
@@ -166,21 +174,39 @@ async fn handle(mut framed: Conn, peer: SocketAddr, hub: &Hub) -> anyhow::Result
     match req.body {
         Some(subscriber_request::Body::Subscribe(s)) => subscribe(framed, peer, s, hub).await,
         Some(subscriber_request::Body::Withdraw(w)) => withdraw(framed, w, hub).await,
-        None => refuse(&mut framed, pb::RefusalCode::ProtocolViolation, "request has no body".into()).await,
+        None => {
+            refuse(
+                &mut framed,
+                pb::RefusalCode::ProtocolViolation,
+                "request has no body".into(),
+            )
+            .await
+        }
     }
 }
 
 async fn withdraw(mut framed: Conn, w: pb::WithdrawRequest, hub: &Hub) -> anyhow::Result<()> {
-    let allowed = hub.cfg.operator_token.as_ref().is_some_and(|t| token_matches(&w.token, t));
+    let allowed = hub
+        .cfg
+        .operator_token
+        .as_ref()
+        .is_some_and(|t| token_matches(&w.token, t));
     if !allowed {
-        return refuse(&mut framed, pb::RefusalCode::BadToken, "withdrawals need the operator token".into()).await;
+        return refuse(
+            &mut framed,
+            pb::RefusalCode::BadToken,
+            "withdrawals need the operator token".into(),
+        )
+        .await;
     }
     let desk = hub.desk.clone();
     let (id, reason, operator) = (w.alert_id.clone(), w.reason.clone(), w.operator.clone());
     let result = tokio::task::spawn_blocking(move || desk.withdraw(&id, &reason, &operator)).await?;
     match result {
         Ok(alert) => {
-            let frame = pb::SubscriberFrame { body: Some(subscriber_frame::Body::Alert((*alert).clone())) };
+            let frame = pb::SubscriberFrame {
+                body: Some(subscriber_frame::Body::Alert((*alert).clone())),
+            };
             tokio::time::timeout(REQUEST_TIMEOUT, framed.send(frame)).await??;
             Ok(())
         }
@@ -207,10 +233,23 @@ impl Filter {
 
 async fn subscribe(mut framed: Conn, peer: SocketAddr, s: pb::Subscribe, hub: &Hub) -> anyhow::Result<()> {
     // Every token is compared, so the time taken does not tell which one came close.
-    let mut ok = hub.cfg.tokens.iter().fold(false, |acc, t| acc | token_matches(&s.token, t));
-    ok |= hub.cfg.operator_token.as_ref().is_some_and(|t| token_matches(&s.token, t));
+    let mut ok = hub
+        .cfg
+        .tokens
+        .iter()
+        .fold(false, |acc, t| acc | token_matches(&s.token, t));
+    ok |= hub
+        .cfg
+        .operator_token
+        .as_ref()
+        .is_some_and(|t| token_matches(&s.token, t));
     if !ok {
-        return refuse(&mut framed, pb::RefusalCode::BadToken, "subscriber token not accepted".into()).await;
+        return refuse(
+            &mut framed,
+            pb::RefusalCode::BadToken,
+            "subscriber token not accepted".into(),
+        )
+        .await;
     }
     if s.schema_version > glint_wire::SCHEMA_VERSION {
         let detail = format!(
@@ -222,11 +261,19 @@ async fn subscribe(mut framed: Conn, peer: SocketAddr, s: pb::Subscribe, hub: &H
     }
     let last = hub.desk.last_seq();
     if s.resume_after > last {
-        let detail = format!("resume_after {} is newer than the newest alert in the journal ({last})", s.resume_after);
+        let detail = format!(
+            "resume_after {} is newer than the newest alert in the journal ({last})",
+            s.resume_after
+        );
         return refuse(&mut framed, pb::RefusalCode::BadRequest, detail).await;
     }
     if !s.min_sigma.is_finite() || s.min_sigma < 0.0 {
-        return refuse(&mut framed, pb::RefusalCode::BadRequest, format!("min_sigma {} must be >= 0", s.min_sigma)).await;
+        return refuse(
+            &mut framed,
+            pb::RefusalCode::BadRequest,
+            format!("min_sigma {} must be >= 0", s.min_sigma),
+        )
+        .await;
     }
     let welcome = pb::Welcome {
         schema_version: glint_wire::SCHEMA_VERSION,
@@ -235,10 +282,19 @@ async fn subscribe(mut framed: Conn, peer: SocketAddr, s: pb::Subscribe, hub: &H
         last_seq: last,
     };
     let t = hub.cfg.unwritable_timeout;
-    tokio::time::timeout(t, framed.send(pb::SubscriberFrame { body: Some(subscriber_frame::Body::Welcome(welcome)) }))
-        .await
-        .map_err(|_| anyhow::anyhow!("welcome not written within {} s", t.as_secs_f64()))??;
-    let client = if s.client.is_empty() { peer.to_string() } else { s.client.clone() };
+    tokio::time::timeout(
+        t,
+        framed.send(pb::SubscriberFrame {
+            body: Some(subscriber_frame::Body::Welcome(welcome)),
+        }),
+    )
+    .await
+    .map_err(|_| anyhow::anyhow!("welcome not written within {} s", t.as_secs_f64()))??;
+    let client = if s.client.is_empty() {
+        peer.to_string()
+    } else {
+        s.client.clone()
+    };
     let mut cursor = if s.resume_after > 0 {
         s.resume_after
     } else if s.replay_all {
@@ -248,7 +304,10 @@ async fn subscribe(mut framed: Conn, peer: SocketAddr, s: pb::Subscribe, hub: &H
     };
     tracing::info!(client = %client, resume_after = cursor, kinds = ?s.kinds, min_sigma = s.min_sigma, "subscribed");
     hub.metrics.subscribers.fetch_add(1, Ordering::Relaxed);
-    let filter = Filter { kinds: s.kinds.clone(), min_sigma: s.min_sigma };
+    let filter = Filter {
+        kinds: s.kinds.clone(),
+        min_sigma: s.min_sigma,
+    };
     let result = stream_alerts(framed, &client, &mut cursor, last, &filter, hub).await;
     hub.metrics.subscribers.fetch_sub(1, Ordering::Relaxed);
     match &result {
@@ -293,7 +352,12 @@ async fn stream_alerts(
             };
             let Some(newest) = chunk.last().map(|a| a.seq) else {
                 // Nothing readable although the journal is ahead (deleted by retention or corrupt): skip on.
-                tracing::warn!(client, from = *cursor, "alerts after seq {} are no longer in the journal", *cursor);
+                tracing::warn!(
+                    client,
+                    from = *cursor,
+                    "alerts after seq {} are no longer in the journal",
+                    *cursor
+                );
                 *cursor = hub.desk.last_seq();
                 break;
             };
@@ -308,14 +372,22 @@ async fn stream_alerts(
                             live.push((l.received_unix_ns, l.journaled_unix_ns));
                         }
                     }
-                    sink.feed(pb::SubscriberFrame { body: Some(subscriber_frame::Body::Alert(a)) }).await?;
+                    sink.feed(pb::SubscriberFrame {
+                        body: Some(subscriber_frame::Body::Alert(a)),
+                    })
+                    .await?;
                 }
                 sink.flush().await
             };
             match tokio::time::timeout(timeout, sent).await {
                 Err(_) => {
                     hub.metrics.subscribers_dropped.fetch_add(1, Ordering::Relaxed);
-                    tracing::warn!(client, last_seq_sent = *cursor, "dropping subscriber: socket unwritable for {:.1} s", timeout.as_secs_f64());
+                    tracing::warn!(
+                        client,
+                        last_seq_sent = *cursor,
+                        "dropping subscriber: socket unwritable for {:.1} s",
+                        timeout.as_secs_f64()
+                    );
                     return Err(StreamEnd::Unwritable(timeout).into());
                 }
                 Ok(r) => r?,
@@ -361,12 +433,23 @@ async fn send_heartbeat(
     timeout: Duration,
 ) -> anyhow::Result<()> {
     let (instruments, watermark_gps_ns) = hub.watermarks.snapshot();
-    let hb = pb::Heartbeat { unix_ns: now_unix_ns(), last_seq: hub.desk.last_seq(), instruments, watermark_gps_ns, closing };
-    let frame = pb::SubscriberFrame { body: Some(subscriber_frame::Body::Heartbeat(hb)) };
+    let hb = pb::Heartbeat {
+        unix_ns: now_unix_ns(),
+        last_seq: hub.desk.last_seq(),
+        instruments,
+        watermark_gps_ns,
+        closing,
+    };
+    let frame = pb::SubscriberFrame {
+        body: Some(subscriber_frame::Body::Heartbeat(hb)),
+    };
     match tokio::time::timeout(timeout, sink.send(frame)).await {
         Err(_) => {
             hub.metrics.subscribers_dropped.fetch_add(1, Ordering::Relaxed);
-            tracing::warn!("dropping subscriber: socket unwritable for {:.1} s", timeout.as_secs_f64());
+            tracing::warn!(
+                "dropping subscriber: socket unwritable for {:.1} s",
+                timeout.as_secs_f64()
+            );
             Err(StreamEnd::Unwritable(timeout).into())
         }
         Ok(r) => Ok(r?),
@@ -381,15 +464,24 @@ mod tests {
     fn filter_by_kind_and_sigma_lets_withdrawals_through() {
         let alert = |kind: pb::AlertKind, sigma: f64| pb::Alert {
             kind: kind as i32,
-            trigger: Some(pb::Trigger { sigma, ..Default::default() }),
+            trigger: Some(pb::Trigger {
+                sigma,
+                ..Default::default()
+            }),
             ..Default::default()
         };
-        let f = Filter { kinds: vec![pb::AlertKind::Flash as i32, pb::AlertKind::Withdrawal as i32], min_sigma: 5.0 };
+        let f = Filter {
+            kinds: vec![pb::AlertKind::Flash as i32, pb::AlertKind::Withdrawal as i32],
+            min_sigma: 5.0,
+        };
         assert!(f.wants(&alert(pb::AlertKind::Flash, 5.0)));
         assert!(!f.wants(&alert(pb::AlertKind::Flash, 4.9)));
         assert!(!f.wants(&alert(pb::AlertKind::Assessment, 9.0)));
         assert!(f.wants(&alert(pb::AlertKind::Withdrawal, 1.0)));
-        let all = Filter { kinds: vec![], min_sigma: 0.0 };
+        let all = Filter {
+            kinds: vec![],
+            min_sigma: 0.0,
+        };
         assert!(all.wants(&pb::Alert::default()));
     }
 

@@ -48,7 +48,13 @@ pub(crate) fn acceptor(cfg: &TlsConfig) -> anyhow::Result<TlsAcceptor> {
     let server = ServerConfig::builder()
         .with_no_client_auth()
         .with_single_cert(certs, key)
-        .with_context(|| format!("certificate {} and key {} do not form a usable pair", cfg.cert.display(), cfg.key.display()))?;
+        .with_context(|| {
+            format!(
+                "certificate {} and key {} do not form a usable pair",
+                cfg.cert.display(),
+                cfg.key.display()
+            )
+        })?;
     Ok(TlsAcceptor::from(Arc::new(server)))
 }
 
@@ -84,26 +90,44 @@ impl ClientTls {
     pub(crate) fn from_ca_file(ca: &Path) -> anyhow::Result<Self> {
         let mut roots = RootCertStore::empty();
         for c in read_certs(ca)? {
-            roots.add(c).with_context(|| format!("certificate in {} is not a usable trust anchor", ca.display()))?;
+            roots
+                .add(c)
+                .with_context(|| format!("certificate in {} is not a usable trust anchor", ca.display()))?;
         }
-        let cfg = ClientConfig::builder().with_root_certificates(roots).with_no_client_auth();
-        Ok(Self { connector: TlsConnector::from(Arc::new(cfg)) })
+        let cfg = ClientConfig::builder()
+            .with_root_certificates(roots)
+            .with_no_client_auth();
+        Ok(Self {
+            connector: TlsConnector::from(Arc::new(cfg)),
+        })
     }
 }
 
 /// Connects to `addr` (`HOST:PORT`), in TLS when `tls` is given (the host part is the name checked against
 /// the certificate).
 pub(crate) async fn connect(addr: &str, tls: Option<&ClientTls>) -> anyhow::Result<BoxIo> {
-    let tcp = TcpStream::connect(addr).await.with_context(|| format!("cannot connect to {addr}"))?;
+    let tcp = TcpStream::connect(addr)
+        .await
+        .with_context(|| format!("cannot connect to {addr}"))?;
     tcp.set_nodelay(true).context("set TCP_NODELAY")?;
     match tls {
         None => Ok(Box::new(tcp)),
         Some(t) => {
-            let host = addr.rsplit_once(':').map_or(addr, |(h, _)| h).trim_start_matches('[').trim_end_matches(']');
-            let name = ServerName::try_from(host.to_string()).with_context(|| format!("'{host}' is not a server name"))?;
+            let host = addr
+                .rsplit_once(':')
+                .map_or(addr, |(h, _)| h)
+                .trim_start_matches('[')
+                .trim_end_matches(']');
+            let name = ServerName::try_from(host.to_string())
+                .with_context(|| format!("'{host}' is not a server name"))?;
             let stream = tokio::time::timeout(HANDSHAKE_TIMEOUT, t.connector.connect(name, tcp))
                 .await
-                .map_err(|_| anyhow!("TLS handshake with {addr} took longer than {} s", HANDSHAKE_TIMEOUT.as_secs()))?
+                .map_err(|_| {
+                    anyhow!(
+                        "TLS handshake with {addr} took longer than {} s",
+                        HANDSHAKE_TIMEOUT.as_secs()
+                    )
+                })?
                 .with_context(|| format!("TLS handshake with {addr}"))?;
             Ok(Box::new(stream))
         }
@@ -123,7 +147,11 @@ mod tests {
         let key = tmp.path().join("key.pem");
         std::fs::write(&cert, ck.cert.pem()).unwrap();
         std::fs::write(&key, ck.signing_key.serialize_pem()).unwrap();
-        let acc = acceptor(&TlsConfig { cert: cert.clone(), key }).unwrap();
+        let acc = acceptor(&TlsConfig {
+            cert: cert.clone(),
+            key,
+        })
+        .unwrap();
         let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
         let port = listener.local_addr().unwrap().port();
         let server = tokio::spawn(async move {

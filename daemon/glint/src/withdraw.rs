@@ -44,23 +44,50 @@ pub(crate) fn run(args: WithdrawArgs) -> anyhow::Result<ExitCode> {
     }
     let token = read_token(&args.token_file)?;
     let tls = args.tls_ca.as_deref().map(ClientTls::from_ca_file).transpose()?;
-    let operator = args.operator.clone().or_else(|| std::env::var("USER").ok()).unwrap_or_default();
-    let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().context("cannot start the runtime")?;
+    let operator = args
+        .operator
+        .clone()
+        .or_else(|| std::env::var("USER").ok())
+        .unwrap_or_default();
+    let rt = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .context("cannot start the runtime")?;
     let alert = rt.block_on(async {
         let io = tls::connect(&args.from, tls.as_ref()).await?;
-        let mut framed = Framed::new(io, SubscriberClientCodec::new(glint_wire::DEFAULT_MAX_FRAME_BYTES.max(64 << 20)));
-        let req = pb::WithdrawRequest { token, alert_id: args.id.clone(), reason: args.reason.clone(), operator };
-        framed.send(pb::SubscriberRequest { body: Some(subscriber_request::Body::Withdraw(req)) }).await?;
+        let mut framed = Framed::new(
+            io,
+            SubscriberClientCodec::new(glint_wire::DEFAULT_MAX_FRAME_BYTES.max(64 << 20)),
+        );
+        let req = pb::WithdrawRequest {
+            token,
+            alert_id: args.id.clone(),
+            reason: args.reason.clone(),
+            operator,
+        };
+        framed
+            .send(pb::SubscriberRequest {
+                body: Some(subscriber_request::Body::Withdraw(req)),
+            })
+            .await?;
         let reply = tokio::time::timeout(Duration::from_secs(30), framed.next())
             .await
             .map_err(|_| anyhow!("no reply from {} within 30 s", args.from))?
             .ok_or_else(|| anyhow!("{} closed the connection without a reply", args.from))??;
         match reply.body {
             Some(subscriber_frame::Body::Alert(a)) => Ok(a),
-            Some(subscriber_frame::Body::Refusal(r)) => Err(anyhow!("{} refused: {} ({})", args.from, refusal_name(r.code), r.detail)),
+            Some(subscriber_frame::Body::Refusal(r)) => Err(anyhow!(
+                "{} refused: {} ({})",
+                args.from,
+                refusal_name(r.code),
+                r.detail
+            )),
             _ => Err(anyhow!("{} sent an unexpected reply", args.from)),
         }
     })?;
-    println!("withdrew {} with {} (seq {})", alert.withdrawn_id, alert.id, alert.seq);
+    println!(
+        "withdrew {} with {} (seq {})",
+        alert.withdrawn_id, alert.id, alert.seq
+    );
     Ok(ExitCode::SUCCESS)
 }

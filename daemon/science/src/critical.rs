@@ -213,6 +213,7 @@ impl CriticalTable {
 }
 
 #[cfg(test)]
+#[allow(clippy::unwrap_used)] // tests may unwrap
 mod tests {
     use super::*;
 

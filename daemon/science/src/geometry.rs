@@ -46,6 +46,7 @@ pub fn error_radius90_deg(psf_sigma_deg: f64, n: u64, systematic_deg: f64) -> f6
 }
 
 #[cfg(test)]
+#[allow(clippy::unwrap_used)] // tests may unwrap
 mod tests {
     use super::*;
 

@@ -28,7 +28,7 @@ pub const GEV_J: f64 = 1.602_176_634e-10;
 /// Stefan-Boltzmann constant, W m^-2 K^-4 (CODATA 2018).
 pub const SIGMA_SB: f64 = 5.670_374_419e-8;
 /// One parsec in metres (IAU 2015).
-pub const PARSEC_M: f64 = 3.085_677_581_491_367_3e16;
+pub const PARSEC_M: f64 = 3.085_677_581_491_367e16;
 /// The Julian year in seconds, the year of every "per year" in glint.
 pub const YEAR_S: f64 = 365.25 * 86_400.0;
 /// One solar mass in grams (IAU 2015 nominal G M_sun over CODATA G).
@@ -168,7 +168,7 @@ const SPECIES: [Species; 13] = [
 /// minutes before the end): the burst functions below use 15.35 itself, as the burst-search papers do. `M = 0` gives
 /// 15.35; a negative or NaN mass is outside the fit and gives 1.023 (the checked functions reject it).
 pub fn f_of_mass(mass_g: f64) -> f64 {
-    if !(mass_g > 0.0) {
+    if mass_g.is_nan() || mass_g <= 0.0 {
         return if mass_g == 0.0 {
             F_ALL_SPECIES
         } else {
@@ -303,7 +303,8 @@ pub fn photon_energy_j(tau_s: f64) -> Result<f64, ScienceError> {
 /// `4.5e35 T1^-1.5 tau^-1/2 E^-1.5` below `T1 tau^(-1/3)`, zero above. Zero for `tau <= 0`, `E <= 0` or
 /// NaN arguments.
 pub fn joint_density(tau_s: f64, e_gev: f64) -> f64 {
-    if !(tau_s > 0.0 && e_gev > 0.0) || !tau_s.is_finite() || !e_gev.is_finite() {
+    let ok = |x: f64| x.is_finite() && x > 0.0;
+    if !ok(tau_s) || !ok(e_gev) {
         return 0.0;
     }
     if e_gev >= SPECTRUM_T1_GEV / tau_s.cbrt() {
@@ -451,6 +452,7 @@ pub fn detected_counts_weighted(
 }
 
 #[cfg(test)]
+#[allow(clippy::unwrap_used)] // tests may unwrap
 mod tests {
     use super::*;
     use crate::instrument::spec::{AreaTable, CurveTable, ResponseSpec};

@@ -175,6 +175,7 @@ pub fn sharp_reach_volume_pc3(solid_angle_sr: f64, reach_pc: f64) -> Result<f64,
 }
 
 #[cfg(test)]
+#[allow(clippy::unwrap_used)] // tests may unwrap
 mod tests {
     use super::*;
 

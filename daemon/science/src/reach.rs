@@ -273,14 +273,14 @@ pub fn reach_report(
         volume += weight * 2.0 * std::f64::consts::PI * theta.sin() * best;
     }
     let effective_volume_pc3 = volume * h / 3.0;
-    let rate_density_ul_99_per_pc3_yr = if effective_volume_pc3 > 0.0 {
-        rate_density_upper_limit(gehrels_upper(0, 0.99)?, effective_volume_pc3, 1.0)?
-    } else {
+    if effective_volume_pc3 <= 0.0 {
         return Err(ScienceError::OutOfRange {
             what: "effective volume",
             detail: "the instrument detects no burst photons anywhere in its field of view".into(),
         });
-    };
+    }
+    let rate_density_ul_99_per_pc3_yr =
+        rate_density_upper_limit(gehrels_upper(0, 0.99)?, effective_volume_pc3, 1.0)?;
     Ok(ReachReport {
         instrument: id.to_string(),
         far_per_year: far,

@@ -3,6 +3,8 @@
 //! where it is accurate, and the invented demo instruments of `deploy/instruments/`, which must load, pass
 //! their checks and reach the distances of the trade.
 
+#![allow(clippy::unwrap_used)] // tests may unwrap
+
 use std::path::PathBuf;
 
 use glint_science::instrument::{InstrumentResponse, InstrumentSpec};

@@ -61,20 +61,33 @@ impl ZenithShape {
         if cos_power == 0.0 {
             Self { k: 0.0, low: c }
         } else {
-            Self { k: cos_power, low: c.max(0.0).powf(cos_power + 1.0) }
+            Self {
+                k: cos_power,
+                low: c.max(0.0).powf(cos_power + 1.0),
+            }
         }
     }
 
-    /// A zenith angle in degrees with density per steradian proportional to the shape: `cos z` is drawn
+    /// The cosine of a zenith angle with density per steradian proportional to the shape: `cos z` is drawn
     /// from `u^k du`, whose distribution function inverts in closed form.
-    pub fn draw<R: Rng + ?Sized>(&self, rng: &mut R) -> f64 {
+    pub fn draw_cos<R: Rng + ?Sized>(&self, rng: &mut R) -> f64 {
         let u = rng.random::<f64>();
+        let x = self.low + u * (1.0 - self.low);
         let cos_z = if self.k == 0.0 {
-            self.low + u * (1.0 - self.low)
+            x
+        } else if self.k == 1.0 {
+            x.sqrt()
+        } else if self.k == 2.0 {
+            x.cbrt()
         } else {
-            (self.low + u * (1.0 - self.low)).powf(1.0 / (self.k + 1.0))
+            x.powf(1.0 / (self.k + 1.0))
         };
-        cos_z.clamp(-1.0, 1.0).acos().to_degrees()
+        cos_z.clamp(-1.0, 1.0)
+    }
+
+    /// A zenith angle in degrees drawn as in [`ZenithShape::draw_cos`].
+    pub fn draw<R: Rng + ?Sized>(&self, rng: &mut R) -> f64 {
+        self.draw_cos(rng).acos().to_degrees()
     }
 }
 
@@ -113,7 +126,11 @@ impl AfterglowCurve {
         let y_end = 1.0 + duration_s / rise_s;
         let g = 1.0 - decay_index;
         // integral_0^D (1 + t/r)^-a dt = r integral_1^Y y^-a dy
-        let tail = if g.abs() < 1e-12 { rise_s * y_end.ln() } else { rise_s * (y_end.powf(g) - 1.0) / g };
+        let tail = if g.abs() < 1e-12 {
+            rise_s * y_end.ln()
+        } else {
+            rise_s * (y_end.powf(g) - 1.0) / g
+        };
         let rise = 0.5 * rise_s;
         Self {
             rise_s,
@@ -180,7 +197,12 @@ pub struct EvaporationSampler {
 impl EvaporationSampler {
     /// The sampler for a burst at `distance_pc` whose photons are drawn over the last `tau_max_s` seconds,
     /// seen by `resp`; `area_zenith_rows_deg` are the zenith rows of its area table (`effective_area.zenith_deg`).
-    pub fn new(resp: &InstrumentResponse, area_zenith_rows_deg: &[f64], distance_pc: f64, tau_max_s: f64) -> Self {
+    pub fn new(
+        resp: &InstrumentResponse,
+        area_zenith_rows_deg: &[f64],
+        distance_pc: f64,
+        tau_max_s: f64,
+    ) -> Self {
         let t1 = SPECTRUM_T1_GEV;
         // 0.5 N0 T1^-1.5: the joint density's constant.
         let k = 0.5 * SPECTRUM_NORM * t1.powf(-1.5);
@@ -188,8 +210,12 @@ impl EvaporationSampler {
         let dilution = 1.0 / (4.0 * std::f64::consts::PI * d_m * d_m);
         let (e_lo, e_hi) = (resp.energy_min_gev(), resp.energy_max_gev());
         let t_max = t1 / tau_max_s.cbrt();
-        let mut cuts: Vec<f64> =
-            resp.energy_nodes_gev().into_iter().chain(std::iter::once(t_max)).filter(|&e| e > e_lo && e < e_hi).collect();
+        let mut cuts: Vec<f64> = resp
+            .energy_nodes_gev()
+            .into_iter()
+            .chain(std::iter::once(t_max))
+            .filter(|&e| e > e_lo && e < e_hi)
+            .collect();
         cuts.push(e_lo);
         cuts.push(e_hi);
         cuts.sort_by(f64::total_cmp);
@@ -197,8 +223,12 @@ impl EvaporationSampler {
         // The area is linear in zenith between rows and held outside them, so its maximum over the field
         // is at a row inside the field or at an edge of the field.
         let zmax = resp.max_zenith_deg();
-        let zeniths: Vec<f64> =
-            area_zenith_rows_deg.iter().copied().filter(|&z| (0.0..=zmax).contains(&z)).chain([0.0, zmax]).collect();
+        let zeniths: Vec<f64> = area_zenith_rows_deg
+            .iter()
+            .copied()
+            .filter(|&z| (0.0..=zmax).contains(&z))
+            .chain([0.0, zmax])
+            .collect();
         let mut segments = Vec::with_capacity(cuts.len());
         let mut cumulative = Vec::with_capacity(cuts.len());
         let mut total = 0.0;
@@ -210,13 +240,26 @@ impl EvaporationSampler {
                 .fold(0.0, f64::max);
             // tau-integrated marginal: 2 k sqrt(tau_max) E^-1.5 below T(tau_max), 2 k T1^1.5 E^-3 above.
             let below = hi <= t_max;
-            let (coeff, index) = if below { (2.0 * k * tau_max_s.sqrt(), 1.5) } else { (2.0 * k * t1.powf(1.5), 3.0) };
+            let (coeff, index) = if below {
+                (2.0 * k * tau_max_s.sqrt(), 1.5)
+            } else {
+                (2.0 * k * t1.powf(1.5), 3.0)
+            };
             let integral = coeff * (lo.powf(1.0 - index) - hi.powf(1.0 - index)) / (index - 1.0);
             total += integral * area_max_m2 * dilution;
-            segments.push(Segment { lo, hi, index, area_max_m2 });
+            segments.push(Segment {
+                lo,
+                hi,
+                index,
+                area_max_m2,
+            });
             cumulative.push(total);
         }
-        Self { tau_max_s, segments, cumulative }
+        Self {
+            tau_max_s,
+            segments,
+            cumulative,
+        }
     }
 
     /// Expected number of proposals (an upper bound on the expected detected photons).
@@ -233,7 +276,10 @@ impl EvaporationSampler {
         let mut out = Vec::new();
         for _ in 0..n {
             let x = rng.random::<f64>() * total;
-            let j = self.cumulative.partition_point(|&c| c <= x).min(self.segments.len().saturating_sub(1));
+            let j = self
+                .cumulative
+                .partition_point(|&c| c <= x)
+                .min(self.segments.len().saturating_sub(1));
             let Some(seg) = self.segments.get(j) else { break };
             let e = power_law(rng, seg.index, seg.lo, seg.hi);
             let tau_up = self.tau_max_s.min((SPECTRUM_T1_GEV / e).powi(3));

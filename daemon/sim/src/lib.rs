@@ -58,5 +58,9 @@ pub enum SimError {
 }
 
 fn list(problems: &[Problem]) -> String {
-    problems.iter().map(|p| format!("  {p}")).collect::<Vec<_>>().join("\n")
+    problems
+        .iter()
+        .map(|p| format!("  {p}"))
+        .collect::<Vec<_>>()
+        .join("\n")
 }

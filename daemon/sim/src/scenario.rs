@@ -335,8 +335,15 @@ struct Problems<'a> {
 
 impl Problems<'_> {
     fn add(&mut self, key: &str, message: impl Into<String>) {
-        let key = if key.is_empty() { self.prefix.clone() } else { format!("{}.{key}", self.prefix) };
-        self.out.push(Problem { key, message: message.into() });
+        let key = if key.is_empty() {
+            self.prefix.clone()
+        } else {
+            format!("{}.{key}", self.prefix)
+        };
+        self.out.push(Problem {
+            key,
+            message: message.into(),
+        });
     }
 
     /// `lo < v <= hi` (or `lo <= v` when `lo_inclusive`), finite.
@@ -368,12 +375,18 @@ impl Problems<'_> {
                 start_gps_ns
             }
             (None, None) => {
-                self.add("t_offset_s", "missing: give t_offset_s (seconds after start_utc) or t_utc");
+                self.add(
+                    "t_offset_s",
+                    "missing: give t_offset_s (seconds after start_utc) or t_utc",
+                );
                 start_gps_ns
             }
             (Some(off), None) => {
                 if !(off.is_finite() && off.abs() <= MAX_OFFSET_S) {
-                    self.add("t_offset_s", format!("{off} is outside [-{MAX_OFFSET_S}, {MAX_OFFSET_S}]"));
+                    self.add(
+                        "t_offset_s",
+                        format!("{off} is outside [-{MAX_OFFSET_S}, {MAX_OFFSET_S}]"),
+                    );
                     return start_gps_ns;
                 }
                 start_gps_ns + seconds_to_ns(off)
@@ -396,27 +409,41 @@ pub(crate) fn seconds_to_ns(s: f64) -> i64 {
 
 /// Reads and checks a scenario file. A `spec_file` in its `[instrument]` is read relative to the file.
 pub fn load_scenario(path: &Path) -> Result<Scenario, SimError> {
-    let text = std::fs::read_to_string(path).map_err(|source| SimError::Io { path: path.to_path_buf(), source })?;
+    let text = std::fs::read_to_string(path).map_err(|source| SimError::Io {
+        path: path.to_path_buf(),
+        source,
+    })?;
     let base = path.parent().unwrap_or_else(|| Path::new("."));
-    let name = path.file_stem().map_or_else(|| path.display().to_string(), |s| s.to_string_lossy().into_owned());
+    let name = path.file_stem().map_or_else(
+        || path.display().to_string(),
+        |s| s.to_string_lossy().into_owned(),
+    );
     parse_scenario(&text, base, &name)
 }
 
 /// Checks a scenario given as TOML text; `base_dir` resolves a relative `spec_file`, `name` names the
 /// scenario in errors (and is its name when `[scenario] name` is absent).
 pub fn parse_scenario(text: &str, base_dir: &Path, name: &str) -> Result<Scenario, SimError> {
-    let raw: RawFile = toml::from_str(text)
-        .map_err(|e| SimError::Toml { what: format!("scenario {name}"), message: e.to_string() })?;
+    let raw: RawFile = toml::from_str(text).map_err(|e| SimError::Toml {
+        what: format!("scenario {name}"),
+        message: e.to_string(),
+    })?;
     let mut problems = Vec::new();
 
     let header = match raw.scenario.try_into::<RawHeader>() {
         Ok(h) => Some(h),
         Err(e) => {
-            problems.push(Problem { key: "scenario".into(), message: e.message().to_string() });
+            problems.push(Problem {
+                key: "scenario".into(),
+                message: e.message().to_string(),
+            });
             None
         }
     };
-    let mut p = Problems { prefix: "scenario".into(), out: &mut problems };
+    let mut p = Problems {
+        prefix: "scenario".into(),
+        out: &mut problems,
+    };
     let (mut start, mut duration_ns) = (0_i64, 1_i64);
     let mut header_out = None;
     if let Some(h) = header {
@@ -466,7 +493,10 @@ pub fn parse_scenario(text: &str, base_dir: &Path, name: &str) -> Result<Scenari
             instrument,
             sources,
         }),
-        _ => Err(SimError::Invalid { scenario: name.to_string(), problems }),
+        _ => Err(SimError::Invalid {
+            scenario: name.to_string(),
+            problems,
+        }),
     }
 }
 
@@ -478,17 +508,27 @@ fn table_into<T: for<'de> Deserialize<'de>>(
     match table.try_into::<T>() {
         Ok(v) => Some(v),
         Err(e) => {
-            problems.push(Problem { key: key.to_string(), message: e.message().to_string() });
+            problems.push(Problem {
+                key: key.to_string(),
+                message: e.message().to_string(),
+            });
             None
         }
     }
 }
 
-fn check_instrument(table: toml::Table, base_dir: &Path, problems: &mut Vec<Problem>) -> Option<ScenarioInstrument> {
+fn check_instrument(
+    table: toml::Table,
+    base_dir: &Path,
+    problems: &mut Vec<Problem>,
+) -> Option<ScenarioInstrument> {
     let raw: RawInstrument = table_into(table, "instrument", problems)?;
     let before = problems.len();
     if raw.id.trim().is_empty() {
-        problems.push(Problem { key: "instrument.id".into(), message: "is empty".into() });
+        problems.push(Problem {
+            key: "instrument.id".into(),
+            message: "is empty".into(),
+        });
     }
     let (mut site, mut response, mut background) = (None, None, None);
     let before_file = problems.len();
@@ -498,18 +538,26 @@ fn check_instrument(table: toml::Table, base_dir: &Path, problems: &mut Vec<Prob
         match std::fs::read_to_string(&path) {
             Ok(text) => match toml::from_str::<toml::Table>(&text) {
                 Ok(mut t) => {
-                    (site, response, background) = (t.remove("site"), t.remove("response"), t.remove("background"));
+                    (site, response, background) =
+                        (t.remove("site"), t.remove("response"), t.remove("background"));
                     for other in t.keys() {
                         problems.push(Problem {
                             key: format!("{key}.{other}"),
-                            message: "unknown key: an instrument file holds [site], [response] and [background]"
-                                .into(),
+                            message:
+                                "unknown key: an instrument file holds [site], [response] and [background]"
+                                    .into(),
                         });
                     }
                 }
-                Err(e) => problems.push(Problem { key, message: e.to_string() }),
+                Err(e) => problems.push(Problem {
+                    key,
+                    message: e.to_string(),
+                }),
             },
-            Err(e) => problems.push(Problem { key, message: format!("cannot read: {e}") }),
+            Err(e) => problems.push(Problem {
+                key,
+                message: format!("cannot read: {e}"),
+            }),
         }
     }
     if problems.len() > before_file {
@@ -522,8 +570,15 @@ fn check_instrument(table: toml::Table, base_dir: &Path, problems: &mut Vec<Prob
     let spec = spec_from_tables(site, response, background, "instrument", problems)?;
     let mut spec_problems = Vec::new();
     spec.check("instrument", &mut spec_problems);
-    problems.extend(spec_problems.into_iter().map(|sp| Problem { key: sp.key, message: sp.message }));
-    (problems.len() == before).then_some(ScenarioInstrument { id: raw.id, token: raw.token, spec })
+    problems.extend(spec_problems.into_iter().map(|sp| Problem {
+        key: sp.key,
+        message: sp.message,
+    }));
+    (problems.len() == before).then_some(ScenarioInstrument {
+        id: raw.id,
+        token: raw.token,
+        spec,
+    })
 }
 
 /// Builds an instrument block from its three tables, naming each missing or malformed one under `prefix`.
@@ -544,7 +599,10 @@ fn spec_from_tables(
         match v {
             Some(toml::Value::Table(t)) => table_into(t, &key, problems),
             Some(other) => {
-                problems.push(Problem { key, message: format!("must be a table, got {}", other.type_str()) });
+                problems.push(Problem {
+                    key,
+                    message: format!("must be a table, got {}", other.type_str()),
+                });
                 None
             }
             None => {
@@ -559,7 +617,11 @@ fn spec_from_tables(
     let site = part::<SiteSpec>(site, "site", prefix, problems);
     let response = part::<ResponseSpec>(response, "response", prefix, problems);
     let background = part::<BackgroundSpec>(background, "background", prefix, problems);
-    Some(InstrumentSpec { site: site?, response: response?, background: background? })
+    Some(InstrumentSpec {
+        site: site?,
+        response: response?,
+        background: background?,
+    })
 }
 
 fn check_source(
@@ -592,7 +654,10 @@ fn check_source(
     let source = match kind.as_str() {
         "evaporation" => {
             let r: RawEvaporation = table_into(table, &prefix, problems)?;
-            let mut p = Problems { prefix: prefix.clone(), out: problems };
+            let mut p = Problems {
+                prefix: prefix.clone(),
+                out: problems,
+            };
             let ra_deg = p.ra(r.ra_deg);
             let dec_deg = p.dec(r.dec_deg);
             let distance_pc = p.range("distance_pc", r.distance_pc, 0.0, 1e4, false);
@@ -605,11 +670,20 @@ fn check_source(
                     format!("its emission window (the {max_time_to_go_s} s before the explosion) misses the run (0 to {run_s} s)"),
                 );
             }
-            Source::Evaporation(Evaporation { ra_deg, dec_deg, distance_pc, t_gps_ns: t, max_time_to_go_s })
+            Source::Evaporation(Evaporation {
+                ra_deg,
+                dec_deg,
+                distance_pc,
+                t_gps_ns: t,
+                max_time_to_go_s,
+            })
         }
         "afterglow_burst" => {
             let r: RawAfterglow = table_into(table, &prefix, problems)?;
-            let mut p = Problems { prefix: prefix.clone(), out: problems };
+            let mut p = Problems {
+                prefix: prefix.clone(),
+                out: problems,
+            };
             let ra_deg = p.ra(r.ra_deg);
             let dec_deg = p.dec(r.dec_deg);
             let t = p.time(start, r.t_offset_s, r.t_utc.as_deref());
@@ -618,9 +692,15 @@ fn check_source(
             let decay_index = p.range("decay_index", r.decay_index, 0.0, 10.0, false);
             let duration_s = p.range("duration_s", r.duration_s, 0.0, 1e6, false);
             let spectral_index = p.range("spectral_index", r.spectral_index, 1.0, 6.0, false);
-            let (lo, hi) = (t - seconds_to_ns(rise_s.clamp(0.0, 1e5)), t + seconds_to_ns(duration_s.clamp(0.0, 1e6)));
+            let (lo, hi) = (
+                t - seconds_to_ns(rise_s.clamp(0.0, 1e5)),
+                t + seconds_to_ns(duration_s.clamp(0.0, 1e6)),
+            );
             if hi <= start || lo >= end {
-                p.add("t_offset_s", format!("the burst (rise and tail) misses the run (0 to {run_s} s)"));
+                p.add(
+                    "t_offset_s",
+                    format!("the burst (rise and tail) misses the run (0 to {run_s} s)"),
+                );
             }
             Source::AfterglowBurst(AfterglowBurst {
                 ra_deg,
@@ -635,7 +715,10 @@ fn check_source(
         }
         "steady" => {
             let r: RawSteady = table_into(table, &prefix, problems)?;
-            let mut p = Problems { prefix: prefix.clone(), out: problems };
+            let mut p = Problems {
+                prefix: prefix.clone(),
+                out: problems,
+            };
             Source::Steady(Steady {
                 ra_deg: p.ra(r.ra_deg),
                 dec_deg: p.dec(r.dec_deg),
@@ -657,10 +740,16 @@ fn check_source(
             match mode.as_str() {
                 "identical_timestamps" => {
                     let r: RawIdentical = table_into(table, &prefix, problems)?;
-                    let mut p = Problems { prefix: prefix.clone(), out: problems };
+                    let mut p = Problems {
+                        prefix: prefix.clone(),
+                        out: problems,
+                    };
                     let t = p.time(start, r.t_offset_s, r.t_utc.as_deref());
                     if t < start || t >= end {
-                        p.add("t_offset_s", format!("the glitch instant is outside the run (0 to {run_s} s)"));
+                        p.add(
+                            "t_offset_s",
+                            format!("the glitch instant is outside the run (0 to {run_s} s)"),
+                        );
                     }
                     if !(1..=1_000_000).contains(&r.photons) {
                         p.add("photons", format!("{} is outside [1, 1000000]", r.photons));
@@ -669,7 +758,10 @@ fn check_source(
                         (Some(ra), Some(dec)) => Some((p.ra(ra), p.dec(dec))),
                         (None, None) => None,
                         _ => {
-                            p.add("ra_deg", "give both ra_deg and dec_deg, or neither (spread over the field)");
+                            p.add(
+                                "ra_deg",
+                                "give both ra_deg and dec_deg, or neither (spread over the field)",
+                            );
                             None
                         }
                     };
@@ -683,19 +775,31 @@ fn check_source(
                 }
                 "rate_jump" => {
                     let r: RawRateJump = table_into(table, &prefix, problems)?;
-                    let mut p = Problems { prefix: prefix.clone(), out: problems };
+                    let mut p = Problems {
+                        prefix: prefix.clone(),
+                        out: problems,
+                    };
                     let t = p.time(start, r.t_offset_s, r.t_utc.as_deref());
                     let duration_s = p.range("duration_s", r.duration_s, 0.0, MAX_DURATION_S, false);
                     let factor = p.range("factor", r.factor, 1.0, 1000.0, false);
                     if t >= end || t + seconds_to_ns(duration_s.clamp(0.0, MAX_DURATION_S)) <= start {
-                        p.add("t_offset_s", format!("the rate jump misses the run (0 to {run_s} s)"));
+                        p.add(
+                            "t_offset_s",
+                            format!("the rate jump misses the run (0 to {run_s} s)"),
+                        );
                     }
-                    Source::Glitch(Glitch::RateJump { t_gps_ns: t, duration_s, factor })
+                    Source::Glitch(Glitch::RateJump {
+                        t_gps_ns: t,
+                        duration_s,
+                        factor,
+                    })
                 }
                 other => {
                     problems.push(Problem {
                         key: format!("{prefix}.mode"),
-                        message: format!("unknown glitch mode {other:?}: one of identical_timestamps, rate_jump"),
+                        message: format!(
+                            "unknown glitch mode {other:?}: one of identical_timestamps, rate_jump"
+                        ),
                     });
                     return None;
                 }
@@ -703,22 +807,38 @@ fn check_source(
         }
         "dead" => {
             let r: RawDead = table_into(table, &prefix, problems)?;
-            let mut p = Problems { prefix: prefix.clone(), out: problems };
+            let mut p = Problems {
+                prefix: prefix.clone(),
+                out: problems,
+            };
             let t = p.time(start, r.t_offset_s, r.t_utc.as_deref());
             let duration_s = p.range("duration_s", r.duration_s, 0.0, MAX_DURATION_S, false);
             let t_end = t + seconds_to_ns(duration_s.clamp(0.0, MAX_DURATION_S));
             if t < start || t >= end {
-                p.add("t_offset_s", format!("the dead interval starts outside the run (0 to {run_s} s)"));
+                p.add(
+                    "t_offset_s",
+                    format!("the dead interval starts outside the run (0 to {run_s} s)"),
+                );
             } else if !r.declared && t_end >= end {
                 // A gap only shows when a frame follows it.
-                p.add("duration_s", "a silent (declared = false) dead interval must end before the run does");
+                p.add(
+                    "duration_s",
+                    "a silent (declared = false) dead interval must end before the run does",
+                );
             }
-            Source::Dead(Dead { t_gps_ns: t, duration_s, declared: r.declared, reason: r.reason })
+            Source::Dead(Dead {
+                t_gps_ns: t,
+                duration_s,
+                declared: r.declared,
+                reason: r.reason,
+            })
         }
         other => {
             problems.push(Problem {
                 key: format!("source[{index}].kind"),
-                message: format!("unknown source kind {other:?}: one of evaporation, afterglow_burst, steady, glitch, dead"),
+                message: format!(
+                    "unknown source kind {other:?}: one of evaporation, afterglow_burst, steady, glitch, dead"
+                ),
             });
             return None;
         }

@@ -38,6 +38,8 @@ struct Photon {
     t: i64,
     /// When it is sent: `t` plus the out-of-order jitter, GPS ns.
     key: i64,
+    /// Place in the pending queue before sorting: the tie-break that keeps the sort deterministic.
+    ord: u32,
     ra: f64,
     dec: f64,
     zenith: f32,
@@ -129,7 +131,7 @@ struct DeadSpan {
     end: i64,
     declared: bool,
     reason: String,
-    /// Declared: written into a status frame. Silent: the gap has begun.
+    /// Declared: written into a status frame. Silent: its lost frame's number has been skipped.
     done: bool,
 }
 
@@ -160,12 +162,20 @@ impl Kit {
     }
 
     fn quantise(&self, t: i64) -> i64 {
-        let q = if self.clock_ns > 1 { t - t.rem_euclid(self.clock_ns) } else { t };
+        let q = if self.clock_ns > 1 {
+            t - t.rem_euclid(self.clock_ns)
+        } else {
+            t
+        };
         q.max(self.t0)
     }
 
     fn key(&self, rng: &mut Pcg64, t: i64) -> i64 {
-        let j = if self.jitter_ns > 0 { (rng.random::<f64>() * self.jitter_ns as f64) as i64 } else { 0 };
+        let j = if self.jitter_ns > 0 {
+            (rng.random::<f64>() * self.jitter_ns as f64) as i64
+        } else {
+            0
+        };
         (t + j).min(self.t_end - 1).max(t)
     }
 
@@ -176,18 +186,25 @@ impl Kit {
 
     /// A photon from the field like the background: zenith from the acceptance, azimuth uniform.
     fn all_sky(&self, rng: &mut Pcg64, t: i64) -> Photon {
-        let z = self.zenith.draw(rng);
+        let cos_z = self.zenith.draw_cos(rng);
         let az = 360.0 * rng.random::<f64>();
         let e = self.energy(rng, self.bg_index);
         let key = self.key(rng, t);
-        let (ra, dec) = self.frame.to_icrs(z, az, t);
+        let z = cos_z.acos().to_degrees();
+        let (ra, dec) = self
+            .frame
+            .to_icrs_trig(cos_z, (1.0 - cos_z * cos_z).max(0.0).sqrt(), z, az, t);
         photon(t, key, ra, dec, z, az, e)
     }
 
     /// A photon scattered by the PSF (at `e_true`) about a sky position, with energy `e_reco`.
     fn near(&self, rng: &mut Pcg64, t: i64, ra: f64, dec: f64, sigma_deg: f64, e_reco: f64) -> Photon {
         let (r, pa) = draw::gaussian_offset(rng, sigma_deg);
-        let (ra, dec) = if r > 0.0 { offset_by(ra, dec, r, pa) } else { (ra, dec) };
+        let (ra, dec) = if r > 0.0 {
+            offset_by(ra, dec, r, pa)
+        } else {
+            (ra, dec)
+        };
         let key = self.key(rng, t);
         let (z, az) = self.frame.to_instrument(ra, dec, t);
         photon(t, key, ra, dec, z, az, e_reco)
@@ -206,6 +223,7 @@ fn photon(t: i64, key: i64, ra: f64, dec: f64, z: f64, az: f64, e: f64) -> Photo
     Photon {
         t,
         key,
+        ord: 0,
         ra,
         dec: dec.clamp(-90.0, 90.0),
         zenith: (z as f32).clamp(0.0, 180.0),
@@ -320,10 +338,19 @@ impl Simulator {
         };
         let mut problems = Vec::new();
         for (i, source) in scenario.sources.iter().enumerate() {
-            sim.add_source(i, source, seed, &spec.response.effective_area.zenith_deg, &mut problems);
+            sim.add_source(
+                i,
+                source,
+                seed,
+                &spec.response.effective_area.zenith_deg,
+                &mut problems,
+            );
         }
         if !problems.is_empty() {
-            return Err(SimError::Invalid { scenario: scenario.name.clone(), problems });
+            return Err(SimError::Invalid {
+                scenario: scenario.name.clone(),
+                problems,
+            });
         }
         Ok(sim)
     }
@@ -338,7 +365,14 @@ impl Simulator {
         self.stats
     }
 
-    fn add_source(&mut self, i: usize, source: &Source, seed: u64, area_rows: &[f64], problems: &mut Vec<Problem>) {
+    fn add_source(
+        &mut self,
+        i: usize,
+        source: &Source,
+        seed: u64,
+        area_rows: &[f64],
+        problems: &mut Vec<Problem>,
+    ) {
         let prefix = format!("source[{i}] ({})", source.kind());
         let mut rng = substream(seed, i as u64);
         let kit = &self.kit;
@@ -389,7 +423,8 @@ impl Simulator {
                     not_visible(problems, best, "the whole emission window before the explosion");
                     return;
                 }
-                let sampler = EvaporationSampler::new(&kit.resp, area_rows, ev.distance_pc, ev.max_time_to_go_s);
+                let sampler =
+                    EvaporationSampler::new(&kit.resp, area_rows, ev.distance_pc, ev.max_time_to_go_s);
                 if sampler.mean_proposals() > MAX_BURST_PROPOSALS {
                     problems.push(Problem {
                         key: format!("{prefix}.distance_pc"),
@@ -403,7 +438,8 @@ impl Simulator {
                 }
                 let drawn = sampler.draw(&mut rng, |e, tau| {
                     let t = ev.t_gps_ns - seconds_to_ns(tau);
-                    kit.resp.effective_area_m2(e, kit.frame.to_instrument(ev.ra_deg, ev.dec_deg, t).0)
+                    kit.resp
+                        .effective_area_m2(e, kit.frame.to_instrument(ev.ra_deg, ev.dec_deg, t).0)
                 });
                 let mut photons = Vec::with_capacity(drawn.len());
                 for (tau, e_true) in drawn {
@@ -421,7 +457,10 @@ impl Simulator {
                 record.ra_deg = Some(ag.ra_deg);
                 record.dec_deg = Some(ag.dec_deg);
                 record.t_gps_ns = ag.t_gps_ns;
-                let (lo, hi) = (ag.t_gps_ns - seconds_to_ns(ag.rise_s), ag.t_gps_ns + seconds_to_ns(ag.duration_s));
+                let (lo, hi) = (
+                    ag.t_gps_ns - seconds_to_ns(ag.rise_s),
+                    ag.t_gps_ns + seconds_to_ns(ag.duration_s),
+                );
                 let (ok, best) = visible(ag.ra_deg, ag.dec_deg, lo, hi);
                 if !ok {
                     not_visible(problems, best, "the whole burst");
@@ -449,8 +488,16 @@ impl Simulator {
                         kit.resp.energy_max_gev(),
                     );
                     let e = draw::disperse_energy(&mut rng, e_true, kit.resp.energy_sigma_ln(e_true));
-                    let p = kit.near(&mut rng, t, ag.ra_deg, ag.dec_deg, kit.resp.psf_sigma_deg(e_true), e);
-                    if t >= kit.t0 && t < kit.t_end && !kit.in_dead(t) && kit.in_fov(ag.ra_deg, ag.dec_deg, t) {
+                    let p = kit.near(
+                        &mut rng,
+                        t,
+                        ag.ra_deg,
+                        ag.dec_deg,
+                        kit.resp.psf_sigma_deg(e_true),
+                        e,
+                    );
+                    if t >= kit.t0 && t < kit.t_end && !kit.in_dead(t) && kit.in_fov(ag.ra_deg, ag.dec_deg, t)
+                    {
                         photons.push(p);
                     }
                 }
@@ -470,10 +517,19 @@ impl Simulator {
                     start: kit.t0,
                     end: kit.t_end,
                     rate_hz: st.rate_hz,
-                    shape: Shape::Point { ra: st.ra_deg, dec: st.dec_deg, index: st.spectral_index },
+                    shape: Shape::Point {
+                        ra: st.ra_deg,
+                        dec: st.dec_deg,
+                        index: st.spectral_index,
+                    },
                 });
             }
-            Source::Glitch(Glitch::IdenticalTimestamps { t_gps_ns, photons: n, position, spread_deg }) => {
+            Source::Glitch(Glitch::IdenticalTimestamps {
+                t_gps_ns,
+                photons: n,
+                position,
+                spread_deg,
+            }) => {
                 record.t_gps_ns = *t_gps_ns;
                 let t = kit.quantise(*t_gps_ns);
                 if let Some((ra, dec)) = position {
@@ -500,7 +556,11 @@ impl Simulator {
                 }
                 transient = Some(photons);
             }
-            Source::Glitch(Glitch::RateJump { t_gps_ns, duration_s, factor }) => {
+            Source::Glitch(Glitch::RateJump {
+                t_gps_ns,
+                duration_s,
+                factor,
+            }) => {
                 record.t_gps_ns = *t_gps_ns;
                 self.streamed.push(Streamed {
                     truth: Some(slot),
@@ -523,8 +583,14 @@ impl Simulator {
                 .iter()
                 .map(|&ts| {
                     let lo = record.t_gps_ns - seconds_to_ns(ts);
-                    let counts = photons.iter().filter(|p| p.t > lo && p.t <= record.t_gps_ns).count() as u64;
-                    TimescaleCount { timescale_s: ts, counts }
+                    let counts = photons
+                        .iter()
+                        .filter(|p| p.t > lo && p.t <= record.t_gps_ns)
+                        .count() as u64;
+                    TimescaleCount {
+                        timescale_s: ts,
+                        counts,
+                    }
                 })
                 .collect();
             self.transients.push(Transient { photons, pos: 0 });
@@ -585,27 +651,35 @@ impl Simulator {
             }
             self.pending.extend_from_slice(&tr.photons[start..tr.pos]);
         }
-        self.pending.sort_by_key(|p| p.key);
+        // An unstable sort with the queue position as tie-break orders exactly as a stable sort would.
+        for (i, p) in self.pending.iter_mut().enumerate() {
+            p.ord = u32::try_from(i).unwrap_or(u32::MAX);
+        }
+        self.pending.sort_unstable_by_key(|p| (p.key, p.ord));
         self.generated_until = b;
     }
 
-    /// Work due before anything happening at event time `x`: silent gaps that have begun, and the open
-    /// batch once it has spanned `batch_max_s`.
+    /// Work due before anything happening at event time `x`: the frame lost in each silent gap that has
+    /// ended (its number is skipped just before the first frame after the gap, so the gap shows as one jump),
+    /// and the open batch once it has spanned `batch_max_s`.
     fn before_event(&mut self, x: i64) {
-        let mut begun = 0;
+        let mut ended = 0;
         for d in &mut self.dead {
-            if !d.declared && !d.done && d.start <= x {
+            if !d.declared && !d.done && d.end <= x {
                 d.done = true;
-                begun += 1;
+                ended += 1;
             }
         }
-        if begun > 0 {
+        if ended > 0 {
             self.flush();
-            // The frame lost at the start of the gap.
-            self.next_seq += begun;
-            self.stats.skipped_seq += begun;
+            self.next_seq += ended;
+            self.stats.skipped_seq += ended;
         }
-        if self.open.as_ref().is_some_and(|o| x >= o.first_key + self.batch_max_ns) {
+        if self
+            .open
+            .as_ref()
+            .is_some_and(|o| x >= o.first_key + self.batch_max_ns)
+        {
             self.flush();
         }
     }
@@ -667,13 +741,21 @@ impl Simulator {
             for d in &mut self.dead {
                 if d.declared && !d.done && d.end <= s {
                     d.done = true;
-                    dead.push(DeadInterval { start_gps_ns: d.start, end_gps_ns: d.end, reason: d.reason.clone() });
+                    dead.push(DeadInterval {
+                        start_gps_ns: d.start,
+                        end_gps_ns: d.end,
+                        reason: d.reason.clone(),
+                    });
                 }
             }
             let seq = self.next_seq;
             self.next_seq += 1;
             self.stats.statuses += 1;
-            self.push(Body::Status(StreamStatus { seq, now_gps_ns: s, dead }));
+            self.push(Body::Status(StreamStatus {
+                seq,
+                now_gps_ns: s,
+                dead,
+            }));
         }
         if s >= self.kit.t_end {
             self.finished = true;
@@ -699,7 +781,9 @@ impl Iterator for Simulator {
     fn next(&mut self) -> Option<ProducerFrame> {
         if let Some(h) = self.hello.take() {
             self.stats.frames += 1;
-            return Some(ProducerFrame { body: Some(Body::Hello(h)) });
+            return Some(ProducerFrame {
+                body: Some(Body::Hello(h)),
+            });
         }
         self.advance();
         self.out.pop_front()

@@ -4,7 +4,7 @@
 //!
 //! Approximations, checked against astropy in `tests/altaz.rs` (within 0.5 deg over 2020-2030): UT1 = UTC;
 //! ICRS is taken as the mean equator and equinox of date (precession and nutation since J2000 neglected:
-//! about 0.15-0.4 deg in 2026, growing 50 arcsec a year); no refraction, aberration or polar motion.
+//! up to 0.38 deg in 2026, growing 50 arcsec a year); no refraction, aberration or polar motion.
 //! In orbit the Earth's shadow is ignored: a sky position inside the field of view is always visible.
 
 use glint_science::instrument::SiteSpec;
@@ -40,7 +40,8 @@ pub fn gmst_rad(t_gps_ns: i64, utc_minus_gps_s: f64) -> f64 {
     let era = std::f64::consts::TAU * era_turns.rem_euclid(1.0);
     let t = ((GPS_EPOCH_JD - J2000_JD) + whole_days as f64 + day_frac + TT_MINUS_GPS_S / 86_400.0) / 36_525.0;
     let poly_arcsec = 0.014_506
-        + t * (4_612.156_534 + t * (1.391_581_7 + t * (-0.000_000_44 + t * (-0.000_029_956 + t * -0.000_000_036_8))));
+        + t * (4_612.156_534
+            + t * (1.391_581_7 + t * (-0.000_000_44 + t * (-0.000_029_956 + t * -0.000_000_036_8))));
     (era + (poly_arcsec / 3_600.0).to_radians()).rem_euclid(std::f64::consts::TAU)
 }
 
@@ -115,12 +116,20 @@ impl SkyFrame {
     /// The frame of `site`, with the pointing of a space site referred to `t0_gps_ns` (the stream start).
     pub fn new(site: &SiteSpec, t0_gps_ns: i64) -> Self {
         match site {
-            SiteSpec::Ground { latitude_deg, longitude_deg, .. } => Self::Ground {
+            SiteSpec::Ground {
+                latitude_deg,
+                longitude_deg,
+                ..
+            } => Self::Ground {
                 lat_sin_cos: latitude_deg.to_radians().sin_cos(),
                 lon_rad: longitude_deg.to_radians(),
                 utc_minus_gps_s: utc_minus_gps_s(t0_gps_ns),
             },
-            SiteSpec::Space { pointing_ra_deg, pointing_dec_deg, ra_drift_deg_per_s } => Self::Space {
+            SiteSpec::Space {
+                pointing_ra_deg,
+                pointing_dec_deg,
+                ra_drift_deg_per_s,
+            } => Self::Space {
                 ra0_deg: *pointing_ra_deg,
                 dec_deg: *pointing_dec_deg,
                 drift_deg_per_s: *ra_drift_deg_per_s,
@@ -132,7 +141,10 @@ impl SkyFrame {
     /// Looks up the leap-second offset again for time `t_gps_ns` (the simulator calls this once per chunk, so
     /// a leap second inside a run is off by at most one chunk).
     pub fn refresh_leap_seconds(&mut self, t_gps_ns: i64) {
-        if let Self::Ground { utc_minus_gps_s: off, .. } = self {
+        if let Self::Ground {
+            utc_minus_gps_s: off, ..
+        } = self
+        {
             *off = utc_minus_gps_s(t_gps_ns);
         }
     }
@@ -151,7 +163,11 @@ impl SkyFrame {
     /// ICRS (degrees) to the instrument frame: (zenith or off-axis angle in [0, 180], azimuth in [0, 360)).
     pub fn to_instrument(&self, ra_deg: f64, dec_deg: f64, t_gps_ns: i64) -> (f64, f64) {
         match *self {
-            Self::Ground { lat_sin_cos: (sphi, cphi), lon_rad, utc_minus_gps_s: off } => {
+            Self::Ground {
+                lat_sin_cos: (sphi, cphi),
+                lon_rad,
+                utc_minus_gps_s: off,
+            } => {
                 let h = Self::lst_rad(lon_rad, off, t_gps_ns) - ra_deg.to_radians();
                 let (sh, ch) = h.sin_cos();
                 let (sd, cd) = dec_deg.to_radians().sin_cos();
@@ -159,26 +175,57 @@ impl SkyFrame {
                 let az = (-cd * sh).atan2(sd * cphi - cd * ch * sphi);
                 (90.0 - salt.asin().to_degrees(), wrap_360(az.to_degrees()))
             }
-            Self::Space { ra0_deg, dec_deg: pdec, drift_deg_per_s, t0_gps_ns } => {
+            Self::Space {
+                ra0_deg,
+                dec_deg: pdec,
+                drift_deg_per_s,
+                t0_gps_ns,
+            } => {
                 let (pra, pdec) = Self::pointing(ra0_deg, pdec, drift_deg_per_s, t0_gps_ns, t_gps_ns);
-                (separation_deg(pra, pdec, ra_deg, dec_deg), position_angle_deg(pra, pdec, ra_deg, dec_deg))
+                (
+                    separation_deg(pra, pdec, ra_deg, dec_deg),
+                    position_angle_deg(pra, pdec, ra_deg, dec_deg),
+                )
             }
         }
     }
 
     /// Instrument frame (zenith or off-axis angle, azimuth; degrees) to ICRS (ra in [0, 360), dec).
     pub fn to_icrs(&self, zenith_deg: f64, azimuth_deg: f64, t_gps_ns: i64) -> (f64, f64) {
+        let (sin_z, cos_z) = zenith_deg.to_radians().sin_cos();
+        self.to_icrs_trig(cos_z, sin_z, zenith_deg, azimuth_deg, t_gps_ns)
+    }
+
+    /// [`SkyFrame::to_icrs`] for a caller that already has the zenith angle's cosine and sine.
+    pub(crate) fn to_icrs_trig(
+        &self,
+        cos_z: f64,
+        sin_z: f64,
+        zenith_deg: f64,
+        azimuth_deg: f64,
+        t: i64,
+    ) -> (f64, f64) {
         match *self {
-            Self::Ground { lat_sin_cos: (sphi, cphi), lon_rad, utc_minus_gps_s: off } => {
-                let (salt, calt) = (90.0 - zenith_deg).to_radians().sin_cos();
+            Self::Ground {
+                lat_sin_cos: (sphi, cphi),
+                lon_rad,
+                utc_minus_gps_s: off,
+            } => {
+                // altitude = 90 deg - zenith: sin(alt) = cos z, cos(alt) = sin z.
+                let (salt, calt) = (cos_z, sin_z);
                 let (saz, caz) = azimuth_deg.to_radians().sin_cos();
                 let sd = (sphi * salt + cphi * calt * caz).clamp(-1.0, 1.0);
                 let h = (-saz * calt).atan2(salt * cphi - calt * sphi * caz);
-                let ra = Self::lst_rad(lon_rad, off, t_gps_ns) - h;
+                let ra = Self::lst_rad(lon_rad, off, t) - h;
                 (wrap_360(ra.to_degrees()), sd.asin().to_degrees())
             }
-            Self::Space { ra0_deg, dec_deg: pdec, drift_deg_per_s, t0_gps_ns } => {
-                let (pra, pdec) = Self::pointing(ra0_deg, pdec, drift_deg_per_s, t0_gps_ns, t_gps_ns);
+            Self::Space {
+                ra0_deg,
+                dec_deg: pdec,
+                drift_deg_per_s,
+                t0_gps_ns,
+            } => {
+                let (pra, pdec) = Self::pointing(ra0_deg, pdec, drift_deg_per_s, t0_gps_ns, t);
                 offset_by(pra, pdec, zenith_deg, azimuth_deg)
             }
         }
@@ -190,16 +237,25 @@ pub fn parse_utc_to_gps_ns(text: &str) -> Result<i64, String> {
     let trimmed = text.trim();
     // hifitime reads "YYYY-MM-DDTHH:MM:SS[.f] UTC"; accept the common trailing Z as UTC.
     let body = trimmed.strip_suffix('Z').unwrap_or(trimmed);
-    let with_scale = if body.ends_with("UTC") { body.to_string() } else { format!("{body} UTC") };
+    let with_scale = if body.ends_with("UTC") {
+        body.to_string()
+    } else {
+        format!("{body} UTC")
+    };
     let epoch = Epoch::from_gregorian_str(&with_scale).map_err(|e| format!("not a UTC time ({e})"))?;
-    let ns = epoch.to_gpst_nanoseconds().map_err(|e| format!("outside the GPS nanosecond range ({e})"))?;
+    let ns = epoch
+        .to_gpst_nanoseconds()
+        .map_err(|e| format!("outside the GPS nanosecond range ({e})"))?;
     i64::try_from(ns).map_err(|_| "outside the GPS nanosecond range".to_string())
 }
 
 /// ISO-8601 UTC text of a GPS time (for truth records).
 pub fn gps_ns_to_utc_string(t_gps_ns: i64) -> String {
     let epoch = Epoch::from_gpst_nanoseconds(t_gps_ns.max(0).unsigned_abs());
-    format!("{}Z", Epoch::from_utc_duration(epoch.to_utc_duration()).to_isoformat())
+    format!(
+        "{}Z",
+        Epoch::from_utc_duration(epoch.to_utc_duration()).to_isoformat()
+    )
 }
 
 #[cfg(test)]
@@ -210,16 +266,30 @@ mod tests {
     #[test]
     fn round_trip_ground_and_space() {
         let t = parse_utc_to_gps_ns("2026-12-01T02:00:00Z").unwrap();
-        let ground = SkyFrame::new(&SiteSpec::Ground { latitude_deg: -23.0, longitude_deg: -67.0, altitude_m: 0.0 }, t);
+        let ground = SkyFrame::new(
+            &SiteSpec::Ground {
+                latitude_deg: -23.0,
+                longitude_deg: -67.0,
+                altitude_m: 0.0,
+            },
+            t,
+        );
         let space = SkyFrame::new(
-            &SiteSpec::Space { pointing_ra_deg: 120.0, pointing_dec_deg: 30.0, ra_drift_deg_per_s: 0.06 },
+            &SiteSpec::Space {
+                pointing_ra_deg: 120.0,
+                pointing_dec_deg: 30.0,
+                ra_drift_deg_per_s: 0.06,
+            },
             t,
         );
         for frame in [ground, space] {
             for &(ra, dec) in &[(10.0, -30.0), (200.0, 45.0), (359.5, 0.1), (83.6, 22.0)] {
                 let (z, az) = frame.to_instrument(ra, dec, t + 1_234_567_890);
                 let (ra2, dec2) = frame.to_icrs(z, az, t + 1_234_567_890);
-                assert!(separation_deg(ra, dec, ra2, dec2) < 1e-9, "{ra} {dec} -> {z} {az} -> {ra2} {dec2}");
+                assert!(
+                    separation_deg(ra, dec, ra2, dec2) < 1e-9,
+                    "{ra} {dec} -> {z} {az} -> {ra2} {dec2}"
+                );
             }
         }
     }
@@ -230,7 +300,10 @@ mod tests {
         // IERS Bulletin C: GPS - UTC = 18 s since 2017-01-01.
         assert_eq!(utc_minus_gps_s(t), -18.0);
         assert_eq!(gps_ns_to_utc_string(t), "2026-12-01T02:00:00.000000Z");
-        assert_eq!(gps_ns_to_utc_string(t + 1_500_000_000), "2026-12-01T02:00:01.500000Z");
+        assert_eq!(
+            gps_ns_to_utc_string(t + 1_500_000_000),
+            "2026-12-01T02:00:01.500000Z"
+        );
         assert!(parse_utc_to_gps_ns("yesterday").is_err());
     }
 }

@@ -75,6 +75,7 @@ pub fn acceptance_density(cos_power: f64, max_zenith_deg: f64, zenith_deg: f64) 
 }
 
 #[cfg(test)]
+#[allow(clippy::unwrap_used)] // tests may unwrap
 mod tests {
     use super::*;
 

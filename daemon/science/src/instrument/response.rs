@@ -30,10 +30,10 @@ impl LogCurve {
         let (Some(&x_first), Some(&x_last)) = (self.ln_e.first(), self.ln_e.last()) else {
             return 0.0;
         };
-        if !(le > x_first) {
+        if le.is_nan() || le <= x_first {
             return self.ln_v.first().map_or(0.0, |v| v.exp());
         }
-        if !(le < x_last) {
+        if le >= x_last {
             return self.ln_v.last().map_or(0.0, |v| v.exp());
         }
         let j = self.ln_e.partition_point(|&x| x <= le);
@@ -150,7 +150,8 @@ impl InstrumentResponse {
     /// Effective area after cuts, m^2, at true energy `e_gev` and zenith (or off-axis) angle `zenith_deg`;
     /// 0 outside the field of view or the energy range (and for NaN arguments).
     pub fn effective_area_m2(&self, e_gev: f64, zenith_deg: f64) -> f64 {
-        if !(e_gev >= self.energy_min_gev && e_gev <= self.energy_max_gev) || !self.in_fov(zenith_deg) {
+        let in_range = e_gev >= self.energy_min_gev && e_gev <= self.energy_max_gev;
+        if !in_range || !self.in_fov(zenith_deg) {
             return 0.0;
         }
         let (r0, r1, w) = self.rows_for(zenith_deg);
@@ -223,7 +224,13 @@ impl InstrumentResponse {
     pub fn fold_power_law(&self, zenith_deg: f64, e_lo: f64, e_hi: f64, coeff: f64, index: f64) -> f64 {
         let lo = e_lo.max(self.energy_min_gev);
         let hi = e_hi.min(self.energy_max_gev);
-        if !self.in_fov(zenith_deg) || !(hi > lo) || !coeff.is_finite() || !index.is_finite() {
+        if !self.in_fov(zenith_deg)
+            || hi.is_nan()
+            || lo.is_nan()
+            || hi <= lo
+            || !coeff.is_finite()
+            || !index.is_finite()
+        {
             return 0.0;
         }
         let (r0, r1, w) = self.rows_for(zenith_deg);
@@ -270,7 +277,7 @@ impl InstrumentResponse {
     ) -> f64 {
         let lo = e_lo.max(self.energy_min_gev);
         let hi = e_hi.min(self.energy_max_gev);
-        if !self.in_fov(zenith_deg) || !(hi > lo) {
+        if !self.in_fov(zenith_deg) || hi.is_nan() || lo.is_nan() || hi <= lo {
             return 0.0;
         }
         let mut cuts: Vec<f64> = self
@@ -301,6 +308,7 @@ impl InstrumentResponse {
 }
 
 #[cfg(test)]
+#[allow(clippy::unwrap_used)] // tests may unwrap
 mod tests {
     use super::*;
     use crate::instrument::spec::AreaTable;
@@ -374,7 +382,8 @@ mod tests {
 
     #[test]
     fn bad_tables_are_typed_errors() {
-        let cases: Vec<(&str, Box<dyn Fn(&mut ResponseSpec)>)> = vec![
+        type Spoil = Box<dyn Fn(&mut ResponseSpec)>;
+        let cases: Vec<(&str, Spoil)> = vec![
             (
                 "response.effective_area.energy_gev",
                 Box::new(|s| s.effective_area.energy_gev.clear()),
