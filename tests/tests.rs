@@ -1,5 +1,7 @@
 //! glint's integration tests: each module drives the real `glint` binary (built by cargo for this test
 //! binary) over real files and loopback sockets.
 
+#![allow(clippy::unwrap_used)] // tests may unwrap: a panic is the failure report
+
 mod live;
 mod util;

@@ -25,8 +25,14 @@ fn config(search: bool) -> EngineConfig {
             zenith_deg: vec![0.0, MAX_ZENITH],
             area_m2: vec![vec![1e3, 1e5], vec![5e2, 5e4]],
         },
-        psf68_deg: CurveTable { energy_gev: vec![100.0, 1e5], value: vec![0.5, 0.5] },
-        energy_resolution: CurveTable { energy_gev: vec![100.0, 1e5], value: vec![0.3, 0.3] },
+        psf68_deg: CurveTable {
+            energy_gev: vec![100.0, 1e5],
+            value: vec![0.5, 0.5],
+        },
+        energy_resolution: CurveTable {
+            energy_gev: vec![100.0, 1e5],
+            value: vec![0.3, 0.3],
+        },
         systematic_deg: 0.0,
         clock_precision_ns: 100,
     };
@@ -41,14 +47,23 @@ fn batches(seed: u64, from: i64, to: i64, seq0: u64) -> Vec<PhotonBatch> {
     let mut rng = Pcg64::seed_from_u64(seed);
     let c0 = MAX_ZENITH.to_radians().cos();
     let mut out = Vec::new();
-    let mut b = PhotonBatch { seq: seq0, ..PhotonBatch::default() };
+    let mut b = PhotonBatch {
+        seq: seq0,
+        ..PhotonBatch::default()
+    };
     let mut t = from as f64;
     let mut edge = from + S / 10;
     loop {
         t += -(1.0 - rng.random::<f64>()).ln() / RATE_HZ * 1e9;
         if t as i64 >= edge || t as i64 >= to {
             let seq = b.seq;
-            out.push(std::mem::replace(&mut b, PhotonBatch { seq: seq + 1, ..PhotonBatch::default() }));
+            out.push(std::mem::replace(
+                &mut b,
+                PhotonBatch {
+                    seq: seq + 1,
+                    ..PhotonBatch::default()
+                },
+            ));
             edge += S / 10;
             if t as i64 >= to {
                 break;
@@ -62,7 +77,8 @@ fn batches(seed: u64, from: i64, to: i64, seq0: u64) -> Vec<PhotonBatch> {
         b.dec_deg.push(90.0 - f64::from(zen));
         b.zenith_deg.push(zen);
         b.azimuth_deg.push(az);
-        b.energy_gev.push((100.0 * (1.0 - rng.random::<f64>()).powf(-1.0 / 1.7)) as f32);
+        b.energy_gev
+            .push((100.0 * (1.0 - rng.random::<f64>()).powf(-1.0 / 1.7)) as f32);
     }
     out
 }

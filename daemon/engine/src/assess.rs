@@ -80,7 +80,11 @@ pub(crate) fn spread_ratio(f: &Flash, response: &InstrumentResponse) -> f64 {
     }
     let nf = n as f64;
     let expected = 2.0 * (s2 / nf) * (nf - 1.0) / nf;
-    if expected > 0.0 && expected.is_finite() { (msd / nf / expected).sqrt() } else { 0.0 }
+    if expected > 0.0 && expected.is_finite() {
+        (msd / nf / expected).sqrt()
+    } else {
+        0.0
+    }
 }
 
 /// Builds the assessment and, for an instrumental verdict, the withdrawal.
@@ -93,11 +97,19 @@ pub(crate) fn assess(inp: &AssessInput<'_>) -> (Assessment, Option<Withdrawal>) 
     // Persistence: the disc after the last crossing and before the flash span, against the all-sky photons of
     // the same windows times the disc's share of the acceptance (dead time needs no correction: it has no
     // photons in either).
-    let post_counts = c.photons.iter().filter(|p| p.t > c.t_last && p.t <= inp.close).count() as u64;
+    let post_counts = c
+        .photons
+        .iter()
+        .filter(|p| p.t > c.t_last && p.t <= inp.close)
+        .count() as u64;
     let post_background = inp.post_all_sky as f64 * frac;
     let (post_p_value, post_sigma) = excess(post_counts, post_background);
     let pre_from = c.span_start.saturating_sub(inp.pre_ns);
-    let pre_counts = c.photons.iter().filter(|p| p.t > pre_from && p.t <= c.span_start).count() as u64;
+    let pre_counts = c
+        .photons
+        .iter()
+        .filter(|p| p.t > pre_from && p.t <= c.span_start)
+        .count() as u64;
     let pre_background = c.pre_all_sky as f64 * frac;
     let (pre_p_value, pre_sigma) = excess(pre_counts, pre_background);
 
@@ -123,7 +135,11 @@ pub(crate) fn assess(inp: &AssessInput<'_>) -> (Assessment, Option<Withdrawal>) 
     flags.extend(instrumental.iter().map(|s| (*s).to_owned()));
 
     let window_ns = inp.close.saturating_sub(c.t_last);
-    let dead_fraction = if window_ns > 0 { inp.dead_post_ns as f64 / window_ns as f64 } else { 0.0 };
+    let dead_fraction = if window_ns > 0 {
+        inp.dead_post_ns as f64 / window_ns as f64
+    } else {
+        0.0
+    };
     let too_dead = dead_fraction > cfg.max_dead_fraction;
     if too_dead {
         flags.push("dead_time".into());

@@ -94,7 +94,10 @@ impl AcceptanceMap {
         if sum <= 0.0 || !sum.is_finite() {
             return;
         }
-        let scale = self.t_ref.zip(self.t_last).map_or(1.0, |(r, l)| self.growth(l, r));
+        let scale = self
+            .t_ref
+            .zip(self.t_last)
+            .map_or(1.0, |(r, l)| self.growth(l, r));
         for iz in 0..N_ZENITH {
             for ia in 0..N_AZIMUTH {
                 self.w[iz * N_AZIMUTH + ia] += weight * band[iz] / sum * scale;
@@ -193,7 +196,9 @@ impl AcceptanceMap {
         let mut r = Reader { b: body, at: 8 };
         let version = r.u32()?;
         if version != VERSION {
-            return Err(err(format!("format version {version}, this build reads {VERSION}")));
+            return Err(err(format!(
+                "format version {version}, this build reads {VERSION}"
+            )));
         }
         let name_len = r.u32()? as usize;
         let name = r.take(name_len)?;
@@ -206,7 +211,9 @@ impl AcceptanceMap {
         let nz = r.u32()? as usize;
         let na = r.u32()? as usize;
         if nz != N_ZENITH || na != N_AZIMUTH {
-            return Err(err(format!("map has {nz}x{na} bins, expected {N_ZENITH}x{N_AZIMUTH}")));
+            return Err(err(format!(
+                "map has {nz}x{na} bins, expected {N_ZENITH}x{N_AZIMUTH}"
+            )));
         }
         let maxz = r.f64()?;
         if maxz.to_bits() != self.max_zenith_deg.to_bits() {
@@ -230,7 +237,9 @@ impl AcceptanceMap {
         }
         let sum: f64 = w.iter().sum();
         if !total.is_finite() || total <= 0.0 || (sum - total).abs() > 1e-6 * total.max(1.0) {
-            return Err(err(format!("total weight {total} does not match the bins' sum {sum}")));
+            return Err(err(format!(
+                "total weight {total} does not match the bins' sum {sum}"
+            )));
         }
         self.w = w;
         self.total = total;
@@ -249,9 +258,13 @@ struct Reader<'a> {
 
 impl Reader<'_> {
     fn take(&mut self, n: usize) -> Result<&[u8], EngineError> {
-        let end = self.at.checked_add(n).filter(|&e| e <= self.b.len()).ok_or_else(|| {
-            EngineError::State(format!("truncated: wanted {n} bytes at offset {}", self.at))
-        })?;
+        let end = self
+            .at
+            .checked_add(n)
+            .filter(|&e| e <= self.b.len())
+            .ok_or_else(|| {
+                EngineError::State(format!("truncated: wanted {n} bytes at offset {}", self.at))
+            })?;
         let s = &self.b[self.at..end];
         self.at = end;
         Ok(s)
@@ -279,6 +292,10 @@ pub(crate) struct AllSky {
     times: VecDeque<i64>,
     /// Photons ever released (the absolute index of the element after the newest).
     released: u64,
+    /// Photons evicted from the front (the absolute index of the front element).
+    evicted: u64,
+    /// Absolute index of the first photon inside the trailing rate window (it only moves forward).
+    cursor: u64,
 }
 
 impl AllSky {
@@ -295,6 +312,7 @@ impl AllSky {
     pub(crate) fn evict_before(&mut self, t_min: i64) {
         while self.times.front().is_some_and(|&t| t < t_min) {
             self.times.pop_front();
+            self.evicted += 1;
         }
     }
 
@@ -307,16 +325,26 @@ impl AllSky {
 
     /// Trailing rate over (t - window, t], counting live time only; None until at least half the window
     /// was live (a rate from a few seconds of data would make thresholds swing).
-    pub(crate) fn rate_hz(&self, t: i64, window_ns: i64, dead: &DeadTime, stream_start: i64) -> Option<f64> {
+    /// `t` must not decrease from call to call and every photon held must be at or before `t`.
+    pub(crate) fn rate_hz(
+        &mut self,
+        t: i64,
+        window_ns: i64,
+        dead: &DeadTime,
+        stream_start: i64,
+    ) -> Option<f64> {
         let a = t.saturating_sub(window_ns).max(stream_start);
+        self.cursor = self.cursor.max(self.evicted);
+        while self.cursor < self.released && self.times[(self.cursor - self.evicted) as usize] <= a {
+            self.cursor += 1;
+        }
         let live = t.saturating_sub(a) - dead.overlap(a.saturating_add(1), t.saturating_add(1));
         if live < window_ns / 2 || live <= 0 {
             return None;
         }
-        let n = self.count(a, t);
+        let n = self.released - self.cursor;
         Some(n as f64 / (live as f64 * 1e-9))
     }
-
 }
 
 #[cfg(test)]
@@ -387,7 +415,10 @@ mod tests {
         assert!(n.load(&blob, "other").is_err());
         assert!(n.load(b"", "inst").is_err());
         let mut other = AcceptanceMap::new(50.0, 100.0);
-        assert!(other.load(&blob, "inst").is_err(), "a different field of view is refused");
+        assert!(
+            other.load(&blob, "inst").is_err(),
+            "a different field of view is refused"
+        );
     }
 
     #[test]
@@ -407,6 +438,7 @@ mod tests {
         }
         let r2 = s2.rate_hz(9_900_000_000, 10_000_000_000, &dead, 0).unwrap();
         assert!((r2 - 10.0).abs() < 0.3, "{r2}");
+        assert_eq!(s2.count(0, 9_900_000_000), 60);
         assert_eq!(s2.count(4_000_000_000, 5_000_000_000), 10);
         dead.add(4_000_000_000, 9_000_000_000);
         assert!(s2.rate_hz(9_900_000_000, 10_000_000_000, &dead, 0).is_none());

@@ -130,17 +130,35 @@ impl EngineConfig {
         }
         let a = &self.assess;
         range("assess.persistence_min_s", a.persistence_min_s, 0.0, 86_400.0);
-        range("assess.persistence_timescale_factor", a.persistence_timescale_factor, 0.0, 1e4);
+        range(
+            "assess.persistence_timescale_factor",
+            a.persistence_timescale_factor,
+            0.0,
+            1e4,
+        );
         range("assess.pre_window_s", a.pre_window_s, 0.0, 86_400.0);
         range("assess.post_sigma_max", a.post_sigma_max, -40.0, 40.0);
         range("assess.pre_sigma_max", a.pre_sigma_max, -40.0, 40.0);
         range("assess.all_sky_sigma_max", a.all_sky_sigma_max, -40.0, 40.0);
-        range("assess.identical_fraction_max", a.identical_fraction_max, 0.0, 1.0);
+        range(
+            "assess.identical_fraction_max",
+            a.identical_fraction_max,
+            0.0,
+            1.0,
+        );
         range("assess.spread_ratio_max", a.spread_ratio_max, 0.0, 1e6);
         range("assess.max_dead_fraction", a.max_dead_fraction, 0.0, 1.0);
-        range("assess.background_spectral_index", a.background_spectral_index, 1.01, 6.0);
+        range(
+            "assess.background_spectral_index",
+            a.background_spectral_index,
+            1.01,
+            6.0,
+        );
         if self.ladder_s.is_empty() || self.ladder_s.len() > 32 {
-            p.push(format!("ladder_s: {} timescales, expected 1 to 32", self.ladder_s.len()));
+            p.push(format!(
+                "ladder_s: {} timescales, expected 1 to 32",
+                self.ladder_s.len()
+            ));
         }
         for (i, &s) in self.ladder_s.iter().enumerate() {
             if !s.is_finite() || !(1e-4..=3600.0).contains(&s) {
@@ -148,7 +166,10 @@ impl EngineConfig {
             }
         }
         if let Some(i) = self.ladder_s.windows(2).position(|w| w[1] <= w[0]) {
-            p.push(format!("ladder_s: must be strictly increasing (entry {} <= entry {i})", i + 1));
+            p.push(format!(
+                "ladder_s: must be strictly increasing (entry {} <= entry {i})",
+                i + 1
+            ));
         }
         if self.instrument.is_empty() {
             p.push("instrument: empty id".into());
@@ -157,17 +178,33 @@ impl EngineConfig {
             p.push(format!("warmup_photons: {} is above 1e9", self.warmup_photons));
         }
         if !(0..=3_600_000_000_000).contains(&self.reorder_tolerance_ns) {
-            p.push(format!("reorder_tolerance_ns: {} is outside [0, 3.6e12]", self.reorder_tolerance_ns));
+            p.push(format!(
+                "reorder_tolerance_ns: {} is outside [0, 3.6e12]",
+                self.reorder_tolerance_ns
+            ));
         }
         if !(1..=i64::MAX / 4).contains(&self.max_clock_jump_ns) {
-            p.push(format!("max_clock_jump_ns: {} must be > 0", self.max_clock_jump_ns));
+            p.push(format!(
+                "max_clock_jump_ns: {} must be > 0",
+                self.max_clock_jump_ns
+            ));
         }
         if a.max_photons == 0 || a.max_photons > 10_000_000 {
-            p.push(format!("assess.max_photons: {} is outside [1, 1e7]", a.max_photons));
+            p.push(format!(
+                "assess.max_photons: {} is outside [1, 1e7]",
+                a.max_photons
+            ));
         }
         if a.max_open_candidates == 0 || a.max_open_candidates > 100_000 {
-            p.push(format!("assess.max_open_candidates: {} is outside [1, 100000]", a.max_open_candidates));
+            p.push(format!(
+                "assess.max_open_candidates: {} is outside [1, 100000]",
+                a.max_open_candidates
+            ));
         }
-        if p.is_empty() { Ok(()) } else { Err(EngineError::Config(p)) }
+        if p.is_empty() {
+            Ok(())
+        } else {
+            Err(EngineError::Config(p))
+        }
     }
 }

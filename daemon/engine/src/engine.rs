@@ -19,10 +19,9 @@ use crate::sky::{SkyIndex, radec_of, unit_vector};
 
 /// Seconds in a Julian year (365.25 days): the unit of every false-alarm rate.
 pub const SECONDS_PER_YEAR: f64 = 31_557_600.0;
-/// Critical tables span backgrounds from here (lower b uses the first, higher threshold: conservative)...
-const TABLE_B_MIN: f64 = 1e-10;
-/// ...to here (higher b is computed exactly, slowly).
-const TABLE_B_MAX: f64 = 1e4;
+/// Critical tables span the backgrounds the current model can produce, widened by this factor each way
+/// (a lower b uses the first entry, a higher threshold: conservative; a higher b is computed exactly).
+const TABLE_MARGIN: f64 = 2.0;
 /// Grid density of the critical tables.
 const TABLE_POINTS_PER_DECADE: u32 = 50;
 /// The thresholds are rebuilt when the all-sky rate has moved by more than this fraction since the last
@@ -142,7 +141,9 @@ impl Params {
             allsky_retention_ns: rate_window_ns
                 .saturating_add(longest_ns)
                 .max(longest_ns.saturating_mul(2).saturating_add(pre_ns)),
-            refresh_ns: MODEL_REFRESH_NS.min(secs_to_ns(cfg.acceptance_tau_s / 10.0)).max(1),
+            refresh_ns: MODEL_REFRESH_NS
+                .min(secs_to_ns(cfg.acceptance_tau_s / 10.0))
+                .max(1),
             ladder_ns,
             longest_ns,
             rate_window_ns,
@@ -352,7 +353,10 @@ impl Engine {
     /// the search on it.
     pub fn push_batch(&mut self, batch: &PhotonBatch, out: &mut Vec<Finding>) -> Result<(), EngineError> {
         let n = batch.time_gps_ns.len();
-        let bad = |detail: String| EngineError::InvalidFrame { seq: batch.seq, detail };
+        let bad = |detail: String| EngineError::InvalidFrame {
+            seq: batch.seq,
+            detail,
+        };
         let columns = [
             ("ra_deg", batch.ra_deg.len()),
             ("dec_deg", batch.dec_deg.len()),
@@ -370,7 +374,9 @@ impl Engine {
             let (ra, dec) = (batch.ra_deg[i], batch.dec_deg[i]);
             if !ra.is_finite() || !dec.is_finite() || !(-90.0..=90.0).contains(&dec) {
                 self.stats.refused_invalid += 1;
-                return Err(bad(format!("photon {i}: direction ({ra}, {dec}) is not a valid ICRS position")));
+                return Err(bad(format!(
+                    "photon {i}: direction ({ra}, {dec}) is not a valid ICRS position"
+                )));
             }
         }
         let Some((&tmin, &tmax)) = batch.time_gps_ns.iter().min().zip(batch.time_gps_ns.iter().max()) else {
@@ -508,7 +514,8 @@ impl Engine {
     fn move_time(&mut self, t: i64) {
         let latest = self.clock.latest.map_or(t, |l| l.max(t));
         self.clock.latest = Some(latest);
-        self.reorder.advance_watermark(latest.saturating_sub(self.cfg.reorder_tolerance_ns));
+        self.reorder
+            .advance_watermark(latest.saturating_sub(self.cfg.reorder_tolerance_ns));
     }
 
     /// Releases every photon behind the watermark, group by group of equal time, assessing candidates whose
@@ -519,7 +526,12 @@ impl Engine {
             self.assess_due(t, out);
             self.group.clear();
             while let Some(p) = self.reorder.pop_before(t.saturating_add(1)) {
-                self.group.push(Released { p, v: [0.0; 3], bin: None, slot: 0 });
+                self.group.push(Released {
+                    p,
+                    v: [0.0; 3],
+                    bin: None,
+                    slot: 0,
+                });
             }
             self.release_group(t, out);
         }
@@ -555,7 +567,8 @@ impl Engine {
             }
         }
         self.sky.evict_before(t.saturating_sub(self.p.sky_retention_ns));
-        self.all_sky.evict_before(t.saturating_sub(self.p.allsky_retention_ns));
+        self.all_sky
+            .evict_before(t.saturating_sub(self.p.allsky_retention_ns));
         let oldest_needed = self
             .cands
             .iter()
@@ -591,12 +604,29 @@ impl Engine {
         if !stale {
             return;
         }
+        let mut dens = self
+            .model
+            .as_mut()
+            .map(|m| std::mem::take(&mut m.dens))
+            .unwrap_or_default();
+        self.accept.densities(&mut dens);
+        // The table only needs to cover r x dt x a x Omega over the ladder and the bins with acceptance.
+        let (a_min, a_max) = dens
+            .iter()
+            .filter(|&&a| a > 0.0)
+            .fold((f64::INFINITY, 0.0f64), |(lo, hi), &a| (lo.min(a), hi.max(a)));
+        let scale = r * self.p.omega_r;
+        let (b_lo, b_hi) = if a_max > 0.0 {
+            let lo = (scale * self.cfg.ladder_s[0] * a_min / TABLE_MARGIN).clamp(1e-30, 1.0);
+            let hi = (scale * self.cfg.ladder_s[self.p.k - 1] * a_max * TABLE_MARGIN).clamp(lo * 10.0, 1e9);
+            (lo, hi)
+        } else {
+            (1e-6, 1.0)
+        };
         let built = per_seed_bound(self.p.far_per_s, self.p.k, r)
-            .and_then(|bound| CriticalTable::new(bound, TABLE_B_MIN, TABLE_B_MAX, TABLE_POINTS_PER_DECADE));
+            .and_then(|bound| CriticalTable::new(bound, b_lo, b_hi, TABLE_POINTS_PER_DECADE));
         match built {
             Ok(table) => {
-                let mut dens = self.model.take().map(|m| m.dens).unwrap_or_default();
-                self.accept.densities(&mut dens);
                 let n = N_BINS * self.p.k;
                 self.model = Some(Model {
                     rate_hz: r,
@@ -609,7 +639,12 @@ impl Engine {
                 });
                 self.stats.model_builds += 1;
             }
-            Err(_) => self.rate_ok = false,
+            Err(_) => {
+                if let Some(m) = self.model.as_mut() {
+                    m.dens = dens;
+                }
+                self.rate_ok = false;
+            }
         }
     }
 
@@ -650,7 +685,15 @@ impl Engine {
         }
         self.stats.seeds_tested += 1;
         self.hist.iter_mut().for_each(|h| *h = 0);
-        count_disc(&self.sky, g.slot, g.v, t, self.p.cos_r, &self.p.ladder_ns[..kmax], &mut self.hist);
+        count_disc(
+            &self.sky,
+            g.slot,
+            g.v,
+            t,
+            self.p.cos_r,
+            &self.p.ladder_ns[..kmax],
+            &mut self.hist,
+        );
         let Some(model) = self.model.as_mut() else { return };
         let mut n = 0u64;
         let mut mask = 0u64;
@@ -685,7 +728,16 @@ impl Engine {
         }
     }
 
-    fn on_crossing(&mut self, i: usize, k: usize, n: u64, b: f64, ln_p: f64, mask: u64, out: &mut Vec<Finding>) {
+    fn on_crossing(
+        &mut self,
+        i: usize,
+        k: usize,
+        n: u64,
+        b: f64,
+        ln_p: f64,
+        mask: u64,
+        out: &mut Vec<Finding>,
+    ) {
         let g = self.group[i];
         let t = g.p.t;
         let dt = self.p.ladder_ns[k];
@@ -737,14 +789,30 @@ impl Engine {
         let start = t.saturating_sub(dt);
         let mut photons = Vec::new();
         let mut capped = false;
-        let from = start.saturating_sub(self.p.longest_ns).saturating_sub(self.p.pre_ns);
+        let from = start
+            .saturating_sub(self.p.longest_ns)
+            .saturating_sub(self.p.pre_ns);
         let cos_r = self.p.cos_r;
         let max = self.cfg.assess.max_photons;
-        self.sky.for_each_in_cone(flash.ra_deg, flash.dec_deg, self.cfg.search_radius_deg * 1.01, from, |h, c| {
-            if dot(h.v, pos0) >= cos_r {
-                photons.push((h.t, c.ra.to_bits(), c.dec.to_bits(), CandPhoton { t: h.t, energy: c.energy }));
-            }
-        });
+        self.sky.for_each_in_cone(
+            flash.ra_deg,
+            flash.dec_deg,
+            self.cfg.search_radius_deg * 1.01,
+            from,
+            |h, c| {
+                if dot(h.v, pos0) >= cos_r {
+                    photons.push((
+                        h.t,
+                        c.ra.to_bits(),
+                        c.dec.to_bits(),
+                        CandPhoton {
+                            t: h.t,
+                            energy: c.energy,
+                        },
+                    ));
+                }
+            },
+        );
         photons.sort_by_key(|x| (x.0, x.1, x.2));
         if photons.len() > max {
             // Keep the newest: the flash and what follows matter more than the far pre-window.
@@ -801,7 +869,11 @@ impl Engine {
         } else {
             self.model.as_ref().map_or(0.0, |m| m.rate_hz)
         };
-        let a = self.model.as_ref().zip(bin).map_or(0.0, |(m, b)| m.dens[usize::from(b)]);
+        let a = self
+            .model
+            .as_ref()
+            .zip(bin)
+            .map_or(0.0, |(m, b)| m.dens[usize::from(b)]);
         let disc_fraction = (a * self.p.omega_r).clamp(0.0, 1.0);
         let expected = rate * live(f.start_ns, f.end_ns) as f64 * 1e-9 * (1.0 - disc_fraction);
         (counts, expected)
@@ -814,14 +886,14 @@ impl Engine {
         let mut buf = std::mem::take(&mut self.flash_buf);
         buf.clear();
         let mut slots = [0u32; 9];
-        let ns = self.sky.neighbourhood(g.slot, &mut slots);
+        let ns = self.sky.neighbourhood(g.slot, g.v, &mut slots);
         for &s in &slots[..ns] {
-            let bucket = self.sky.bucket(s);
-            for (h, c) in bucket.hot.iter().zip(bucket.cold.iter()).rev() {
+            for h in self.sky.bucket(s).hot.iter().rev() {
                 if t - h.t >= dt {
                     break;
                 }
                 if dot(h.v, g.v) >= self.p.cos_r {
+                    let Some(c) = self.sky.cold_of(s, h) else { continue };
                     let p = c.photon(h.t);
                     buf.push((
                         PhotonRec {
@@ -838,8 +910,18 @@ impl Engine {
             }
         }
         buf.sort_by(|a, b| {
-            let ka = (a.0.time_ns, a.0.ra_deg.to_bits(), a.0.dec_deg.to_bits(), a.0.energy_gev.to_bits());
-            let kb = (b.0.time_ns, b.0.ra_deg.to_bits(), b.0.dec_deg.to_bits(), b.0.energy_gev.to_bits());
+            let ka = (
+                a.0.time_ns,
+                a.0.ra_deg.to_bits(),
+                a.0.dec_deg.to_bits(),
+                a.0.energy_gev.to_bits(),
+            );
+            let kb = (
+                b.0.time_ns,
+                b.0.ra_deg.to_bits(),
+                b.0.dec_deg.to_bits(),
+                b.0.energy_gev.to_bits(),
+            );
             ka.cmp(&kb)
         });
         let mut sum = [0.0f64; 3];
@@ -879,7 +961,10 @@ impl Engine {
 
     fn persistence_ns(&self, c: &Candidate) -> i64 {
         let a = &self.cfg.assess;
-        secs_to_ns(a.persistence_min_s.max(a.persistence_timescale_factor * c.best.timescale_s))
+        secs_to_ns(
+            a.persistence_min_s
+                .max(a.persistence_timescale_factor * c.best.timescale_s),
+        )
     }
 
     fn close_of(&self, c: &Candidate) -> i64 {
@@ -907,7 +992,9 @@ impl Engine {
         let dens = self.model.as_ref().map_or(0.0, |m| m.dens[usize::from(c.bin0)]);
         let rate = self.model.as_ref().map_or(0.0, |m| m.rate_hz);
         let post_all_sky = self.all_sky.released().saturating_sub(c.released_at_last);
-        let dead_post_ns = self.dead.overlap(c.t_last.saturating_add(1), close.saturating_add(1));
+        let dead_post_ns = self
+            .dead
+            .overlap(c.t_last.saturating_add(1), close.saturating_add(1));
         let input = AssessInput {
             cand: &c,
             close,
@@ -938,7 +1025,7 @@ impl Engine {
 fn count_disc(sky: &SkyIndex, slot: u32, v: [f64; 3], t: i64, cos_r: f64, ladder: &[i64], hist: &mut [u32]) {
     let Some(&limit) = ladder.last() else { return };
     let mut slots = [0u32; 9];
-    let ns = sky.neighbourhood(slot, &mut slots);
+    let ns = sky.neighbourhood(slot, v, &mut slots);
     for &s in &slots[..ns] {
         let hot = &sky.bucket(s).hot;
         let mut k = 0;

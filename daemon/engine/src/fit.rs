@@ -121,13 +121,27 @@ enum FitProblem {
     #[error("window_end_ns = {end} is not after window_start_ns = {start}")]
     EmptyWindow { start: i64, end: i64 },
     #[error("photon {index}: time {time_ns} ns is outside the window [{start}, {end}] ns")]
-    TimeOutsideWindow { index: usize, time_ns: i64, start: i64, end: i64 },
+    TimeOutsideWindow {
+        index: usize,
+        time_ns: i64,
+        start: i64,
+        end: i64,
+    },
     #[error("photon {index}: energy {value} GeV is outside the instrument's range [{min}, {max}] GeV")]
-    EnergyOutOfRange { index: usize, value: f64, min: f64, max: f64 },
+    EnergyOutOfRange {
+        index: usize,
+        value: f64,
+        min: f64,
+        max: f64,
+    },
     #[error("all {n} photons have the same time; the explosion time cannot be fitted")]
     AllSameTime { n: usize },
     #[error("{name} = {value} is invalid: expected {expected}")]
-    BadArgument { name: &'static str, value: f64, expected: &'static str },
+    BadArgument {
+        name: &'static str,
+        value: f64,
+        expected: &'static str,
+    },
     #[error("the instrument's {what} is invalid: {value}")]
     BadResponse { what: &'static str, value: f64 },
     #[error("the effective area is zero at zenith {zenith_deg} deg over the instrument's energy range")]
@@ -181,22 +195,26 @@ enum FitProblem {
 ///
 /// Cost: O(photons x anchors) likelihood terms, every solver capped at 200 iterations; memory O(photons).
 pub fn fit_evaporation(input: &FitInput<'_>) -> FitResult {
-    match fit(input) {
+    match fit(input, FULL_SEARCH_MAX) {
         Ok(result) => result,
         Err(problem) => FitResult::failed(problem.to_string()),
     }
 }
 
-fn fit(input: &FitInput<'_>) -> Result<FitResult, FitProblem> {
+fn fit(input: &FitInput<'_>, full_search_max: usize) -> Result<FitResult, FitProblem> {
     let photons = Photons::new(input)?;
     let model = Model::new(input, &photons)?;
     let curves = PhotonCurves::new(input, &photons, &model)?;
-    let search = Search { photons: &photons, model: &model, curves: &curves };
+    let search = Search {
+        photons: &photons,
+        model: &model,
+        curves: &curves,
+    };
 
     let anchors = search.anchors();
-    let mut fits = Vec::with_capacity(anchors.len().min(FULL_SEARCH_MAX + 2 * COARSE_ANCHORS));
+    let mut fits = Vec::new();
     let mut scratch = Vec::with_capacity(photons.len());
-    if anchors.len() <= FULL_SEARCH_MAX {
+    if anchors.len() <= full_search_max {
         for &j in &anchors {
             fits.push(search.fit_anchor(j, &mut scratch)?);
         }
@@ -243,7 +261,11 @@ fn fit(input: &FitInput<'_>) -> Result<FitResult, FitProblem> {
 
     let distance = best.q.powf(-0.5);
     let distance_lo = q_hi.powf(-0.5);
-    let distance_hi = if q_lo > 0.0 { q_lo.powf(-0.5) } else { f64::INFINITY };
+    let distance_hi = if q_lo > 0.0 {
+        q_lo.powf(-0.5)
+    } else {
+        f64::INFINITY
+    };
     let signal_counts = best.q * best.norm;
     let background_counts = model.background_rate * photons.window_s;
     for (what, v) in [
@@ -295,7 +317,10 @@ impl Photons {
     fn new(input: &FitInput<'_>) -> Result<Self, FitProblem> {
         let n = input.times_ns.len();
         if input.energies_gev.len() != n {
-            return Err(FitProblem::LengthMismatch { times: n, energies: input.energies_gev.len() });
+            return Err(FitProblem::LengthMismatch {
+                times: n,
+                energies: input.energies_gev.len(),
+            });
         }
         if n < MIN_PHOTONS {
             return Err(FitProblem::TooFewPhotons { n });
@@ -335,17 +360,33 @@ impl Photons {
         let e_min = input.response.energy_min_gev();
         let e_max = input.response.energy_max_gev();
         if !(e_min.is_finite() && e_min > 0.0) {
-            return Err(FitProblem::BadResponse { what: "energy_min_gev", value: e_min });
+            return Err(FitProblem::BadResponse {
+                what: "energy_min_gev",
+                value: e_min,
+            });
         }
         if !(e_max.is_finite() && e_max > e_min) {
-            return Err(FitProblem::BadResponse { what: "energy_max_gev", value: e_max });
+            return Err(FitProblem::BadResponse {
+                what: "energy_max_gev",
+                value: e_max,
+            });
         }
         for (index, (&t, &e)) in input.times_ns.iter().zip(input.energies_gev).enumerate() {
             if t < start || t > end {
-                return Err(FitProblem::TimeOutsideWindow { index, time_ns: t, start, end });
+                return Err(FitProblem::TimeOutsideWindow {
+                    index,
+                    time_ns: t,
+                    start,
+                    end,
+                });
             }
             if !(e >= e_min && e <= e_max) {
-                return Err(FitProblem::EnergyOutOfRange { index, value: e, min: e_min, max: e_max });
+                return Err(FitProblem::EnergyOutOfRange {
+                    index,
+                    value: e,
+                    min: e_min,
+                    max: e_max,
+                });
             }
         }
         let mut order: Vec<usize> = (0..n).collect();
@@ -355,10 +396,16 @@ impl Photons {
             return Err(FitProblem::AllSameTime { n });
         }
         let energies: Vec<f64> = order.iter().map(|&i| input.energies_gev[i]).collect();
-        let offsets_ns = times_ns.iter().map(|&t| i128::from(t) - i128::from(start)).collect();
+        let offsets_ns = times_ns
+            .iter()
+            .map(|&t| i128::from(t) - i128::from(start))
+            .collect();
         let window_ns = i128::from(end) - i128::from(start);
         let spectrum = PowerLaw::new(index, e_min, e_max);
-        let background = energies.iter().map(|&e| input.background_rate_hz * spectrum.density(e)).collect();
+        let background = energies
+            .iter()
+            .map(|&e| input.background_rate_hz * spectrum.density(e))
+            .collect();
         let delta_ns = input.response.clock_precision_ns().max(1);
         Ok(Self {
             times_ns,
@@ -374,14 +421,14 @@ impl Photons {
         self.times_ns.len()
     }
 
-    /// Time-to-go of photon `i` when t0 is one step after photon `anchor` (i <= anchor), seconds.
-    fn tau_s(&self, i: usize, anchor: usize) -> f64 {
-        (self.offsets_ns[anchor] - self.offsets_ns[i] + i128::from(self.delta_ns)) as f64 * 1e-9
+    /// t0 for `anchor`, ns after the window start.
+    fn t0_ns(&self, anchor: usize) -> i128 {
+        self.offsets_ns[anchor] + i128::from(self.delta_ns)
     }
 
     /// t0 for `anchor`, seconds after the window start.
     fn t0_s(&self, anchor: usize) -> f64 {
-        (self.offsets_ns[anchor] + i128::from(self.delta_ns)) as f64 * 1e-9
+        self.t0_ns(anchor) as f64 * 1e-9
     }
 }
 
@@ -389,7 +436,11 @@ fn check_positive(name: &'static str, value: f64) -> Result<f64, FitProblem> {
     if value.is_finite() && value > 0.0 {
         Ok(value)
     } else {
-        Err(FitProblem::BadArgument { name, value, expected: "a finite number > 0" })
+        Err(FitProblem::BadArgument {
+            name,
+            value,
+            expected: "a finite number > 0",
+        })
     }
 }
 
@@ -448,7 +499,7 @@ impl Cumulative {
 /// Linear interpolation in `values` at fractional index `p`, clamped to the ends (0 for NaN).
 fn interpolate(values: &[f64], p: f64) -> f64 {
     let Some(&last) = values.last() else { return 0.0 };
-    if !(p > 0.0) {
+    if p.is_nan() || p <= 0.0 {
         return values[0];
     }
     let top = (values.len() - 1) as f64;
@@ -483,7 +534,9 @@ impl Model {
         // K = 4.5e35 T1^-3/2: the joint density at tau = 1 s, E = 1 GeV (below the cut-off).
         let k = hawking::joint_density(1.0, 1.0);
         if !(k.is_finite() && k > 0.0) {
-            return Err(FitProblem::NonFinite { what: "the burst's joint density" });
+            return Err(FitProblem::NonFinite {
+                what: "the burst's joint density",
+            });
         }
         let c = input.psf_containment / (4.0 * std::f64::consts::PI * PARSEC_M * PARSEC_M) * k;
 
@@ -495,7 +548,10 @@ impl Model {
         let du = (sigma_lo / 6.0).min(MAX_LN_E_STEP);
         let nodes = ((u1 - u0) / du).ceil() as usize + 1;
         if nodes > MAX_SPECTRUM_NODES {
-            return Err(FitProblem::BadResponse { what: "energy range over resolution", value: nodes as f64 });
+            return Err(FitProblem::BadResponse {
+                what: "energy range over resolution",
+                value: nodes as f64,
+            });
         }
         let (ln_min, ln_max) = (e_min.ln(), e_max.ln());
         let mut integrand = Vec::with_capacity(nodes);
@@ -509,8 +565,10 @@ impl Model {
             integrand.push(area(response, e, input.zenith_deg) * (-0.5 * u).exp() * accept.max(0.0));
         }
         let g = Cumulative::from_samples(u0, du, &integrand);
-        if !(g.total() > 0.0) {
-            return Err(FitProblem::NoAcceptance { zenith_deg: input.zenith_deg });
+        if g.total().is_nan() || g.total() <= 0.0 {
+            return Err(FitProblem::NoAcceptance {
+                zenith_deg: input.zenith_deg,
+            });
         }
 
         // H over ln tau: dH = tau^1/2 G(T1 tau^-1/3) d ln tau, from H(tau_min) = 2 tau_min^1/2 G(...).
@@ -526,7 +584,15 @@ impl Model {
         }
         let h = Cumulative::from_samples(x0, dx, &light);
         let h_start = 2.0 * LIGHT_CURVE_TAU_MIN_S.sqrt() * g.at(ln_t1 - x0 / 3.0);
-        Ok(Self { c, ln_t1, zenith_deg: input.zenith_deg, background_rate: input.background_rate_hz, g, h, h_start })
+        Ok(Self {
+            c,
+            ln_t1,
+            zenith_deg: input.zenith_deg,
+            background_rate: input.background_rate_hz,
+            g,
+            h,
+            h_start,
+        })
     }
 
     /// Cut-off ln(E) of the emission at time-to-go tau: T1 tau^-1/3.
@@ -536,7 +602,7 @@ impl Model {
 
     /// H(tau): the light curve's running integral (without the constant c).
     fn light_curve(&self, tau_s: f64) -> f64 {
-        if !(tau_s > 0.0) {
+        if tau_s.is_nan() || tau_s <= 0.0 {
             return 0.0;
         }
         if tau_s < LIGHT_CURVE_TAU_MIN_S {
@@ -560,7 +626,11 @@ fn area(response: &InstrumentResponse, e_gev: f64, zenith_deg: f64) -> f64 {
 
 fn sigma_at(response: &InstrumentResponse, e_gev: f64) -> f64 {
     let s = response.energy_sigma_ln(e_gev);
-    if s.is_finite() { s.clamp(MIN_SIGMA_LN, MAX_SIGMA_LN) } else { MAX_SIGMA_LN }
+    if s.is_finite() {
+        s.clamp(MIN_SIGMA_LN, MAX_SIGMA_LN)
+    } else {
+        MAX_SIGMA_LN
+    }
 }
 
 /// Smallest and largest energy resolution over the range, scanned on a log grid.
@@ -573,7 +643,14 @@ fn sigma_range(response: &InstrumentResponse, e_min: f64, e_max: f64) -> Result<
         lo = lo.min(s);
         hi = hi.max(s);
     }
-    if lo.is_finite() && lo > 0.0 { Ok((lo, hi)) } else { Err(FitProblem::BadResponse { what: "energy_sigma_ln", value: lo }) }
+    if lo.is_finite() && lo > 0.0 {
+        Ok((lo, hi))
+    } else {
+        Err(FitProblem::BadResponse {
+            what: "energy_sigma_ln",
+            value: lo,
+        })
+    }
 }
 
 /// Each photon's folded spectrum F_i(E_cut) = integral_0^E_cut A(E') E'^-3/2 R(E_i | E') dE', tabulated over
@@ -603,7 +680,9 @@ impl PhotonCurves {
                 let s = sigma_at(input.response, e_true);
                 let z = (x - u) / s;
                 // R(E | E') in E: phi(z) / (s E); times A E'^-3/2 dE' = A E'^-1/2 du.
-                *slot = area(input.response, e_true, model.zenith_deg) * (-0.5 * u).exp() * inv_sqrt_2pi
+                *slot = area(input.response, e_true, model.zenith_deg)
+                    * (-0.5 * u).exp()
+                    * inv_sqrt_2pi
                     * (-0.5 * z * z).exp()
                     / (s * e);
             }
@@ -613,7 +692,9 @@ impl PhotonCurves {
             values.extend_from_slice(&table.values);
         }
         if values.iter().any(|v| !v.is_finite()) {
-            return Err(FitProblem::NonFinite { what: "the folded burst spectrum" });
+            return Err(FitProblem::NonFinite {
+                what: "the folded burst spectrum",
+            });
         }
         Ok(Self { x0, dx, values })
     }
@@ -644,26 +725,40 @@ impl Search<'_> {
     /// The last photon of each group of equal times: the candidate anchors of t0, in time order.
     fn anchors(&self) -> Vec<usize> {
         let t = &self.photons.times_ns;
-        (0..t.len()).filter(|&j| j + 1 == t.len() || t[j + 1] != t[j]).collect()
+        (0..t.len())
+            .filter(|&j| j + 1 == t.len() || t[j + 1] != t[j])
+            .collect()
     }
 
-    /// Fills `ratios` with r_i = signal density at q = 1 over background density for photons up to the
-    /// anchor, and returns the expected signal counts at q = 1.
-    fn ratios(&self, anchor: usize, ratios: &mut Vec<f64>) -> f64 {
+    /// Fills `ratios` with r_i = signal density at q = 1 over background density for the photons before t0
+    /// (`t0_ns` after the window start), and returns the expected signal counts at q = 1.
+    fn ratios_at(&self, t0_ns: i128, ratios: &mut Vec<f64>) -> f64 {
         let p = self.photons;
+        let signal = p.offsets_ns.partition_point(|&t| t < t0_ns);
         ratios.clear();
-        for i in 0..=anchor {
-            let tau = p.tau_s(i, anchor);
+        for i in 0..signal {
+            let tau = (t0_ns - p.offsets_ns[i]) as f64 * 1e-9;
             let h = self.model.c * self.curves.at(i, self.model.ln_cut(tau)) / tau.sqrt();
             ratios.push(h / p.background[i]);
         }
-        self.model.signal_before(p.t0_s(anchor), p.window_s, p.window_s)
+        self.model
+            .signal_before(t0_ns as f64 * 1e-9, p.window_s, p.window_s)
+    }
+
+    /// `ratios_at` with t0 one time-resolution step after photon `anchor`.
+    fn ratios(&self, anchor: usize, ratios: &mut Vec<f64>) -> f64 {
+        self.ratios_at(self.photons.t0_ns(anchor), ratios)
     }
 
     fn fit_anchor(&self, anchor: usize, scratch: &mut Vec<f64>) -> Result<AnchorFit, FitProblem> {
         let norm = self.ratios(anchor, scratch);
         let q = best_strength(scratch, norm)?;
-        Ok(AnchorFit { anchor, q, ln_l: ln_likelihood(scratch, norm, q), norm })
+        Ok(AnchorFit {
+            anchor,
+            q,
+            ln_l: ln_likelihood(scratch, norm, q),
+            norm,
+        })
     }
 
     /// The 90% interval on q from the profile over anchors: the hull of each anchor's interval where its ln L
@@ -686,14 +781,20 @@ impl Search<'_> {
             let level = |q: f64| ln_likelihood(r, norm, q) - target;
             // Lower end: only if this anchor is still above the target at the current lower end.
             if q_lo > 0.0 && (q_lo > f.q || level(q_lo.min(f.q)) > 0.0) {
-                q_lo = q_lo.min(if level(0.0) >= 0.0 { 0.0 } else { lower_crossing(r, norm, target, f.q)? });
+                q_lo = q_lo.min(if level(0.0) >= 0.0 {
+                    0.0
+                } else {
+                    lower_crossing(r, norm, target, f.q)?
+                });
             }
             if q_hi < f.q || level(q_hi) > 0.0 {
                 q_hi = q_hi.max(upper_crossing(r, norm, target, f.q)?);
             }
         }
-        if !(q_hi > 0.0 && q_hi.is_finite()) || !(q_lo.is_finite()) {
-            return Err(FitProblem::NonFinite { what: "the distance interval" });
+        if !(q_hi > 0.0 && q_hi.is_finite() && q_lo.is_finite()) {
+            return Err(FitProblem::NonFinite {
+                what: "the distance interval",
+            });
         }
         Ok((q_lo, q_hi))
     }
@@ -705,7 +806,11 @@ impl Search<'_> {
         let anchor_ns = p.times_ns[best.anchor];
         let total = self.model.background_rate * p.window_s + best.q * best.norm;
         let cdf = |t: f64| {
-            let signal = if t0 > 0.0 { best.q * self.model.signal_before(t0, p.window_s, t) } else { 0.0 };
+            let signal = if t0 > 0.0 {
+                best.q * self.model.signal_before(t0, p.window_s, t)
+            } else {
+                0.0
+            };
             ((self.model.background_rate * t + signal) / total).clamp(0.0, 1.0)
         };
         let sample: Vec<f64> = p
@@ -740,7 +845,9 @@ fn derivatives(ratios: &[f64], norm: f64, q: f64) -> (f64, f64) {
 /// the slope, which lies below m / S (each term r/(1 + q r) < 1/q).
 fn best_strength(ratios: &[f64], norm: f64) -> Result<f64, FitProblem> {
     if !(norm > 0.0 && norm.is_finite()) {
-        return Err(FitProblem::NonFinite { what: "the expected burst counts" });
+        return Err(FitProblem::NonFinite {
+            what: "the expected burst counts",
+        });
     }
     if derivatives(ratios, norm, 0.0).0 <= 0.0 {
         return Ok(0.0);
@@ -752,7 +859,12 @@ fn best_strength(ratios: &[f64], norm: f64) -> Result<f64, FitProblem> {
 /// The q in [0, q_best] where `ln_likelihood` falls to `target` (it rises on that side).
 fn lower_crossing(ratios: &[f64], norm: f64, target: f64, q_best: f64) -> Result<f64, FitProblem> {
     solve(
-        |q| (ln_likelihood(ratios, norm, q) - target, derivatives(ratios, norm, q).0),
+        |q| {
+            (
+                ln_likelihood(ratios, norm, q) - target,
+                derivatives(ratios, norm, q).0,
+            )
+        },
         0.0,
         q_best,
         "the distance interval's far end",
@@ -776,10 +888,17 @@ fn upper_crossing(ratios: &[f64], norm: f64, target: f64, q_best: f64) -> Result
         hi *= 2.0;
     }
     if !found {
-        return Err(FitProblem::NoConvergence { what: "bracketing the distance interval's near end" });
+        return Err(FitProblem::NoConvergence {
+            what: "bracketing the distance interval's near end",
+        });
     }
     solve(
-        |q| (ln_likelihood(ratios, norm, q) - target, derivatives(ratios, norm, q).0),
+        |q| {
+            (
+                ln_likelihood(ratios, norm, q) - target,
+                derivatives(ratios, norm, q).0,
+            )
+        },
         lo,
         hi,
         "the distance interval's near end",
@@ -789,12 +908,7 @@ fn upper_crossing(ratios: &[f64], norm: f64, target: f64, q_best: f64) -> Result
 /// Root of a monotone function on [lo, hi] whose values at the ends differ in sign: Newton steps, with
 /// bisection whenever a step leaves the bracket or fails to halve it (Press et al., Numerical Recipes,
 /// `rtsafe`). At most `MAX_SOLVER_ITERATIONS` steps.
-fn solve(
-    f: impl Fn(f64) -> (f64, f64),
-    lo: f64,
-    hi: f64,
-    what: &'static str,
-) -> Result<f64, FitProblem> {
+fn solve(f: impl Fn(f64) -> (f64, f64), lo: f64, hi: f64, what: &'static str) -> Result<f64, FitProblem> {
     let (f_lo, _) = f(lo);
     let (f_hi, _) = f(hi);
     if !(f_lo.is_finite() && f_hi.is_finite()) {
@@ -867,7 +981,7 @@ fn ks_p_value_of_cdf_values(values: &[f64]) -> f64 {
 /// 2 sum (-1)^(k-1) exp(-2 k^2 lambda^2) for lambda >= 1.18, and for smaller lambda its Jacobi-theta dual
 /// 1 - sqrt(2 pi)/lambda sum exp(-(2k-1)^2 pi^2 / (8 lambda^2)), which converges fast there.
 fn kolmogorov_sf(lambda: f64) -> f64 {
-    if !(lambda > 0.0) {
+    if lambda.is_nan() || lambda <= 0.0 {
         return 1.0;
     }
     let mut sum = 0.0;
@@ -900,13 +1014,182 @@ fn kolmogorov_sf(lambda: f64) -> f64 {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use glint_science::instrument::{AreaTable, CurveTable, ResponseSpec};
+
+    /// An invented ground-array response (for tests of the fit's arithmetic, not a check value).
+    fn response(sigma_ln: f64, clock_precision_ns: i64) -> InstrumentResponse {
+        let energy = vec![300.0, 1e3, 1e4, 1e5];
+        InstrumentResponse::from_spec(&ResponseSpec {
+            max_zenith_deg: 45.0,
+            energy_min_gev: 300.0,
+            energy_max_gev: 1e5,
+            effective_area: AreaTable {
+                energy_gev: energy.clone(),
+                zenith_deg: vec![0.0, 45.0],
+                area_m2: vec![vec![300.0, 2e3, 1.2e4, 3e4], vec![50.0, 500.0, 5e3, 1.5e4]],
+            },
+            psf68_deg: CurveTable {
+                energy_gev: energy.clone(),
+                value: vec![1.5, 0.8, 0.3, 0.2],
+            },
+            energy_resolution: CurveTable {
+                energy_gev: energy,
+                value: vec![sigma_ln; 4],
+            },
+            systematic_deg: 0.0,
+            clock_precision_ns,
+        })
+        .unwrap()
+    }
+
+    const S: i64 = 1_000_000_000;
+    const START: i64 = 1_000 * S;
+
+    /// A deterministic burst: `burst` photons at the quantiles of the tau^-1/2 law over the 20 s before t0 =
+    /// START + 20 s, energies cycling below the cut-off, plus background photons every `spacing_ns` over
+    /// the 30 s window at 350 GeV.
+    fn photons(burst: u32, spacing_ns: i64) -> (Vec<i64>, Vec<f64>) {
+        let t0 = START + 20 * S;
+        let mut times = Vec::new();
+        let mut energies = Vec::new();
+        for k in 0..burst {
+            let u = (f64::from(k) + 0.5) / f64::from(burst);
+            times.push(t0 - (20e9 * u * u) as i64);
+            energies.push([400.0, 700.0, 1200.0, 2500.0][k as usize % 4]);
+        }
+        let mut t = START + spacing_ns / 3;
+        while t <= START + 30 * S {
+            times.push(t);
+            energies.push(350.0);
+            t += spacing_ns;
+        }
+        (times, energies)
+    }
+
+    fn input<'a>(times: &'a [i64], energies: &'a [f64], response: &'a InstrumentResponse) -> FitInput<'a> {
+        FitInput {
+            times_ns: times,
+            energies_gev: energies,
+            zenith_deg: 10.0,
+            response,
+            background_rate_hz: 2.0,
+            background_spectral_index: 2.7,
+            window_start_ns: START,
+            window_end_ns: START + 30 * S,
+            psf_containment: 0.68,
+        }
+    }
+
+    #[test]
+    fn expected_counts_match_the_exact_fold_when_dispersion_is_small() {
+        // [calc] from the formula: with sigma(ln E) = 0.01 the folded expected counts must equal
+        // psf_containment x hawking::detected_counts_between (an exact power-law fold, no dispersion) to
+        // within the edge losses of the resolution (0.04% here), for several time spans.
+        let resp = response(0.01, 1);
+        let (times, energies) = photons(40, S);
+        let inp = input(&times, &energies, &resp);
+        let p = Photons::new(&inp).unwrap();
+        let m = Model::new(&inp, &p).unwrap();
+        for (t0_s, span_s) in [(30.0, 30.0), (30.0, 1.0), (20.0, 20.0), (30.0, 0.01)] {
+            let ours = m.signal_before(t0_s, 30.0, 30.0) - m.signal_before(t0_s, 30.0, t0_s - span_s);
+            let exact = 0.68 * hawking::detected_counts_between(&resp, 10.0, 1.0, 0.0, span_s).unwrap();
+            assert!(
+                (ours / exact - 1.0).abs() < 0.003,
+                "span {span_s} s: {ours} vs {exact}"
+            );
+        }
+    }
+
+    #[test]
+    fn likelihood_falls_between_photon_times_so_anchors_suffice() {
+        // The claim that lets the search stop at anchors: within a gap between photon times, the profile
+        // of ln L over q strictly decreases as t0 moves later.
+        let resp = response(0.4, 10);
+        let (times, energies) = photons(40, S);
+        let inp = input(&times, &energies, &resp);
+        let p = Photons::new(&inp).unwrap();
+        let m = Model::new(&inp, &p).unwrap();
+        let c = PhotonCurves::new(&inp, &p, &m).unwrap();
+        let search = Search {
+            photons: &p,
+            model: &m,
+            curves: &c,
+        };
+        let mut scratch = Vec::new();
+        let mut gaps = 0;
+        for j in 0..p.len() - 1 {
+            let (a, b) = (p.t0_ns(j), p.offsets_ns[j + 1]);
+            if b - a < 100 {
+                continue;
+            }
+            gaps += 1;
+            let mut previous = f64::INFINITY;
+            for k in 0..=10 {
+                let t0 = a + (b - a) * k / 10;
+                let norm = search.ratios_at(t0, &mut scratch);
+                let q = best_strength(&scratch, norm).unwrap();
+                let ln_l = ln_likelihood(&scratch, norm, q);
+                assert!(
+                    ln_l < previous || (ln_l == 0.0 && previous == 0.0),
+                    "gap {j}, step {k}: {ln_l} >= {previous}"
+                );
+                previous = ln_l;
+            }
+        }
+        assert!(gaps > 50, "only {gaps} gaps tried");
+    }
+
+    #[test]
+    fn anchor_choice_does_not_depend_on_the_time_resolution() {
+        // The constant -ln(delta)/2 of the anchor's term is common to all anchors: 1 ns and 1 us clocks
+        // pick the same anchor, and the distance moves only through the tiny change of t0.
+        let (times, energies) = photons(40, S);
+        let fine = response(0.4, 1);
+        let coarse = response(0.4, 1000);
+        let a = fit_evaporation(&input(&times, &energies, &fine));
+        let b = fit_evaporation(&input(&times, &energies, &coarse));
+        assert!(a.converged && b.converged, "{} / {}", a.reason, b.reason);
+        assert_eq!(a.explosion_ns + 999, b.explosion_ns);
+        assert!(
+            (a.distance_pc / b.distance_pc - 1.0).abs() < 1e-3,
+            "{} vs {}",
+            a.distance_pc,
+            b.distance_pc
+        );
+        assert!((a.distance_pc_hi / b.distance_pc_hi - 1.0).abs() < 1e-3);
+    }
+
+    #[test]
+    fn coarse_to_fine_search_finds_the_exhaustive_optimum() {
+        // 300 burst photons and 1500 background photons: more distinct times than FULL_SEARCH_MAX.
+        let (times, energies) = photons(300, 20_000_000);
+        assert!(times.len() > FULL_SEARCH_MAX);
+        let resp = response(0.4, 10);
+        let inp = input(&times, &energies, &resp);
+        let quick = fit(&inp, FULL_SEARCH_MAX).unwrap();
+        let full = fit(&inp, usize::MAX).unwrap();
+        assert_eq!(quick, full);
+        // The burst's last photon is 20e9 * (0.5/300)^2 ns = 55.6 us before t0 (the 10 ns step after it).
+        assert!(
+            (quick.explosion_ns - (START + 20 * S)).abs() < 100_000,
+            "{}",
+            quick.explosion_ns
+        );
+    }
 
     #[test]
     fn kolmogorov_distribution_matches_tabulated_points() {
         // From memory: the asymptotic Kolmogorov critical values 1.2238, 1.3581, 1.6276 at 10%, 5%, 1%
         // (Smirnov 1948, Ann. Math. Stat. 19, 279), the median 0.8276 and Q(1) = 0.2700; both branches of
         // the series are exercised (the switch is at 1.18).
-        for (lambda, q) in [(0.5, 0.963_945), (0.8276, 0.5), (1.0, 0.270_000), (1.2238, 0.1), (1.3581, 0.05), (1.6276, 0.01)] {
+        for (lambda, q) in [
+            (0.5, 0.963_945),
+            (0.8276, 0.5),
+            (1.0, 0.270_000),
+            (1.2238, 0.1),
+            (1.3581, 0.05),
+            (1.6276, 0.01),
+        ] {
             let got = kolmogorov_sf(lambda);
             assert!((got - q).abs() < 2e-4, "Q_KS({lambda}) = {got}, expected {q}");
         }

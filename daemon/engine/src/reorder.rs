@@ -87,7 +87,11 @@ impl Reorder {
 
     /// Pops the oldest pending photon if it is older than `limit`.
     pub(crate) fn pop_before(&mut self, limit: i64) -> Option<Photon> {
-        if self.heap.peek().is_some_and(|p| p.0.t < limit) { self.heap.pop().map(|p| p.0) } else { None }
+        if self.heap.peek().is_some_and(|p| p.0.t < limit) {
+            self.heap.pop().map(|p| p.0)
+        } else {
+            None
+        }
     }
 
     /// Photons waiting.
@@ -101,7 +105,14 @@ mod tests {
     use super::*;
 
     fn ph(t: i64, ra: f64) -> Photon {
-        Photon { t, ra, dec: 0.0, energy: 1.0, zenith: 10.0, azimuth: 0.0 }
+        Photon {
+            t,
+            ra,
+            dec: 0.0,
+            energy: 1.0,
+            zenith: 10.0,
+            azimuth: 0.0,
+        }
     }
 
     #[test]

@@ -1,8 +1,9 @@
 //! Sky index: the photons of the last (longest timescale + pre-window), bucketed by HEALPix nested pixel at a
 //! depth whose pixels are at least as wide as the search radius, so a seed's disc lies inside its own pixel
 //! and the 8 (or 7) neighbours. Only active pixels exist; each keeps its photons in release (time) order, so a
-//! seed walks back from the newest photon and stops at the longest timescale. Memory: about 68 bytes per held
-//! photon plus one bucket per active pixel, i.e. it grows with (event rate x retention), never with uptime.
+//! seed walks back from the newest photon and stops at the longest timescale. Memory: 72 bytes per held photon
+//! (32 in its pixel, 40 in the release-order ring) plus about 450 bytes per active pixel, i.e. it grows with
+//! (event rate x retention), never with uptime.
 
 use std::collections::{HashMap, VecDeque};
 use std::hash::{BuildHasherDefault, Hasher};
@@ -30,19 +31,107 @@ pub(crate) struct Cold {
 
 impl Cold {
     pub(crate) fn photon(&self, t: i64) -> Photon {
-        Photon { t, ra: self.ra, dec: self.dec, energy: self.energy, zenith: self.zenith, azimuth: self.azimuth }
+        Photon {
+            t,
+            ra: self.ra,
+            dec: self.dec,
+            energy: self.energy,
+            zenith: self.zenith,
+            azimuth: self.azimuth,
+        }
     }
 }
 
-/// One active pixel.
-#[derive(Debug, Default)]
+/// Marks an inactive neighbour in a bucket's neighbour cache.
+const NONE: u32 = u32::MAX;
+
+/// What a seed reads of one active pixel, kept in one cache line: its photons' times and directions and the
+/// buckets of its active neighbours.
+#[derive(Debug)]
+#[repr(align(64))]
 pub(crate) struct Bucket {
+    pub(crate) hot: VecDeque<Hot>,
+    /// Bucket of each neighbouring pixel (same order as `Meta::neigh`), NONE when that pixel is inactive.
+    nslots: [u32; 8],
+}
+
+/// The rest of an active pixel.
+#[derive(Debug, Default)]
+struct Meta {
     pix: u64,
     /// Neighbouring pixels (8, or 7 at some base-cell corners), computed once when the bucket opens.
     neigh: [u64; 8],
     n_neigh: u8,
-    pub(crate) hot: VecDeque<Hot>,
-    pub(crate) cold: VecDeque<Cold>,
+}
+
+/// A held photon in release order: its bucket and the columns the seeded test does not read.
+#[derive(Debug, Clone, Copy)]
+struct Entry {
+    t: i64,
+    slot: u32,
+    cold: Cold,
+}
+
+/// Pixel number -> bucket. A flat table when the depth has at most 2^20 pixels (4 MiB; search radii above
+/// about 0.2 degrees), a hash map otherwise; lookups only, never iterated into an output.
+#[derive(Debug)]
+enum PixMap {
+    Dense { slots: Vec<u32>, len: usize },
+    Hashed(HashMap<u64, u32, BuildHasherDefault<PixHasher>>),
+}
+
+impl PixMap {
+    fn new(depth: u8) -> Self {
+        let n = cdshealpix::n_hash(depth);
+        if n <= 1 << 20 {
+            Self::Dense { slots: vec![NONE; n as usize], len: 0 }
+        } else {
+            Self::Hashed(HashMap::default())
+        }
+    }
+    #[inline]
+    fn get(&self, pix: u64) -> Option<u32> {
+        match self {
+            Self::Dense { slots, .. } => slots.get(pix as usize).copied().filter(|&s| s != NONE),
+            Self::Hashed(m) => m.get(&pix).copied(),
+        }
+    }
+    fn insert(&mut self, pix: u64, slot: u32) {
+        match self {
+            Self::Dense { slots, len } => {
+                if let Some(x) = slots.get_mut(pix as usize) {
+                    if *x == NONE {
+                        *len += 1;
+                    }
+                    *x = slot;
+                }
+            }
+            Self::Hashed(m) => {
+                m.insert(pix, slot);
+            }
+        }
+    }
+    fn remove(&mut self, pix: u64) {
+        match self {
+            Self::Dense { slots, len } => {
+                if let Some(x) = slots.get_mut(pix as usize) {
+                    if *x != NONE {
+                        *len -= 1;
+                    }
+                    *x = NONE;
+                }
+            }
+            Self::Hashed(m) => {
+                m.remove(&pix);
+            }
+        }
+    }
+    fn len(&self) -> usize {
+        match self {
+            Self::Dense { len, .. } => *len,
+            Self::Hashed(m) => m.len(),
+        }
+    }
 }
 
 /// Multiplicative hasher for pixel numbers: lookups only, never iterated, so its order reaches no output.
@@ -90,7 +179,11 @@ pub(crate) fn radec_of(v: [f64; 3]) -> (f64, f64) {
 
 /// Angle between two unit vectors, degrees (stable at small angles).
 pub(crate) fn angle_deg(a: [f64; 3], b: [f64; 3]) -> f64 {
-    let c = [a[1] * b[2] - a[2] * b[1], a[2] * b[0] - a[0] * b[2], a[0] * b[1] - a[1] * b[0]];
+    let c = [
+        a[1] * b[2] - a[2] * b[1],
+        a[2] * b[0] - a[0] * b[2],
+        a[0] * b[1] - a[1] * b[0],
+    ];
     let s = (c[0] * c[0] + c[1] * c[1] + c[2] * c[2]).sqrt();
     let d = a[0] * b[0] + a[1] * b[1] + a[2] * b[2];
     s.atan2(d).to_degrees()
@@ -101,10 +194,15 @@ pub(crate) struct SkyIndex {
     layer: &'static Layer,
     depth: u8,
     buckets: Vec<Bucket>,
+    meta: Vec<Meta>,
+    /// Per bucket, per neighbour: its centre (unit vector) and the cosine of (search radius + its bounding
+    /// radius); a seed whose dot product with the centre is below that cannot reach into the neighbour.
+    geo: Vec<[[f64; 4]; 8]>,
+    radius_rad: f64,
     free: Vec<u32>,
-    map: HashMap<u64, u32, BuildHasherDefault<PixHasher>>,
-    /// Bucket of every held photon in release order: the front is the oldest photon of the whole index.
-    fifo: VecDeque<u32>,
+    map: PixMap,
+    /// Every held photon in release order: the front is the oldest photon of the whole index.
+    fifo: VecDeque<Entry>,
     scratch: Vec<u64>,
 }
 
@@ -122,7 +220,11 @@ impl std::fmt::Debug for SkyIndex {
 /// and its neighbours (cdshealpix `best_starting_depth`). Radii are limited to 10 degrees by the config.
 pub(crate) fn depth_for_radius(radius_deg: f64) -> u8 {
     let r = radius_deg.to_radians();
-    if cdshealpix::has_best_starting_depth(r) { cdshealpix::best_starting_depth(r) } else { 0 }
+    if cdshealpix::has_best_starting_depth(r) {
+        cdshealpix::best_starting_depth(r)
+    } else {
+        0
+    }
 }
 
 impl SkyIndex {
@@ -132,8 +234,11 @@ impl SkyIndex {
             layer: nested::get(depth),
             depth,
             buckets: Vec::new(),
+            meta: Vec::new(),
+            geo: Vec::new(),
+            radius_rad: radius_deg.to_radians(),
             free: Vec::new(),
-            map: HashMap::default(),
+            map: PixMap::new(depth),
             fifo: VecDeque::new(),
             scratch: Vec::with_capacity(8),
         }
@@ -153,27 +258,22 @@ impl SkyIndex {
 
     /// Pixel of a direction in degrees.
     pub(crate) fn pixel(&self, ra_deg: f64, dec_deg: f64) -> u64 {
-        let lat = dec_deg.to_radians().clamp(-std::f64::consts::FRAC_PI_2, std::f64::consts::FRAC_PI_2);
+        let lat = dec_deg
+            .to_radians()
+            .clamp(-std::f64::consts::FRAC_PI_2, std::f64::consts::FRAC_PI_2);
         self.layer.hash(ra_deg.to_radians(), lat)
     }
 
     /// Adds a photon (in release order); returns its bucket.
     pub(crate) fn insert(&mut self, p: &Photon, v: [f64; 3]) -> u32 {
         let pix = self.pixel(p.ra, p.dec);
-        let slot = match self.map.get(&pix) {
-            Some(&s) => s,
+        let slot = match self.map.get(pix) {
+            Some(s) => s,
             None => self.open(pix),
         };
-        let b = &mut self.buckets[slot as usize];
-        b.hot.push_back(Hot { t: p.t, v });
-        b.cold.push_back(Cold {
-            ra: p.ra,
-            dec: p.dec,
-            energy: p.energy,
-            zenith: p.zenith,
-            azimuth: p.azimuth,
-        });
-        self.fifo.push_back(slot);
+        self.buckets[slot as usize].hot.push_back(Hot { t: p.t, v });
+        let cold = Cold { ra: p.ra, dec: p.dec, energy: p.energy, zenith: p.zenith, azimuth: p.azimuth };
+        self.fifo.push_back(Entry { t: p.t, slot, cold });
         slot
     }
 
@@ -186,45 +286,92 @@ impl SkyIndex {
         let slot = match self.free.pop() {
             Some(s) => s,
             None => {
-                self.buckets.push(Bucket::default());
+                self.buckets.push(Bucket {
+                    hot: VecDeque::new(),
+                    nslots: [NONE; 8],
+                });
+                self.meta.push(Meta::default());
+                self.geo.push([[0.0; 4]; 8]);
                 (self.buckets.len() - 1) as u32
             }
         };
-        let b = &mut self.buckets[slot as usize];
-        b.pix = pix;
-        b.neigh = neigh;
-        b.n_neigh = n as u8;
+        let mut geo = [[0.0, 0.0, 0.0, 2.0]; 8];
+        for (g, &q) in geo.iter_mut().zip(&neigh[..n]) {
+            let (lon, lat) = self.layer.center(q);
+            let (sl, cl) = lat.sin_cos();
+            let (so, co) = lon.sin_cos();
+            // An upper bound on the cell's centre-to-vertex distance (cdshealpix), with 1% to spare.
+            let bound = cdshealpix::largest_center_to_vertex_distance(self.depth, lon, lat) * 1.01;
+            let reach = self.radius_rad + bound;
+            let cos_reach = if reach >= std::f64::consts::PI { -2.0 } else { reach.cos() };
+            *g = [cl * co, cl * so, sl, cos_reach];
+        }
+        self.geo[slot as usize] = geo;
+        let m = &mut self.meta[slot as usize];
+        m.pix = pix;
+        m.neigh = neigh;
+        m.n_neigh = n as u8;
+        // Link both ways with the active neighbours (HEALPix 8-neighbourhoods are symmetric; checked in the
+        // tests over every pixel of several depths).
+        let mut nslots = [NONE; 8];
+        for (i, q) in neigh[..n].iter().enumerate() {
+            if let Some(qs) = self.map.get(*q) {
+                nslots[i] = qs;
+                self.set_link(qs, pix, slot);
+            }
+        }
+        self.buckets[slot as usize].nslots = nslots;
         self.map.insert(pix, slot);
         slot
     }
 
+    /// In bucket `of`, points the neighbour entry of pixel `pix` at `to`.
+    fn set_link(&mut self, of: u32, pix: u64, to: u32) {
+        let m = &self.meta[of as usize];
+        if let Some(i) = m.neigh[..usize::from(m.n_neigh)].iter().position(|&q| q == pix) {
+            self.buckets[of as usize].nslots[i] = to;
+        }
+    }
+
+    fn close(&mut self, slot: u32) {
+        let pix = self.meta[slot as usize].pix;
+        let nslots = self.buckets[slot as usize].nslots;
+        for qs in nslots {
+            if qs != NONE {
+                self.set_link(qs, pix, NONE);
+            }
+        }
+        self.buckets[slot as usize].nslots = [NONE; 8];
+        self.map.remove(pix);
+        self.free.push(slot);
+    }
+
     /// Drops every photon older than `t_min`; empty pixels are closed and their buckets reused.
     pub(crate) fn evict_before(&mut self, t_min: i64) {
-        while let Some(&slot) = self.fifo.front() {
-            let b = &mut self.buckets[slot as usize];
-            match b.hot.front() {
-                Some(h) if h.t < t_min => {}
-                _ => break,
+        while let Some(e) = self.fifo.front() {
+            if e.t >= t_min {
+                break;
             }
-            b.hot.pop_front();
-            b.cold.pop_front();
+            let slot = e.slot;
             self.fifo.pop_front();
+            let b = &mut self.buckets[slot as usize];
+            b.hot.pop_front();
             if b.hot.is_empty() {
-                let pix = b.pix;
-                self.map.remove(&pix);
-                self.free.push(slot);
+                self.close(slot);
             }
         }
     }
 
-    /// Buckets that may hold photons within the search radius of a photon in bucket `slot`: that bucket
-    /// first, then its active neighbours. Returns how many entries of `out` were filled.
-    pub(crate) fn neighbourhood(&self, slot: u32, out: &mut [u32; 9]) -> usize {
+    /// Buckets that may hold photons within the search radius of direction `v` in bucket `slot`: that
+    /// bucket first, then the active neighbours the disc can reach. Returns how many entries of `out` were
+    /// filled.
+    pub(crate) fn neighbourhood(&self, slot: u32, v: [f64; 3], out: &mut [u32; 9]) -> usize {
         out[0] = slot;
-        let b = &self.buckets[slot as usize];
         let mut n = 1;
-        for &p in &b.neigh[..b.n_neigh as usize] {
-            if let Some(&s) = self.map.get(&p) {
+        let geo = &self.geo[slot as usize];
+        for (i, &s) in self.buckets[slot as usize].nslots.iter().enumerate() {
+            let g = &geo[i];
+            if s != NONE && g[0] * v[0] + g[1] * v[1] + g[2] * v[2] >= g[3] {
                 out[n] = s;
                 n += 1;
             }
@@ -234,6 +381,18 @@ impl SkyIndex {
 
     pub(crate) fn bucket(&self, slot: u32) -> &Bucket {
         &self.buckets[slot as usize]
+    }
+
+    /// The columns of a held photon the test does not read, found by its time in the release-order ring
+    /// (rare path: crossings and new candidates only). Photons of equal time are told apart by bucket and
+    /// direction.
+    pub(crate) fn cold_of(&self, slot: u32, h: &Hot) -> Option<Cold> {
+        let start = self.fifo.partition_point(|e| e.t < h.t);
+        self.fifo
+            .range(start..)
+            .take_while(|e| e.t == h.t)
+            .find(|e| e.slot == slot && unit_vector(e.cold.ra, e.cold.dec) == h.v)
+            .map(|e| e.cold)
     }
 
     /// Calls `f` for every held photon with time >= `t_from` within `radius_deg` (approximate pixel cover,
@@ -246,15 +405,19 @@ impl SkyIndex {
         t_from: i64,
         mut f: impl FnMut(&Hot, &Cold),
     ) {
-        let lat = dec_deg.to_radians().clamp(-std::f64::consts::FRAC_PI_2, std::f64::consts::FRAC_PI_2);
+        let lat = dec_deg
+            .to_radians()
+            .clamp(-std::f64::consts::FRAC_PI_2, std::f64::consts::FRAC_PI_2);
         let radius = radius_deg.to_radians().min(std::f64::consts::PI);
         let cover = self.layer.cone_coverage_approx(ra_deg.to_radians(), lat, radius);
         for pix in cover.flat_iter() {
-            if let Some(&s) = self.map.get(&pix) {
-                let b = &self.buckets[s as usize];
-                let start = b.hot.partition_point(|h| h.t < t_from);
-                for i in start..b.hot.len() {
-                    f(&b.hot[i], &b.cold[i]);
+            if let Some(s) = self.map.get(pix) {
+                let hot = &self.buckets[s as usize].hot;
+                let start = hot.partition_point(|h| h.t < t_from);
+                for h in hot.range(start..) {
+                    if let Some(c) = self.cold_of(s, h) {
+                        f(h, &c);
+                    }
                 }
             }
         }
@@ -266,7 +429,14 @@ mod tests {
     use super::*;
 
     fn ph(t: i64, ra: f64, dec: f64) -> Photon {
-        Photon { t, ra, dec, energy: 1.0, zenith: 10.0, azimuth: 0.0 }
+        Photon {
+            t,
+            ra,
+            dec,
+            energy: 1.0,
+            zenith: 10.0,
+            azimuth: 0.0,
+        }
     }
 
     #[test]
@@ -275,9 +445,14 @@ mod tests {
         for r in [0.05, 0.2, 0.5, 1.0, 3.0, 10.0] {
             let d = depth_for_radius(r);
             let nside = f64::from(1u32 << d);
-            let spacing = (4.0 * std::f64::consts::PI / (12.0 * nside * nside)).sqrt().to_degrees();
+            let spacing = (4.0 * std::f64::consts::PI / (12.0 * nside * nside))
+                .sqrt()
+                .to_degrees();
             assert!(spacing >= r, "radius {r}: depth {d} spacing {spacing}");
-            assert!(spacing < 4.0 * r, "radius {r}: depth {d} needlessly coarse ({spacing})");
+            assert!(
+                spacing < 4.0 * r,
+                "radius {r}: depth {d} needlessly coarse ({spacing})"
+            );
         }
     }
 
@@ -299,13 +474,16 @@ mod tests {
                 pts.push(v);
             }
         }
+        check_links(&idx);
+        idx.evict_before(4000);
+        check_links(&idx);
         // Seeds near many pixels, including near the poles and base-cell corners.
         let cos_r = r.to_radians().cos();
         let mut slots = [0u32; 9];
-        for (k, seed) in pts.iter().enumerate().step_by(37) {
+        for (k, seed) in pts.iter().enumerate().skip(4000).step_by(37) {
             let (ra, dec) = radec_of(*seed);
-            let slot = idx.map[&idx.pixel(ra, dec)];
-            let n = idx.neighbourhood(slot, &mut slots);
+            let slot = idx.map.get(idx.pixel(ra, dec)).unwrap();
+            let n = idx.neighbourhood(slot, *seed, &mut slots);
             let mut found = 0;
             for &s in &slots[..n] {
                 for h in &idx.bucket(s).hot {
@@ -314,13 +492,55 @@ mod tests {
                     }
                 }
             }
-            let brute = pts.iter().filter(|v| dot(**v, *seed) >= cos_r).count();
+            let brute = pts[4000..].iter().filter(|v| dot(**v, *seed) >= cos_r).count();
             assert_eq!(found, brute, "seed {k} at ({ra}, {dec})");
         }
     }
 
     fn dot(a: [f64; 3], b: [f64; 3]) -> f64 {
         a[0] * b[0] + a[1] * b[1] + a[2] * b[2]
+    }
+
+    #[test]
+    fn healpix_neighbourhoods_are_symmetric() {
+        // The neighbour cache links both ways, which is right only if q in N(p) <=> p in N(q).
+        for depth in [0u8, 1, 2, 3, 6] {
+            let layer = nested::get(depth);
+            let mut a = Vec::new();
+            let mut b = Vec::new();
+            for p in 0..layer.n_hash() {
+                a.clear();
+                layer.append_bulk_neighbours(p, &mut a);
+                for &q in &a {
+                    b.clear();
+                    layer.append_bulk_neighbours(q, &mut b);
+                    assert!(b.contains(&p), "depth {depth}: {q} in N({p}) but not the reverse");
+                }
+            }
+        }
+    }
+
+    /// Every bucket's neighbour cache agrees with a fresh lookup.
+    fn check_links(idx: &SkyIndex) {
+        let active: Vec<u32> =
+            (0..idx.buckets.len() as u32).filter(|s| !idx.free.contains(s)).collect();
+        assert_eq!(active.len(), idx.map.len());
+        for slot in active {
+            let m = &idx.meta[slot as usize];
+            let pix = m.pix;
+            assert_eq!(idx.map.get(pix), Some(slot));
+            for i in 0..8 {
+                let want = if i < usize::from(m.n_neigh) {
+                    idx.map.get(m.neigh[i]).unwrap_or(NONE)
+                } else {
+                    NONE
+                };
+                assert_eq!(
+                    idx.buckets[slot as usize].nslots[i], want,
+                    "pixel {pix} neighbour {i}"
+                );
+            }
+        }
     }
 
     #[test]
@@ -341,6 +561,7 @@ mod tests {
             idx.insert(&p, unit_vector(p.ra, p.dec));
         }
         assert_eq!(idx.buckets.len(), buckets, "closed buckets are reused");
+        check_links(&idx);
         let mut n = 0;
         idx.for_each_in_cone(0.0, 10.0, 1.0, 0, |h, c| {
             assert!(h.t >= 60);

@@ -12,11 +12,11 @@ use rand_pcg::Pcg64;
 use std::sync::OnceLock;
 
 /// Trials per statistical check (the brief's minimum).
-static TRIALS: std::sync::LazyLock<usize> = std::sync::LazyLock::new(|| std::env::var("NT").map(|v| v.parse().unwrap()).unwrap_or(200));
+const TRIALS: usize = 200;
 /// An arbitrary GPS time for the explosion, ns.
 const T0_NS: i64 = 1_400_000_000_000_000_000;
 /// Expected signal photons of the standard scenario.
-static SIGNAL_PHOTONS: std::sync::LazyLock<f64> = std::sync::LazyLock::new(|| std::env::var("SIG").map(|v| v.parse().unwrap()).unwrap_or(40.0));
+const SIGNAL_PHOTONS: f64 = 40.0;
 
 /// An invented ground array (numbers for tests of statistical behaviour only, not check values):
 /// area rising from 300 GeV to 100 TeV, resolution 50% falling to 25%, 10 ns clock.
@@ -35,8 +35,14 @@ fn ground_response() -> InstrumentResponse {
                 vec![50.0, 500.0, 2e3, 5e3, 1e4, 1.5e4],
             ],
         },
-        psf68_deg: CurveTable { energy_gev: energy, value: vec![1.5, 0.8, 0.5, 0.3, 0.25, 0.2] },
-        energy_resolution: CurveTable { energy_gev: vec![300.0, 1e3, 1e4, 1e5], value: vec![0.5, 0.4, 0.3, 0.25] },
+        psf68_deg: CurveTable {
+            energy_gev: energy,
+            value: vec![1.5, 0.8, 0.5, 0.3, 0.25, 0.2],
+        },
+        energy_resolution: CurveTable {
+            energy_gev: vec![300.0, 1e3, 1e4, 1e5],
+            value: vec![0.5, 0.4, 0.3, 0.25],
+        },
         systematic_deg: 0.0,
         clock_precision_ns: 10,
     };
@@ -61,7 +67,7 @@ impl Scenario {
             response: ground_response(),
             zenith_deg: 20.0,
             psf_containment: 0.68,
-            background_rate_hz: std::env::var("BG").map(|v| v.parse().unwrap()).unwrap_or(0.2),
+            background_rate_hz: 0.2,
             background_index: 2.7,
             pre_s: 20.0,
             post_s: 10.0,
@@ -69,7 +75,10 @@ impl Scenario {
     }
 
     fn window(&self) -> (i64, i64) {
-        (T0_NS - (self.pre_s * 1e9) as i64, T0_NS + (self.post_s * 1e9) as i64)
+        (
+            T0_NS - (self.pre_s * 1e9) as i64,
+            T0_NS + (self.post_s * 1e9) as i64,
+        )
     }
 
     fn input<'a>(&'a self, times: &'a [i64], energies: &'a [f64]) -> FitInput<'a> {
@@ -123,7 +132,13 @@ impl<'a> BurstSampler<'a> {
     fn proposals(&self, distance_pc: f64) -> f64 {
         let d_m = distance_pc * PARSEC_M;
         let dilution = self.s.psf_containment / (4.0 * std::f64::consts::PI * d_m * d_m);
-        dilution * self.k * self.a_max * 2.0 * self.s.pre_s.sqrt() * 2.0 * (self.inv_sqrt_lo - self.inv_sqrt_hi)
+        dilution
+            * self.k
+            * self.a_max
+            * 2.0
+            * self.s.pre_s.sqrt()
+            * 2.0
+            * (self.inv_sqrt_lo - self.inv_sqrt_hi)
     }
 
     /// One proposal: Some((time-to-go, reconstructed energy)) when it is kept.
@@ -154,7 +169,7 @@ impl<'a> BurstSampler<'a> {
     }
 }
 
-/// The burst as the tests need it: the distance giving `*SIGNAL_PHOTONS` expected photons, and the time
+/// The burst as the tests need it: the distance giving `SIGNAL_PHOTONS` expected photons, and the time
 /// before the explosion within which the last signal photon falls with 95% probability.
 struct Calibration {
     distance_pc: f64,
@@ -170,23 +185,30 @@ fn calibration() -> &'static Calibration {
         let sampler = BurstSampler::new(&s);
         let mut rng = Pcg64::seed_from_u64(0x6c69_6e74);
         let proposals = 1_000_000;
-        let mut taus: Vec<f64> =
-            (0..proposals).filter_map(|_| sampler.propose(&mut rng)).map(|(t, _)| t).collect();
+        let mut taus: Vec<f64> = (0..proposals)
+            .filter_map(|_| sampler.propose(&mut rng))
+            .map(|(t, _)| t)
+            .collect();
         taus.sort_by(f64::total_cmp);
         let kept = taus.len() as f64 / f64::from(proposals);
         // Photons expected at 1 pc; they scale as d^-2.
         let at_1pc = sampler.proposals(1.0) * kept;
-        let distance_pc = (at_1pc / *SIGNAL_PHOTONS).sqrt();
+        let distance_pc = (at_1pc / SIGNAL_PHOTONS).sqrt();
         // P(no signal photon within x of t0) = exp(-N P(tau < x)) = 5%: P(tau < x) = ln(20) / N.
-        let fraction = 20.0_f64.ln() / *SIGNAL_PHOTONS;
+        let fraction = 20.0_f64.ln() / SIGNAL_PHOTONS;
         let t0_bound_s = taus[(fraction * taus.len() as f64) as usize];
-        Calibration { distance_pc, t0_bound_s }
+        Calibration {
+            distance_pc,
+            t0_bound_s,
+        }
     })
 }
 
 fn draw_background(s: &Scenario, rng: &mut Pcg64, times: &mut Vec<i64>, energies: &mut Vec<f64>) {
     let (start, end) = s.window();
-    let n = Poisson::new(s.background_rate_hz * (s.pre_s + s.post_s)).unwrap().sample(rng) as u64;
+    let n = Poisson::new(s.background_rate_hz * (s.pre_s + s.post_s))
+        .unwrap()
+        .sample(rng) as u64;
     let (lo, hi) = (s.response.energy_min_gev(), s.response.energy_max_gev());
     let a = 1.0 - s.background_index;
     for _ in 0..n {
@@ -235,7 +257,7 @@ fn burst_trials(s: &Scenario, distance_pc: f64, seed: u64) -> Vec<Trial> {
     let mut rng = Pcg64::seed_from_u64(seed);
     let mut times = Vec::new();
     let mut energies = Vec::new();
-    (0..*TRIALS)
+    (0..TRIALS)
         .map(|trial| {
             times.clear();
             energies.clear();
@@ -243,7 +265,12 @@ fn burst_trials(s: &Scenario, distance_pc: f64, seed: u64) -> Vec<Trial> {
             let signal_photons = times.len();
             draw_background(s, &mut rng, &mut times, &mut energies);
             let fit = fit_evaporation(&s.input(&times, &energies));
-            assert!(fit.converged, "trial {trial} ({} photons): {}", times.len(), fit.reason);
+            assert!(
+                fit.converged,
+                "trial {trial} ({} photons): {}",
+                times.len(),
+                fit.reason
+            );
             Trial { fit, signal_photons }
         })
         .collect()
@@ -261,12 +288,17 @@ fn distance_interval_covers_the_true_distance_in_90_percent_of_trials() {
     let d = c.distance_pc;
     let covered = fraction(&trials, |r| r.distance_pc_lo <= d && d <= r.distance_pc_hi);
     let too_near = fraction(&trials, |r| r.distance_pc_hi < d);
-    eprintln!("true distance {d:.4} pc: the 90% interval covers it in {covered:.3} of {} (below it: {too_near:.3})", *TRIALS);
+    eprintln!(
+        "true distance {d:.4} pc: the 90% interval covers it in {covered:.3} of {TRIALS} (below it: {too_near:.3})"
+    );
     // Nominal 90%; with 200 trials the binomial spread is 2.1%, so [0.85, 0.95] is +-2.4 sigma.
     assert!((0.85..=0.95).contains(&covered), "coverage {covered}");
     for t in &trials {
         let r = &t.fit;
-        assert!(r.distance_pc_lo < r.distance_pc && r.distance_pc < r.distance_pc_hi, "{r:?}");
+        assert!(
+            r.distance_pc_lo < r.distance_pc && r.distance_pc < r.distance_pc_hi,
+            "{r:?}"
+        );
     }
 }
 
@@ -278,8 +310,11 @@ fn distance_and_counts_are_centred_on_the_truth() {
     let mut ratios: Vec<f64> = trials.iter().map(|t| t.fit.distance_pc / c.distance_pc).collect();
     ratios.sort_by(f64::total_cmp);
     let median = ratios[ratios.len() / 2];
-    let excess: f64 =
-        trials.iter().map(|t| t.fit.signal_counts - t.signal_photons as f64).sum::<f64>() / trials.len() as f64;
+    let excess: f64 = trials
+        .iter()
+        .map(|t| t.fit.signal_counts - t.signal_photons as f64)
+        .sum::<f64>()
+        / trials.len() as f64;
     eprintln!("median fitted/true distance {median:.4}; fitted minus drawn signal photons, mean {excess:.3}");
     // Common practice, no source: the maximum-likelihood estimate of d ~ N^-1/2 with N ~ 40 is biased by a
     // few percent at most, so its median over 200 trials lies within 5% of the truth.
@@ -288,7 +323,11 @@ fn distance_and_counts_are_centred_on_the_truth() {
     // two components, so a trial may differ by a few; the mean by well under one).
     assert!(excess.abs() < 1.0, "mean fitted - drawn signal photons {excess}");
     // [calc] from the scenario: 0.2 Hz x 30 s.
-    assert!(trials.iter().all(|t| (t.fit.background_counts - 6.0).abs() < 1e-9));
+    assert!(
+        trials
+            .iter()
+            .all(|t| (t.fit.background_counts - 6.0).abs() < 1e-9)
+    );
 }
 
 #[test]
@@ -297,7 +336,10 @@ fn explosion_time_falls_within_the_expected_spread() {
     let c = calibration();
     let trials = burst_trials(&s, c.distance_pc, 3);
     let bound_ns = c.t0_bound_s * 1e9;
-    let errors: Vec<f64> = trials.iter().map(|t| (t.fit.explosion_ns - T0_NS) as f64).collect();
+    let errors: Vec<f64> = trials
+        .iter()
+        .map(|t| (t.fit.explosion_ns - T0_NS) as f64)
+        .collect();
     let within = errors.iter().filter(|e| e.abs() <= bound_ns).count() as f64 / errors.len() as f64;
     let mut abs: Vec<f64> = errors.iter().map(|e| e.abs() * 1e-9).collect();
     abs.sort_by(f64::total_cmp);
@@ -309,7 +351,10 @@ fn explosion_time_falls_within_the_expected_spread() {
     );
     // The last burst photon falls within the bound of t0 in 95% of bursts (the bound is made so); the fit
     // puts t0 one clock step after it unless background photons lead it astray.
-    assert!(within >= 0.90, "t0 within {bound_ns} ns in only {within} of trials");
+    assert!(
+        within >= 0.90,
+        "t0 within {bound_ns} ns in only {within} of trials"
+    );
 }
 
 #[test]
@@ -320,11 +365,18 @@ fn template_p_is_roughly_uniform_for_the_true_model() {
     let below_5 = fraction(&trials, |r| r.template_p < 0.05);
     let below_50 = fraction(&trials, |r| r.template_p < 0.5);
     eprintln!("true model: template_p < 0.05 in {below_5:.3}, < 0.5 in {below_50:.3}");
-    assert!(trials.iter().all(|t| t.fit.gof_test == "ks_time" && (0.0..=1.0).contains(&t.fit.template_p)));
+    assert!(
+        trials
+            .iter()
+            .all(|t| t.fit.gof_test == "ks_time" && (0.0..=1.0).contains(&t.fit.template_p))
+    );
     // Nominal 0.05 and 0.5; bands of about +-3 binomial sigma for 200 trials (fitting the burst's intensity
     // can make a KS p-value conservative, Lilliefors 1967, so the lower bands are a little wider).
     assert!((0.01..=0.12).contains(&below_5), "fraction below 0.05: {below_5}");
-    assert!((0.38..=0.62).contains(&below_50), "fraction below 0.5: {below_50}");
+    assert!(
+        (0.38..=0.62).contains(&below_50),
+        "fraction below 0.5: {below_50}"
+    );
 }
 
 #[test]
@@ -335,11 +387,11 @@ fn template_p_is_small_for_an_afterglow_like_light_curve() {
     let mut energies = Vec::new();
     let mut small = 0;
     let mut fitted = 0;
-    for _ in 0..*TRIALS {
+    for _ in 0..TRIALS {
         times.clear();
         energies.clear();
         // Onset 10 s into the window, decaying with a 3 s time constant: bright at the start, fading.
-        draw_afterglow(&s, *SIGNAL_PHOTONS, 10.0, 3.0, &mut rng, &mut times, &mut energies);
+        draw_afterglow(&s, SIGNAL_PHOTONS, 10.0, 3.0, &mut rng, &mut times, &mut energies);
         draw_background(&s, &mut rng, &mut times, &mut energies);
         let r = fit_evaporation(&s.input(&times, &energies));
         if r.converged {
@@ -349,9 +401,12 @@ fn template_p_is_small_for_an_afterglow_like_light_curve() {
             }
         }
     }
-    let frac = f64::from(small) / *TRIALS as f64;
-    eprintln!("afterglow: {fitted} of {} fitted, template_p < 0.05 in {frac:.3}", *TRIALS);
-    assert!(frac >= 0.8, "template_p < 0.05 in only {frac} of afterglow trials");
+    let frac = f64::from(small) / TRIALS as f64;
+    eprintln!("afterglow: {fitted} of {TRIALS} fitted, template_p < 0.05 in {frac:.3}");
+    assert!(
+        frac >= 0.8,
+        "template_p < 0.05 in only {frac} of afterglow trials"
+    );
 }
 
 #[test]
@@ -362,7 +417,11 @@ fn bad_input_is_refused_with_a_specific_reason() {
     let times = vec![t(30), t(20), t(10), t(5), t(1)];
     let energies = vec![500.0, 800.0, 2000.0, 5000.0, 1000.0];
     let good = s.input(&times, &energies);
-    assert!(fit_evaporation(&good).converged, "{}", fit_evaporation(&good).reason);
+    assert!(
+        fit_evaporation(&good).converged,
+        "{}",
+        fit_evaporation(&good).reason
+    );
 
     let same_times = vec![t(3); 5];
     let low_energy = vec![500.0, 800.0, 100.0, 5000.0, 1000.0];
@@ -370,29 +429,162 @@ fn bad_input_is_refused_with_a_specific_reason() {
     let nan_energy = vec![500.0, f64::NAN, 2000.0, 5000.0, 1000.0];
     let outside = vec![t(30), t(20), end + 1, t(5), t(1)];
     let cases: Vec<(&str, FitInput<'_>, &str)> = vec![
-        ("no photons", FitInput { times_ns: &[], energies_gev: &[], ..good }, "too few photons: 0"),
-        ("one photon", FitInput { times_ns: &times[..1], energies_gev: &energies[..1], ..good }, "too few photons: 1"),
-        ("two photons", FitInput { times_ns: &times[..2], energies_gev: &energies[..2], ..good }, "too few photons: 2"),
-        ("length mismatch", FitInput { energies_gev: &energies[..4], ..good }, "times_ns has 5 entries but energies_gev has 4"),
-        ("one time", FitInput { times_ns: &same_times, ..good }, "all 5 photons have the same time"),
-        ("energy below range", FitInput { energies_gev: &low_energy, ..good }, "photon 2: energy 100 GeV is outside"),
-        ("energy above range", FitInput { energies_gev: &high_energy, ..good }, "photon 2: energy 2000000 GeV is outside"),
-        ("NaN energy", FitInput { energies_gev: &nan_energy, ..good }, "photon 1: energy NaN GeV is outside"),
-        ("time outside window", FitInput { times_ns: &outside, ..good }, "photon 2: time"),
-        ("empty window", FitInput { window_end_ns: start, ..good }, "is not after window_start_ns"),
-        ("reversed window", FitInput { window_start_ns: end, window_end_ns: start, ..good }, "is not after window_start_ns"),
-        ("zero background", FitInput { background_rate_hz: 0.0, ..good }, "background_rate_hz = 0 is invalid"),
-        ("NaN background", FitInput { background_rate_hz: f64::NAN, ..good }, "background_rate_hz = NaN is invalid"),
-        ("NaN index", FitInput { background_spectral_index: f64::NAN, ..good }, "background_spectral_index = NaN"),
-        ("zero containment", FitInput { psf_containment: 0.0, ..good }, "psf_containment = 0 is invalid"),
-        ("NaN zenith", FitInput { zenith_deg: f64::NAN, ..good }, "zenith_deg = NaN is invalid"),
-        ("outside field of view", FitInput { zenith_deg: 60.0, ..good }, "effective area is zero at zenith 60"),
+        (
+            "no photons",
+            FitInput {
+                times_ns: &[],
+                energies_gev: &[],
+                ..good
+            },
+            "too few photons: 0",
+        ),
+        (
+            "one photon",
+            FitInput {
+                times_ns: &times[..1],
+                energies_gev: &energies[..1],
+                ..good
+            },
+            "too few photons: 1",
+        ),
+        (
+            "two photons",
+            FitInput {
+                times_ns: &times[..2],
+                energies_gev: &energies[..2],
+                ..good
+            },
+            "too few photons: 2",
+        ),
+        (
+            "length mismatch",
+            FitInput {
+                energies_gev: &energies[..4],
+                ..good
+            },
+            "times_ns has 5 entries but energies_gev has 4",
+        ),
+        (
+            "one time",
+            FitInput {
+                times_ns: &same_times,
+                ..good
+            },
+            "all 5 photons have the same time",
+        ),
+        (
+            "energy below range",
+            FitInput {
+                energies_gev: &low_energy,
+                ..good
+            },
+            "photon 2: energy 100 GeV is outside",
+        ),
+        (
+            "energy above range",
+            FitInput {
+                energies_gev: &high_energy,
+                ..good
+            },
+            "photon 2: energy 2000000 GeV is outside",
+        ),
+        (
+            "NaN energy",
+            FitInput {
+                energies_gev: &nan_energy,
+                ..good
+            },
+            "photon 1: energy NaN GeV is outside",
+        ),
+        (
+            "time outside window",
+            FitInput {
+                times_ns: &outside,
+                ..good
+            },
+            "photon 2: time",
+        ),
+        (
+            "empty window",
+            FitInput {
+                window_end_ns: start,
+                ..good
+            },
+            "is not after window_start_ns",
+        ),
+        (
+            "reversed window",
+            FitInput {
+                window_start_ns: end,
+                window_end_ns: start,
+                ..good
+            },
+            "is not after window_start_ns",
+        ),
+        (
+            "zero background",
+            FitInput {
+                background_rate_hz: 0.0,
+                ..good
+            },
+            "background_rate_hz = 0 is invalid",
+        ),
+        (
+            "NaN background",
+            FitInput {
+                background_rate_hz: f64::NAN,
+                ..good
+            },
+            "background_rate_hz = NaN is invalid",
+        ),
+        (
+            "NaN index",
+            FitInput {
+                background_spectral_index: f64::NAN,
+                ..good
+            },
+            "background_spectral_index = NaN",
+        ),
+        (
+            "zero containment",
+            FitInput {
+                psf_containment: 0.0,
+                ..good
+            },
+            "psf_containment = 0 is invalid",
+        ),
+        (
+            "NaN zenith",
+            FitInput {
+                zenith_deg: f64::NAN,
+                ..good
+            },
+            "zenith_deg = NaN is invalid",
+        ),
+        (
+            "outside field of view",
+            FitInput {
+                zenith_deg: 60.0,
+                ..good
+            },
+            "effective area is zero at zenith 60",
+        ),
     ];
     for (name, input, reason) in cases {
         let r = fit_evaporation(&input);
         assert!(!r.converged, "{name}: converged");
-        assert!(r.reason.contains(reason), "{name}: reason {:?} does not contain {reason:?}", r.reason);
-        for v in [r.distance_pc, r.distance_pc_lo, r.distance_pc_hi, r.template_p, r.signal_counts] {
+        assert!(
+            r.reason.contains(reason),
+            "{name}: reason {:?} does not contain {reason:?}",
+            r.reason
+        );
+        for v in [
+            r.distance_pc,
+            r.distance_pc_lo,
+            r.distance_pc_hi,
+            r.template_p,
+            r.signal_counts,
+        ] {
             assert!(!v.is_nan(), "{name}: NaN in a refused result");
         }
     }

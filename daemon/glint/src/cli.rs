@@ -31,10 +31,18 @@ pub(crate) struct Cli {
 enum Command {
     /// Check a configuration file and list every problem in it.
     CheckConfig(CheckConfigArgs),
+    /// Replay recordings through the engine as fast as the CPU allows and print the alerts as JSON lines.
+    Replay(crate::replay::ReplayArgs),
+    /// Print what a configured instrument can see: background, critical counts, reach, upper limits.
+    Reach(crate::reach::ReachArgs),
     /// Run the daemon: ingest, engines, alert desk, subscribers (until SIGTERM or SIGINT).
     Run(crate::daemon::RunArgs),
     /// Run the whole pipeline on the built-in demo scenario, in one process, and print the alerts.
     Demo(crate::demo::DemoArgs),
+    /// Benchmark the live daemon: feed a simulated scenario with subscribers attached, print throughput and
+    /// latency percentiles.
+    #[command(hide = true)]
+    BenchLive(crate::demo::BenchArgs),
     /// Play a recording into a running daemon, as a producer would.
     Feed(crate::feed::FeedArgs),
     /// Subscribe to a daemon's alerts and print them (or run a command per alert).
@@ -73,8 +81,11 @@ pub(crate) fn config_or_exit(path: Option<&PathBuf>) -> anyhow::Result<Config> {
 pub(crate) fn dispatch(cli: Cli) -> anyhow::Result<ExitCode> {
     let result = match cli.command {
         Command::CheckConfig(a) => check_config(&a),
+        Command::Replay(a) => crate::replay::run(&a),
+        Command::Reach(a) => crate::reach::run(&a),
         Command::Run(a) => crate::daemon::run_command(a),
         Command::Demo(a) => crate::demo::run(a),
+        Command::BenchLive(a) => crate::demo::bench(a),
         Command::Feed(a) => crate::feed::run(a),
         Command::Listen(a) => crate::listen::run(a),
         Command::Withdraw(a) => crate::withdraw::run(a),

@@ -16,7 +16,7 @@ use toml::{Table, Value};
 
 /// The configuration used when no file is given: loopback addresses, a state directory under the system's
 /// temporary directory, and the invented demo instrument.
-pub const EMBEDDED_DEFAULT: &str = include_str!("../../../deploy/glint-default.toml");
+pub(crate) const EMBEDDED_DEFAULT: &str = include_str!("../../../deploy/glint-default.toml");
 
 /// Instrument blocks that ship with glint, addressable as `spec_file = "builtin:NAME"` so the embedded
 /// default needs no file on disk.
@@ -26,26 +26,26 @@ const BUILTIN_INSTRUMENTS: &[(&str, &str)] = &[
 ];
 
 /// Looks up an instrument block shipped with glint by name.
-pub fn builtin_instrument(name: &str) -> Option<&'static str> {
+pub(crate) fn builtin_instrument(name: &str) -> Option<&'static str> {
     BUILTIN_INSTRUMENTS.iter().find(|(n, _)| *n == name).map(|(_, text)| *text)
 }
 
 /// One problem in a configuration, naming the key.
 #[derive(Debug, Clone, PartialEq, Eq)]
-pub struct Problem {
+pub(crate) struct Problem {
     /// Dotted key, e.g. `instrument[0].search.far_per_year`.
-    pub key: String,
+    pub(crate) key: String,
     /// What is wrong.
-    pub message: String,
+    pub(crate) message: String,
 }
 
 /// Every problem found in a configuration source.
 #[derive(Debug, thiserror::Error)]
-pub struct ConfigError {
+pub(crate) struct ConfigError {
     /// The file (or `<embedded default>`).
-    pub source_name: String,
+    pub(crate) source_name: String,
     /// All problems, in the order found.
-    pub problems: Vec<Problem>,
+    pub(crate) problems: Vec<Problem>,
 }
 
 impl fmt::Display for ConfigError {
@@ -60,15 +60,15 @@ impl fmt::Display for ConfigError {
 
 /// A secret read from the config or a file; never printed.
 #[derive(Clone, PartialEq, Eq)]
-pub struct Secret(String);
+pub(crate) struct Secret(String);
 
 impl Secret {
     /// The secret's bytes, for constant-time comparison.
-    pub fn expose(&self) -> &str {
+    pub(crate) fn expose(&self) -> &str {
         &self.0
     }
     /// Wraps a value (tests and the demo).
-    pub fn new(s: impl Into<String>) -> Self {
+    pub(crate) fn new(s: impl Into<String>) -> Self {
         Self(s.into())
     }
 }
@@ -81,7 +81,7 @@ impl fmt::Debug for Secret {
 
 /// How log lines are written.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum LogFormat {
+pub(crate) enum LogFormat {
     /// Human-readable lines (the default on a terminal).
     Text,
     /// One JSON object per line, for log collectors.
@@ -90,163 +90,163 @@ pub enum LogFormat {
 
 /// `[daemon]`: process-wide settings.
 #[derive(Debug, Clone)]
-pub struct DaemonConfig {
+pub(crate) struct DaemonConfig {
     /// Holds the journal, acceptance maps, sink cursors and recordings.
-    pub state_dir: PathBuf,
+    pub(crate) state_dir: PathBuf,
     /// Default tracing filter (RUST_LOG overrides).
-    pub log_level: String,
+    pub(crate) log_level: String,
     /// Text or JSON lines.
-    pub log_format: LogFormat,
+    pub(crate) log_format: LogFormat,
     /// Largest frame accepted on any socket, bytes.
-    pub max_frame_bytes: usize,
+    pub(crate) max_frame_bytes: usize,
     /// How long a graceful shutdown may take before the daemon exits anyway.
-    pub shutdown_deadline: Duration,
+    pub(crate) shutdown_deadline: Duration,
     /// How often the engines' acceptance maps are saved.
-    pub state_save_interval: Duration,
+    pub(crate) state_save_interval: Duration,
 }
 
 /// TLS material for a listener.
 #[derive(Debug, Clone)]
-pub struct TlsConfig {
+pub(crate) struct TlsConfig {
     /// PEM certificate chain.
-    pub cert: PathBuf,
+    pub(crate) cert: PathBuf,
     /// PEM private key.
-    pub key: PathBuf,
+    pub(crate) key: PathBuf,
 }
 
 /// `[ingest]`: the producer listener.
 #[derive(Debug, Clone)]
-pub struct IngestConfig {
+pub(crate) struct IngestConfig {
     /// Address to listen on.
-    pub listen: SocketAddr,
+    pub(crate) listen: SocketAddr,
     /// TLS, when both paths are set.
-    pub tls: Option<TlsConfig>,
+    pub(crate) tls: Option<TlsConfig>,
     /// Capacity of each instrument's engine queue, in batches; when full the socket is read more slowly.
-    pub queue_batches: NonZeroUsize,
+    pub(crate) queue_batches: NonZeroUsize,
     /// An `Ack` is sent after this many frames (and whenever the producer goes quiet).
-    pub ack_every: NonZeroUsize,
+    pub(crate) ack_every: NonZeroUsize,
     /// Record every ingested stream to rotating `.glrec.zst` files under `state_dir/recordings`.
-    pub record: bool,
+    pub(crate) record: bool,
     /// Rotate a recording after this many bytes.
-    pub record_rotate_bytes: u64,
+    pub(crate) record_rotate_bytes: u64,
     /// Rotate a recording after this much event time.
-    pub record_rotate: Duration,
+    pub(crate) record_rotate: Duration,
 }
 
 /// `[subscribers]`: the alert listener.
 #[derive(Debug, Clone)]
-pub struct SubscribersConfig {
+pub(crate) struct SubscribersConfig {
     /// Address to listen on.
-    pub listen: SocketAddr,
+    pub(crate) listen: SocketAddr,
     /// TLS, when both paths are set.
-    pub tls: Option<TlsConfig>,
+    pub(crate) tls: Option<TlsConfig>,
     /// Tokens that may subscribe.
-    pub tokens: Vec<Secret>,
+    pub(crate) tokens: Vec<Secret>,
     /// Token that may also withdraw alerts.
-    pub operator_token: Option<Secret>,
+    pub(crate) operator_token: Option<Secret>,
     /// Heartbeat period while no alert flows.
-    pub heartbeat: Duration,
+    pub(crate) heartbeat: Duration,
     /// A subscriber whose socket stays unwritable this long is dropped.
-    pub unwritable_timeout: Duration,
+    pub(crate) unwritable_timeout: Duration,
     /// Most subscribers connected at once.
-    pub max_connections: NonZeroUsize,
+    pub(crate) max_connections: NonZeroUsize,
 }
 
 /// `[journal]`: the append-only alert journal.
 #[derive(Debug, Clone)]
-pub struct JournalConfig {
+pub(crate) struct JournalConfig {
     /// Start a new segment after this many bytes.
-    pub segment_bytes: u64,
+    pub(crate) segment_bytes: u64,
     /// Segments older than this (by their newest record) are deleted.
-    pub retention: Duration,
+    pub(crate) retention: Duration,
 }
 
 /// `[instrument.search]`: the trigger settings of one instrument.
 #[derive(Debug, Clone, PartialEq)]
-pub struct SearchConfig {
+pub(crate) struct SearchConfig {
     /// Timescales of the ladder, seconds, increasing.
-    pub ladder_s: Vec<f64>,
+    pub(crate) ladder_s: Vec<f64>,
     /// Radius of the disc each photon seeds, degrees.
-    pub search_radius_deg: f64,
+    pub(crate) search_radius_deg: f64,
     /// Target false-alarm rate of the whole search, per year.
-    pub far_per_year: f64,
+    pub(crate) far_per_year: f64,
     /// Trailing window of the all-sky rate, seconds.
-    pub rate_window_s: f64,
+    pub(crate) rate_window_s: f64,
     /// Time constant of the acceptance map, seconds.
-    pub acceptance_tau_s: f64,
+    pub(crate) acceptance_tau_s: f64,
     /// No trigger before the acceptance map holds this many photons (unless a saved map was loaded).
-    pub warmup_photons: u64,
+    pub(crate) warmup_photons: u64,
     /// Seed the acceptance map with the instrument's cos-power shape, so triggers can start after warm-up
     /// of the rate only.
-    pub acceptance_prior: bool,
+    pub(crate) acceptance_prior: bool,
     /// How far photons may arrive out of order, seconds.
-    pub reorder_tolerance_s: f64,
+    pub(crate) reorder_tolerance_s: f64,
     /// A frame this far ahead of the stream is refused as a clock jump, seconds.
-    pub max_clock_jump_s: f64,
+    pub(crate) max_clock_jump_s: f64,
 }
 
 /// `[instrument.assess]`: the assessment settings of one instrument.
 #[derive(Debug, Clone, PartialEq)]
-pub struct AssessSettings {
+pub(crate) struct AssessSettings {
     /// Shortest persistence window, seconds.
-    pub persistence_min_s: f64,
+    pub(crate) persistence_min_s: f64,
     /// The persistence window is at least this many times the candidate's timescale.
-    pub persistence_timescale_factor: f64,
+    pub(crate) persistence_timescale_factor: f64,
     /// Window before the flash checked for earlier emission, seconds.
-    pub pre_window_s: f64,
+    pub(crate) pre_window_s: f64,
     /// `persistent` when the excess after the flash exceeds this many sigma.
-    pub post_sigma_max: f64,
+    pub(crate) post_sigma_max: f64,
     /// `persistent` when the excess before the flash exceeds this many sigma.
-    pub pre_sigma_max: f64,
+    pub(crate) pre_sigma_max: f64,
     /// `instrumental` when the all-sky count in the flash window exceeds its expectation by this many sigma.
-    pub all_sky_sigma_max: f64,
+    pub(crate) all_sky_sigma_max: f64,
     /// `instrumental` when more than this fraction of the flash photons share one timestamp.
-    pub identical_fraction_max: f64,
+    pub(crate) identical_fraction_max: f64,
     /// `instrumental` when the photons' spread exceeds the PSF's by this factor.
-    pub spread_ratio_max: f64,
+    pub(crate) spread_ratio_max: f64,
     /// `undecided` when dead time covers more than this fraction of the persistence window.
-    pub max_dead_fraction: f64,
+    pub(crate) max_dead_fraction: f64,
 }
 
 /// One `[[instrument]]`.
 #[derive(Debug, Clone)]
-pub struct InstrumentConfig {
+pub(crate) struct InstrumentConfig {
     /// Instrument id producers name in their `Hello`.
-    pub id: String,
+    pub(crate) id: String,
     /// Producer token.
-    pub token: Secret,
+    pub(crate) token: Secret,
     /// The instrument block (site, response, background).
-    pub spec: InstrumentSpec,
+    pub(crate) spec: InstrumentSpec,
     /// The response built from the spec.
-    pub response: InstrumentResponse,
+    pub(crate) response: InstrumentResponse,
     /// Trigger settings.
-    pub search: SearchConfig,
+    pub(crate) search: SearchConfig,
     /// Assessment settings.
-    pub assess: AssessSettings,
+    pub(crate) assess: AssessSettings,
 }
 
 /// The whole checked configuration.
 #[derive(Debug, Clone)]
-pub struct Config {
+pub(crate) struct Config {
     /// Where it came from (a path, or `<embedded default>`).
-    pub source_name: String,
+    pub(crate) source_name: String,
     /// `[daemon]`.
-    pub daemon: DaemonConfig,
+    pub(crate) daemon: DaemonConfig,
     /// `[ingest]`.
-    pub ingest: IngestConfig,
+    pub(crate) ingest: IngestConfig,
     /// `[subscribers]`.
-    pub subscribers: SubscribersConfig,
+    pub(crate) subscribers: SubscribersConfig,
     /// `[journal]`.
-    pub journal: JournalConfig,
+    pub(crate) journal: JournalConfig,
     /// `[metrics]`: the Prometheus text endpoint, if any.
-    pub metrics_listen: Option<SocketAddr>,
+    pub(crate) metrics_listen: Option<SocketAddr>,
     /// `[[instrument]]`, in file order.
-    pub instruments: Vec<InstrumentConfig>,
+    pub(crate) instruments: Vec<InstrumentConfig>,
 }
 
 impl Config {
     /// Reads and compiles a configuration file, applying `GLINT_*` environment overrides.
-    pub fn load(path: &Path) -> Result<Self, ConfigError> {
+    pub(crate) fn load(path: &Path) -> Result<Self, ConfigError> {
         let name = path.display().to_string();
         let text = std::fs::read_to_string(path).map_err(|e| ConfigError {
             source_name: name.clone(),
@@ -257,12 +257,12 @@ impl Config {
     }
 
     /// Compiles the embedded default configuration, applying `GLINT_*` environment overrides.
-    pub fn embedded_default() -> Result<Self, ConfigError> {
+    pub(crate) fn embedded_default() -> Result<Self, ConfigError> {
         Self::from_toml(EMBEDDED_DEFAULT, "<embedded default>", Path::new("."), true)
     }
 
     /// Compiles configuration text; `base_dir` resolves relative paths (token and spec files).
-    pub fn from_toml(text: &str, source_name: &str, base_dir: &Path, with_env: bool) -> Result<Self, ConfigError> {
+    pub(crate) fn from_toml(text: &str, source_name: &str, base_dir: &Path, with_env: bool) -> Result<Self, ConfigError> {
         let fail = |key: &str, message: String| ConfigError {
             source_name: source_name.to_string(),
             problems: vec![Problem { key: key.into(), message }],
@@ -289,7 +289,7 @@ impl Config {
     }
 
     /// The instrument with this id.
-    pub fn instrument(&self, id: &str) -> Option<&InstrumentConfig> {
+    pub(crate) fn instrument(&self, id: &str) -> Option<&InstrumentConfig> {
         self.instruments.iter().find(|i| i.id == id)
     }
 }

@@ -104,7 +104,45 @@ pub(crate) struct Daemon {
     ingest: Arc<IngestShared>,
     engines: Vec<(String, std::thread::JoinHandle<()>)>,
     engines_done: tokio::sync::mpsc::Receiver<String>,
-    _lock: File,
+    _lock: PidLock,
+}
+
+/// Keeps a second daemon off the same state directory (two writers would corrupt the journal): a file
+/// holding the owner's pid, taken over only when that process is gone (e.g. after SIGKILL), removed on drop.
+struct PidLock {
+    path: PathBuf,
+}
+
+impl PidLock {
+    fn take(path: &Path) -> anyhow::Result<Self> {
+        if let Ok(text) = std::fs::read_to_string(path) {
+            if let Ok(pid) = text.trim().parse::<u32>() {
+                let alive = pid != std::process::id()
+                    && std::fs::read(format!("/proc/{pid}/cmdline")).is_ok_and(|c| {
+                        c.split(|b| *b == 0)
+                            .next()
+                            .is_some_and(|exe| exe.ends_with(b"glint"))
+                    });
+                if alive {
+                    bail!(
+                        "another glint daemon (pid {pid}) is using this state directory ({})",
+                        path.display()
+                    );
+                }
+            }
+        }
+        write_atomic(path, format!("{}\n", std::process::id()).as_bytes())
+            .with_context(|| format!("cannot write {}", path.display()))?;
+        Ok(Self {
+            path: path.to_path_buf(),
+        })
+    }
+}
+
+impl Drop for PidLock {
+    fn drop(&mut self) {
+        let _ = std::fs::remove_file(&self.path);
+    }
 }
 
 fn state_path(state_dir: &Path, instrument: &str) -> PathBuf {
@@ -128,16 +166,7 @@ impl Daemon {
         let state_dir = cfg.daemon.state_dir.clone();
         std::fs::create_dir_all(&state_dir)
             .with_context(|| format!("cannot create state_dir {}", state_dir.display()))?;
-        let lock_path = state_dir.join("glint.lock");
-        let lock =
-            File::create(&lock_path).with_context(|| format!("cannot create {}", lock_path.display()))?;
-        lock.try_lock().map_err(|_| {
-            anyhow!(
-                "another glint daemon is using {} (lock {} is held)",
-                state_dir.display(),
-                lock_path.display()
-            )
-        })?;
+        let lock = PidLock::take(&state_dir.join("glint.pid"))?;
         let metrics = Arc::new(Metrics::new());
         let (desk, report) = Desk::open(&state_dir.join("journal"), &cfg.journal, metrics.clone())
             .with_context(|| {
@@ -323,11 +352,6 @@ impl Daemon {
             engines_done,
             _lock: lock,
         })
-    }
-
-    /// Resolves when a part of the daemon failed beyond repair (e.g. the journal cannot be written).
-    pub(crate) fn fatal(&self) -> CancellationToken {
-        self.fatal.clone()
     }
 
     /// Stops in stages within the configured deadline.

@@ -17,6 +17,7 @@ use crate::config::Config;
 use crate::daemon::Daemon;
 use crate::feed::{self, FeedTarget, Speed};
 use crate::listen::{ListenOptions, listen_loop};
+use crate::metrics::Metrics;
 use crate::metrics::Stage;
 
 /// The demo scenario, built in so the demo needs no files.
@@ -189,5 +190,156 @@ pub(crate) fn run(args: DemoArgs) -> anyhow::Result<ExitCode> {
         );
     }
     println!("(alerts decided at shutdown, for candidates cut short, carry no receipt stamp)");
+    Ok(ExitCode::SUCCESS)
+}
+
+/// Arguments of `glint bench-live` (hidden): the live daemon's throughput and latency benchmark.
+#[derive(Debug, clap::Args)]
+pub(crate) struct BenchArgs {
+    /// Scenario to simulate, record and feed (e.g. deploy/scenarios/stress-20khz.toml).
+    scenario: std::path::PathBuf,
+    /// Feed speed: a multiple of real time, or "max".
+    #[arg(long, default_value = "max")]
+    speed: Speed,
+    /// Subscribers reading alerts.
+    #[arg(long, default_value_t = 3)]
+    subscribers: usize,
+    /// Keep the simulated recording here (it is made once and reused when present).
+    #[arg(long, value_name = "FILE")]
+    recording: Option<std::path::PathBuf>,
+}
+
+fn print_latency(metrics: &Metrics) {
+    println!("latency (ms)              n      p50      p99    p99.9      max");
+    for (label, stage) in [
+        ("receipt -> decided", Stage::Decide),
+        ("decided -> fsynced", Stage::Journal),
+        ("fsynced -> socket ", Stage::Send),
+        ("receipt -> socket ", Stage::EndToEnd),
+    ] {
+        let p = metrics.percentiles(stage);
+        println!(
+            "  {label}  {:>6} {:>8.3} {:>8.3} {:>8.3} {:>8.3}",
+            p.count, p.p50_ms, p.p99_ms, p.p999_ms, p.max_ms
+        );
+    }
+}
+
+/// `glint bench-live`: simulates a scenario into a recording, starts the daemon in-process with `N`
+/// subscribers, feeds the recording at the given speed, and prints throughput and latency percentiles
+/// (receipt of the frame that completes a trigger to the alert frame written to each subscriber's socket).
+pub(crate) fn bench(args: BenchArgs) -> anyhow::Result<ExitCode> {
+    let tmp = tempfile::Builder::new()
+        .prefix("glint-bench-")
+        .tempdir()
+        .context("cannot make a temporary directory")?;
+    let scenario = glint_sim::load_scenario(&args.scenario)?;
+    let rec = args
+        .recording
+        .clone()
+        .unwrap_or_else(|| tmp.path().join("bench.glrec.zst"));
+    if !rec.exists() {
+        let t = Instant::now();
+        let mut w = glint_wire::RecordingWriter::create(&rec)?;
+        let mut frames = 0u64;
+        for f in glint_sim::Simulator::new(&scenario, scenario.seed)? {
+            w.write_frame(&f)?;
+            frames += 1;
+        }
+        w.finish()?;
+        println!(
+            "simulated {} into {} ({frames} frames) in {:.1} s",
+            scenario.name,
+            rec.display(),
+            t.elapsed().as_secs_f64()
+        );
+    }
+    let mut cfg = Config::embedded_default().map_err(crate::cli::BadConfig)?;
+    crate::logging::init("warn", cfg.daemon.log_format);
+    let loopback = SocketAddr::from(([127, 0, 0, 1], 0));
+    cfg.daemon.state_dir = tmp.path().join("state");
+    cfg.ingest.listen = loopback;
+    cfg.subscribers.listen = loopback;
+    cfg.metrics_listen = None;
+    let producer_token = cfg
+        .instruments
+        .iter()
+        .find(|i| i.id == scenario.instrument.id)
+        .ok_or_else(|| {
+            anyhow!(
+                "the default configuration has no instrument '{}'",
+                scenario.instrument.id
+            )
+        })?
+        .token
+        .expose()
+        .to_string();
+    let sub_token = cfg
+        .subscribers
+        .tokens
+        .first()
+        .ok_or_else(|| anyhow!("no subscriber token"))?
+        .expose()
+        .to_string();
+    let rt = tokio::runtime::Builder::new_multi_thread()
+        .enable_all()
+        .build()
+        .context("cannot start the runtime")?;
+    let (fed, metrics, alerts) = rt.block_on(async {
+        let daemon = Daemon::start(cfg).await?;
+        let mut listeners = Vec::new();
+        for i in 0..args.subscribers {
+            let opts = ListenOptions {
+                addr: daemon.subscribers_addr.to_string(),
+                token: sub_token.clone(),
+                kinds: Vec::new(),
+                min_sigma: 0.0,
+                resume_after: 0,
+                replay_all: true,
+                client: format!("bench-{i}"),
+                tls: None,
+                max_frame: 64 << 20,
+            };
+            listeners.push(tokio::spawn(async move {
+                let mut n = 0u64;
+                let mut on_alert = |_: &pb::Alert| -> anyhow::Result<bool> {
+                    n += 1;
+                    Ok(true)
+                };
+                listen_loop(&opts, false, &mut on_alert).await.map(|_| n)
+            }));
+        }
+        tokio::time::sleep(Duration::from_millis(200)).await;
+        let target = FeedTarget {
+            addr: daemon.ingest_addr.to_string(),
+            token: producer_token,
+            instrument: None,
+            producer: "glint-bench".into(),
+            tls: None,
+            max_frame: 64 << 20,
+        };
+        let mut reader = glint_wire::RecordingReader::open(&rec, 64 << 20)?;
+        let source = std::iter::from_fn(move || reader.read_frame().map_err(anyhow::Error::from).transpose());
+        let fed = feed::feed(source, &target, args.speed).await?;
+        let metrics = daemon.metrics.clone();
+        daemon.shutdown().await?;
+        let mut alerts = Vec::new();
+        for l in listeners {
+            alerts.push(tokio::time::timeout(Duration::from_secs(30), l).await???);
+        }
+        Ok::<_, anyhow::Error>((fed, metrics, alerts))
+    })?;
+    println!(
+        "fed {} photons in {} frames in {:.2} s: {:.0} photons/s (speed {:?}); daemon took {}, refused {}",
+        fed.photons,
+        fed.frames,
+        fed.wall_s,
+        fed.photons_per_s(),
+        args.speed,
+        fed.acked_photons,
+        fed.refused_photons
+    );
+    println!("alerts received per subscriber: {alerts:?}");
+    print_latency(&metrics);
     Ok(ExitCode::SUCCESS)
 }

@@ -316,6 +316,7 @@ impl Desk {
 }
 
 #[cfg(test)]
+#[allow(clippy::unwrap_used)] // tests may unwrap
 pub(crate) mod tests {
     use super::*;
     use std::time::Duration;
@@ -365,7 +366,7 @@ pub(crate) mod tests {
         assert_eq!(got.iter().map(|a| a.seq).collect::<Vec<_>>(), vec![1, 2, 3]);
         assert!(w.has_changed().unwrap());
         assert_eq!(*w.borrow_and_update(), 3);
-        let l = got[0].latency.clone().unwrap();
+        let l = got[0].latency.unwrap();
         assert!(l.journaled_unix_ns >= l.decided_unix_ns && l.decided_unix_ns > 0);
         assert_eq!(m.percentiles(Stage::Journal).count, 3);
         // Memory and disk agree.

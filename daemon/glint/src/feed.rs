@@ -261,9 +261,19 @@ where
         }
         last_seq = last_seq.max(seq_of(&frame));
         report.frames += 1;
-        sink.feed(frame)
-            .await
-            .with_context(|| format!("sending to {}", target.addr))?;
+        if let Err(e) = sink.feed(frame).await {
+            // The daemon hung up; its refusal, if it sent one, says why.
+            let _ = want_tx.send(0);
+            let why = match tokio::time::timeout(Duration::from_secs(2), reply_task).await {
+                Ok(Ok((_, refusals))) if !refusals.is_empty() => refusals.join("; "),
+                _ => e.to_string(),
+            };
+            bail!(
+                "{} ended the stream after {} frames: {why}",
+                target.addr,
+                report.frames
+            );
+        }
     }
     sink.flush().await?;
     let _ = reader.await;

@@ -390,11 +390,6 @@ impl Journal {
         Ok((journal, report))
     }
 
-    /// The directory holding the segments.
-    pub(crate) fn dir(&self) -> &Path {
-        &self.dir
-    }
-
     /// Sequence number of the newest record (0 for an empty journal).
     pub(crate) fn last_seq(&self) -> u64 {
         self.last_seq

@@ -225,11 +225,8 @@ async fn session(
                     r.detail
                 )));
             }
-            Some(subscriber_frame::Body::Heartbeat(h)) => {
-                if h.closing {
-                    return Ok(SessionEnd::Closed);
-                }
-            }
+            Some(subscriber_frame::Body::Heartbeat(h)) if h.closing => return Ok(SessionEnd::Closed),
+            Some(subscriber_frame::Body::Heartbeat(_)) => {}
             Some(subscriber_frame::Body::Alert(a)) => {
                 // After a reconnect the daemon resumes after `last_seen`; anything not newer is a duplicate.
                 if a.seq <= *last_seen {

@@ -19,6 +19,8 @@ mod journal;
 mod listen;
 mod logging;
 mod metrics;
+mod reach;
+mod replay;
 mod subscribers;
 mod timefmt;
 mod tls;

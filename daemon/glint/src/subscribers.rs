@@ -57,11 +57,6 @@ impl Watermarks {
         }
     }
 
-    /// Instrument `i`'s watermark, GPS ns (0 before its first photon).
-    pub(crate) fn get(&self, i: usize) -> i64 {
-        self.values.get(i).map_or(0, |v| v.load(Ordering::Relaxed))
-    }
-
     fn snapshot(&self) -> (Vec<String>, Vec<i64>) {
         (
             self.names.clone(),

@@ -27,22 +27,58 @@ pub fn poisson<R: Rng + ?Sized>(rng: &mut R, mean: f64) -> u64 {
     }
 }
 
-/// An energy from `dN/dE ~ E^-index` on `[lo, hi]` by the inverse of its distribution function.
-pub fn power_law<R: Rng + ?Sized>(rng: &mut R, index: f64, lo: f64, hi: f64) -> f64 {
-    let u = rng.random::<f64>();
-    power_law_quantile(u, index, lo, hi)
+/// A power law `dN/dx ~ x^-index` truncated to `[lo, hi]`, drawn by the inverse of its distribution
+/// function (the powers of the ends are worked out once).
+#[derive(Debug, Clone, Copy)]
+pub struct PowerLaw {
+    lo: f64,
+    hi: f64,
+    /// `1 - index`, or 0 for index 1 (then the law is `1/x`).
+    g: f64,
+    /// `lo^g`.
+    a: f64,
+    /// `hi^g - lo^g`, or `ln(hi/lo)` when g = 0.
+    span: f64,
 }
 
-/// The `u` quantile of `E^-index` on `[lo, hi]`.
-pub fn power_law_quantile(u: f64, index: f64, lo: f64, hi: f64) -> f64 {
-    let g = 1.0 - index;
-    let e = if g.abs() < 1e-12 {
-        lo * (hi / lo).powf(u)
-    } else {
-        let (a, b) = (lo.powf(g), hi.powf(g));
-        (a + u * (b - a)).powf(1.0 / g)
-    };
-    e.clamp(lo, hi)
+impl PowerLaw {
+    /// The law with `index` on `[lo, hi]` (0 < lo < hi, finite).
+    pub fn new(index: f64, lo: f64, hi: f64) -> Self {
+        let g = 1.0 - index;
+        if g.abs() < 1e-12 {
+            Self {
+                lo,
+                hi,
+                g: 0.0,
+                a: 0.0,
+                span: (hi / lo).ln(),
+            }
+        } else {
+            let a = lo.powf(g);
+            Self {
+                lo,
+                hi,
+                g,
+                a,
+                span: hi.powf(g) - a,
+            }
+        }
+    }
+
+    /// The `u` quantile, `u` in [0, 1].
+    pub fn quantile(&self, u: f64) -> f64 {
+        let x = if self.g == 0.0 {
+            self.lo * (u * self.span).exp()
+        } else {
+            (self.a + u * self.span).powf(1.0 / self.g)
+        };
+        x.clamp(self.lo, self.hi)
+    }
+
+    /// One draw.
+    pub fn draw<R: Rng + ?Sized>(&self, rng: &mut R) -> f64 {
+        self.quantile(rng.random::<f64>())
+    }
 }
 
 /// The cos-power acceptance shape `cos(z)^k` within `max_zenith_deg` (for `k > 0` nothing beyond 90 deg,
@@ -111,9 +147,8 @@ pub fn disperse_energy<R: Rng + ?Sized>(rng: &mut R, e_true: f64, sigma_ln: f64)
 #[derive(Debug, Clone, Copy)]
 pub struct AfterglowCurve {
     rise_s: f64,
-    decay_index: f64,
-    /// `1 + duration/rise`.
-    y_end: f64,
+    /// The tail in `y = 1 + t/rise`: `y^-decay_index` on `[1, 1 + duration/rise]`.
+    tail: PowerLaw,
     /// Share of the photons in the rise.
     rise_share: f64,
     /// Expected photons over the whole curve.
@@ -134,8 +169,7 @@ impl AfterglowCurve {
         let rise = 0.5 * rise_s;
         Self {
             rise_s,
-            decay_index,
-            y_end,
+            tail: PowerLaw::new(decay_index, 1.0, y_end),
             rise_share: rise / (rise + tail),
             mean_photons: peak_rate_hz * (rise + tail),
         }
@@ -154,7 +188,7 @@ impl AfterglowCurve {
             // Density proportional to (t + r) on [-r, 0].
             -self.rise_s * (1.0 - v.sqrt())
         } else {
-            let y = power_law_quantile(v, self.decay_index, 1.0, self.y_end);
+            let y = self.tail.quantile(v);
             self.rise_s * (y - 1.0)
         }
     }
@@ -168,9 +202,7 @@ pub const MAX_BURST_PROPOSALS: f64 = 2e7;
 /// effective area the instrument has there.
 #[derive(Debug, Clone, Copy)]
 struct Segment {
-    lo: f64,
-    hi: f64,
-    index: f64,
+    law: PowerLaw,
     area_max_m2: f64,
 }
 
@@ -248,9 +280,7 @@ impl EvaporationSampler {
             let integral = coeff * (lo.powf(1.0 - index) - hi.powf(1.0 - index)) / (index - 1.0);
             total += integral * area_max_m2 * dilution;
             segments.push(Segment {
-                lo,
-                hi,
-                index,
+                law: PowerLaw::new(index, lo, hi),
                 area_max_m2,
             });
             cumulative.push(total);
@@ -281,7 +311,7 @@ impl EvaporationSampler {
                 .partition_point(|&c| c <= x)
                 .min(self.segments.len().saturating_sub(1));
             let Some(seg) = self.segments.get(j) else { break };
-            let e = power_law(rng, seg.index, seg.lo, seg.hi);
+            let e = seg.law.draw(rng);
             let tau_up = self.tau_max_s.min((SPECTRUM_T1_GEV / e).powi(3));
             let tau = tau_up * rng.random::<f64>().powi(2);
             let keep = rng.random::<f64>() * seg.area_max_m2;

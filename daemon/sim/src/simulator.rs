@@ -19,7 +19,7 @@ use rand::{RngExt, SeedableRng};
 use rand_pcg::Pcg64;
 use serde::Serialize;
 
-use crate::draw::{self, AfterglowCurve, EvaporationSampler, MAX_BURST_PROPOSALS, ZenithShape};
+use crate::draw::{self, AfterglowCurve, EvaporationSampler, MAX_BURST_PROPOSALS, PowerLaw, ZenithShape};
 use crate::scenario::{Glitch, Problem, Scenario, Source, seconds_to_ns};
 use crate::sky::{SkyFrame, gps_ns_to_utc_string, offset_by};
 use crate::{SimError, TIMESCALES_S};
@@ -103,7 +103,7 @@ enum Shape {
     /// Over the field like the background (acceptance-weighted), background spectrum.
     AllSky,
     /// A point source with PSF scatter and its own spectrum.
-    Point { ra: f64, dec: f64, index: f64 },
+    Point { ra: f64, dec: f64, law: PowerLaw },
 }
 
 /// A source drawn chunk by chunk.
@@ -148,7 +148,7 @@ struct Kit {
     frame: SkyFrame,
     resp: InstrumentResponse,
     zenith: ZenithShape,
-    bg_index: f64,
+    bg_law: PowerLaw,
     t0: i64,
     t_end: i64,
     jitter_ns: i64,
@@ -179,16 +179,22 @@ impl Kit {
         (t + j).min(self.t_end - 1).max(t)
     }
 
-    fn energy(&self, rng: &mut Pcg64, index: f64) -> f64 {
-        let e = draw::power_law(rng, index, self.resp.energy_min_gev(), self.resp.energy_max_gev());
+    /// A reconstructed energy: the true one from `law`, then the energy dispersion.
+    fn energy(&self, rng: &mut Pcg64, law: &PowerLaw) -> f64 {
+        let e = law.draw(rng);
         draw::disperse_energy(rng, e, self.resp.energy_sigma_ln(e))
+    }
+
+    /// The power law of `index` over the instrument's energy range.
+    fn law(&self, index: f64) -> PowerLaw {
+        PowerLaw::new(index, self.resp.energy_min_gev(), self.resp.energy_max_gev())
     }
 
     /// A photon from the field like the background: zenith from the acceptance, azimuth uniform.
     fn all_sky(&self, rng: &mut Pcg64, t: i64) -> Photon {
         let cos_z = self.zenith.draw_cos(rng);
         let az = 360.0 * rng.random::<f64>();
-        let e = self.energy(rng, self.bg_index);
+        let e = self.energy(rng, &self.bg_law);
         let key = self.key(rng, t);
         let z = cos_z.acos().to_degrees();
         let (ra, dec) = self
@@ -295,7 +301,11 @@ impl Simulator {
         let kit = Kit {
             frame: SkyFrame::new(&spec.site, t0),
             zenith: ZenithShape::new(spec.background.zenith_cos_power, spec.response.max_zenith_deg),
-            bg_index: spec.background.spectral_index,
+            bg_law: PowerLaw::new(
+                spec.background.spectral_index,
+                resp.energy_min_gev(),
+                resp.energy_max_gev(),
+            ),
             t0,
             t_end,
             jitter_ns: scenario.jitter_ns,
@@ -478,15 +488,11 @@ impl Simulator {
                     return;
                 }
                 let n = draw::poisson(&mut rng, curve.mean_photons());
+                let law = kit.law(ag.spectral_index);
                 let mut photons = Vec::with_capacity(usize::try_from(n).unwrap_or(0));
                 for _ in 0..n {
                     let t = kit.quantise(ag.t_gps_ns + seconds_to_ns(curve.draw(&mut rng)));
-                    let e_true = draw::power_law(
-                        &mut rng,
-                        ag.spectral_index,
-                        kit.resp.energy_min_gev(),
-                        kit.resp.energy_max_gev(),
-                    );
+                    let e_true = law.draw(&mut rng);
                     let e = draw::disperse_energy(&mut rng, e_true, kit.resp.energy_sigma_ln(e_true));
                     let p = kit.near(
                         &mut rng,
@@ -520,7 +526,7 @@ impl Simulator {
                     shape: Shape::Point {
                         ra: st.ra_deg,
                         dec: st.dec_deg,
-                        index: st.spectral_index,
+                        law: kit.law(st.spectral_index),
                     },
                 });
             }
@@ -546,7 +552,7 @@ impl Simulator {
                     for _ in 0..*n {
                         let p = match position {
                             Some((ra, dec)) => {
-                                let e = kit.energy(&mut rng, kit.bg_index);
+                                let e = kit.energy(&mut rng, &kit.bg_law);
                                 kit.near(&mut rng, t, *ra, *dec, *spread_deg, e)
                             }
                             None => kit.all_sky(&mut rng, t),
@@ -618,13 +624,8 @@ impl Simulator {
                 let t = kit.quantise(lo + (s.rng.random::<f64>() * (hi - lo) as f64) as i64);
                 let p = match s.shape {
                     Shape::AllSky => kit.all_sky(&mut s.rng, t),
-                    Shape::Point { ra, dec, index } => {
-                        let e_true = draw::power_law(
-                            &mut s.rng,
-                            index,
-                            kit.resp.energy_min_gev(),
-                            kit.resp.energy_max_gev(),
-                        );
+                    Shape::Point { ra, dec, law } => {
+                        let e_true = law.draw(&mut s.rng);
                         let e = draw::disperse_energy(&mut s.rng, e_true, kit.resp.energy_sigma_ln(e_true));
                         let p = kit.near(&mut s.rng, t, ra, dec, kit.resp.psf_sigma_deg(e_true), e);
                         if !kit.in_fov(ra, dec, t) {

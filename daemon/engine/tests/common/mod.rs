@@ -33,8 +33,14 @@ pub fn response(psf68_deg: f64, max_zenith_deg: f64, clock_precision_ns: i64) ->
             zenith_deg: vec![0.0, max_zenith_deg],
             area_m2: vec![vec![1e3, 1e4, 1e5], vec![5e2, 5e3, 5e4]],
         },
-        psf68_deg: CurveTable { energy_gev: vec![100.0, 1e5], value: vec![psf68_deg, psf68_deg] },
-        energy_resolution: CurveTable { energy_gev: vec![100.0, 1e5], value: vec![0.3, 0.3] },
+        psf68_deg: CurveTable {
+            energy_gev: vec![100.0, 1e5],
+            value: vec![psf68_deg, psf68_deg],
+        },
+        energy_resolution: CurveTable {
+            energy_gev: vec![100.0, 1e5],
+            value: vec![0.3, 0.3],
+        },
         systematic_deg: 0.0,
         clock_precision_ns,
     };
@@ -81,7 +87,14 @@ pub fn background_photon(rng: &mut impl Rng, t: i64) -> Ph {
     let zen = c.clamp(-1.0, 1.0).acos().to_degrees() as f32;
     let az = (360.0 * rng.random::<f64>()) as f32 % 360.0;
     let (ra, dec) = from_frame(zen, az);
-    Ph { t, ra, dec, zen, az, e: energy(rng) }
+    Ph {
+        t,
+        ra,
+        dec,
+        zen,
+        az,
+        e: energy(rng),
+    }
 }
 
 /// Poisson background at `rate_hz` over [t_from, t_to).
@@ -121,27 +134,58 @@ pub fn normal(rng: &mut impl Rng) -> f64 {
 
 /// `k` photons from a point at (ra, dec) smeared by a Gaussian PSF of width sigma, uniform in
 /// [t_start, t_start + dur].
-pub fn cluster(rng: &mut impl Rng, ra: f64, dec: f64, sigma_deg: f64, k: usize, t_start: i64, dur: i64) -> Vec<Ph> {
+pub fn cluster(
+    rng: &mut impl Rng,
+    ra: f64,
+    dec: f64,
+    sigma_deg: f64,
+    k: usize,
+    t_start: i64,
+    dur: i64,
+) -> Vec<Ph> {
     let c = unit(ra, dec);
     // Tangent basis at c.
     let e1 = {
         let z = [0.0, 0.0, 1.0];
-        let x = [z[1] * c[2] - z[2] * c[1], z[2] * c[0] - z[0] * c[2], z[0] * c[1] - z[1] * c[0]];
+        let x = [
+            z[1] * c[2] - z[2] * c[1],
+            z[2] * c[0] - z[0] * c[2],
+            z[0] * c[1] - z[1] * c[0],
+        ];
         let n = (x[0] * x[0] + x[1] * x[1] + x[2] * x[2]).sqrt();
-        if n < 1e-9 { [1.0, 0.0, 0.0] } else { [x[0] / n, x[1] / n, x[2] / n] }
+        if n < 1e-9 {
+            [1.0, 0.0, 0.0]
+        } else {
+            [x[0] / n, x[1] / n, x[2] / n]
+        }
     };
-    let e2 = [c[1] * e1[2] - c[2] * e1[1], c[2] * e1[0] - c[0] * e1[2], c[0] * e1[1] - c[1] * e1[0]];
+    let e2 = [
+        c[1] * e1[2] - c[2] * e1[1],
+        c[2] * e1[0] - c[0] * e1[2],
+        c[0] * e1[1] - c[1] * e1[0],
+    ];
     (0..k)
         .map(|_| {
             let dx = normal(rng) * sigma_deg.to_radians();
             let dy = normal(rng) * sigma_deg.to_radians();
-            let v = [c[0] + dx * e1[0] + dy * e2[0], c[1] + dx * e1[1] + dy * e2[1], c[2] + dx * e1[2] + dy * e2[2]];
+            let v = [
+                c[0] + dx * e1[0] + dy * e2[0],
+                c[1] + dx * e1[1] + dy * e2[1],
+                c[2] + dx * e1[2] + dy * e2[2],
+            ];
             let n = (v[0] * v[0] + v[1] * v[1] + v[2] * v[2]).sqrt();
             let dec = (v[2] / n).asin().to_degrees();
             let ra = v[1].atan2(v[0]).to_degrees().rem_euclid(360.0);
             let t = t_start + (rng.random::<f64>() * dur as f64) as i64;
             let (zen, az) = to_frame(ra, dec);
-            Ph { t, ra, dec, zen, az, e: energy(rng) }
+            Ph {
+                t,
+                ra,
+                dec,
+                zen,
+                az,
+                e: energy(rng),
+            }
         })
         .collect()
 }
@@ -165,12 +209,23 @@ pub fn batch(seq: u64, ph: &[Ph]) -> PhotonBatch {
 }
 
 pub fn status(seq: u64, now: i64) -> StreamStatus {
-    StreamStatus { seq, now_gps_ns: now, dead: vec![] }
+    StreamStatus {
+        seq,
+        now_gps_ns: now,
+        dead: vec![],
+    }
 }
 
 /// Feeds time-sorted photons in batches covering `batch_ns` of event time each, then a status at `end`.
 /// Returns the findings and the next sequence number.
-pub fn feed(engine: &mut Engine, ph: &[Ph], batch_ns: i64, end: i64, out: &mut Vec<Finding>, seq0: u64) -> u64 {
+pub fn feed(
+    engine: &mut Engine,
+    ph: &[Ph],
+    batch_ns: i64,
+    end: i64,
+    out: &mut Vec<Finding>,
+    seq0: u64,
+) -> u64 {
     let mut seq = seq0;
     let mut i = 0;
     while i < ph.len() {
