@@ -3,5 +3,6 @@
 
 #![allow(clippy::unwrap_used)] // tests may unwrap: a panic is the failure report
 
+mod cli;
 mod live;
 mod util;

@@ -89,9 +89,21 @@ fn main() {
     };
     let c0 = cpu();
     let t = std::time::Instant::now();
-    for b in &all { e.push_batch(b, &mut out).unwrap(); }
+    for b in &all {
+        e.push_batch(b, &mut out).unwrap();
+    }
     let el = t.elapsed();
     let c1 = cpu();
-    eprintln!("cpu {:.2} s -> {:.0} photons per cpu-second", c1 - c0, n as f64 / (c1 - c0));
-    eprintln!("{} photons in {:?}: {:.0} /s; stats {:?}", n, el, n as f64 / el.as_secs_f64(), e.stats().model_builds);
+    eprintln!(
+        "cpu {:.2} s -> {:.0} photons per cpu-second",
+        c1 - c0,
+        n as f64 / (c1 - c0)
+    );
+    eprintln!(
+        "{} photons in {:?}: {:.0} /s; stats {:?}",
+        n,
+        el,
+        n as f64 / el.as_secs_f64(),
+        e.stats().model_builds
+    );
 }

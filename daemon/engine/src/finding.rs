@@ -33,7 +33,8 @@ pub struct Flash {
     pub start_ns: i64,
     /// Window end (inclusive), GPS ns: the seed photon's time.
     pub end_ns: i64,
-    /// Position: unit-vector mean of the photons' directions, ICRS degrees.
+    /// Position, ICRS degrees: the unit-vector mean of the disc photons, refined by a few mean-shift steps
+    /// (mean of the window's photons within twice the search radius) that undo the pull toward the seed.
     pub ra_deg: f64,
     /// Declination of the position, degrees.
     pub dec_deg: f64,

@@ -84,7 +84,10 @@ impl PixMap {
     fn new(depth: u8) -> Self {
         let n = cdshealpix::n_hash(depth);
         if n <= 1 << 20 {
-            Self::Dense { slots: vec![NONE; n as usize], len: 0 }
+            Self::Dense {
+                slots: vec![NONE; n as usize],
+                len: 0,
+            }
         } else {
             Self::Hashed(HashMap::default())
         }
@@ -272,7 +275,13 @@ impl SkyIndex {
             None => self.open(pix),
         };
         self.buckets[slot as usize].hot.push_back(Hot { t: p.t, v });
-        let cold = Cold { ra: p.ra, dec: p.dec, energy: p.energy, zenith: p.zenith, azimuth: p.azimuth };
+        let cold = Cold {
+            ra: p.ra,
+            dec: p.dec,
+            energy: p.energy,
+            zenith: p.zenith,
+            azimuth: p.azimuth,
+        };
         self.fifo.push_back(Entry { t: p.t, slot, cold });
         slot
     }
@@ -303,7 +312,11 @@ impl SkyIndex {
             // An upper bound on the cell's centre-to-vertex distance (cdshealpix), with 1% to spare.
             let bound = cdshealpix::largest_center_to_vertex_distance(self.depth, lon, lat) * 1.01;
             let reach = self.radius_rad + bound;
-            let cos_reach = if reach >= std::f64::consts::PI { -2.0 } else { reach.cos() };
+            let cos_reach = if reach >= std::f64::consts::PI {
+                -2.0
+            } else {
+                reach.cos()
+            };
             *g = [cl * co, cl * so, sl, cos_reach];
         }
         self.geo[slot as usize] = geo;
@@ -393,6 +406,30 @@ impl SkyIndex {
             .take_while(|e| e.t == h.t)
             .find(|e| e.slot == slot && unit_vector(e.cold.ra, e.cold.dec) == h.v)
             .map(|e| e.cold)
+    }
+
+    /// Calls `f` for the time and direction of every held photon with time >= `t_from` in the pixels covering
+    /// a cone (approximate cover, exact angle check by the caller), pixels in index order.
+    pub(crate) fn for_each_hot_in_cone(
+        &self,
+        ra_deg: f64,
+        dec_deg: f64,
+        radius_deg: f64,
+        t_from: i64,
+        mut f: impl FnMut(&Hot),
+    ) {
+        let lat = dec_deg
+            .to_radians()
+            .clamp(-std::f64::consts::FRAC_PI_2, std::f64::consts::FRAC_PI_2);
+        let radius = radius_deg.to_radians().min(std::f64::consts::PI);
+        let cover = self.layer.cone_coverage_approx(ra_deg.to_radians(), lat, radius);
+        for pix in cover.flat_iter() {
+            if let Some(s) = self.map.get(pix) {
+                let hot = &self.buckets[s as usize].hot;
+                let start = hot.partition_point(|h| h.t < t_from);
+                hot.range(start..).for_each(&mut f);
+            }
+        }
     }
 
     /// Calls `f` for every held photon with time >= `t_from` within `radius_deg` (approximate pixel cover,
@@ -522,8 +559,9 @@ mod tests {
 
     /// Every bucket's neighbour cache agrees with a fresh lookup.
     fn check_links(idx: &SkyIndex) {
-        let active: Vec<u32> =
-            (0..idx.buckets.len() as u32).filter(|s| !idx.free.contains(s)).collect();
+        let active: Vec<u32> = (0..idx.buckets.len() as u32)
+            .filter(|s| !idx.free.contains(s))
+            .collect();
         assert_eq!(active.len(), idx.map.len());
         for slot in active {
             let m = &idx.meta[slot as usize];

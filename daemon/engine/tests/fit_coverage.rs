@@ -5,7 +5,7 @@
 
 use glint_engine::fit::{FitInput, FitResult, fit_evaporation};
 use glint_science::hawking::{self, PARSEC_M};
-use glint_science::instrument::{AreaTable, CurveTable, InstrumentResponse, ResponseSpec};
+use glint_science::instrument::{InstrumentResponse, InstrumentSpec};
 use rand::{RngExt, SeedableRng};
 use rand_distr::{Distribution, Poisson, StandardNormal};
 use rand_pcg::Pcg64;
@@ -18,35 +18,16 @@ const T0_NS: i64 = 1_400_000_000_000_000_000;
 /// Expected signal photons of the standard scenario.
 const SIGNAL_PHOTONS: f64 = 40.0;
 
-/// An invented ground array (numbers for tests of statistical behaviour only, not check values):
-/// area rising from 300 GeV to 100 TeV, resolution 50% falling to 25%, 10 ns clock.
+/// The demo ground array `deploy/instruments/ventisca-array.toml` (invented numbers: used here for the
+/// fit's statistical behaviour, never as check values).
 fn ground_response() -> InstrumentResponse {
-    let energy = vec![300.0, 1e3, 3e3, 1e4, 3e4, 1e5];
-    let spec = ResponseSpec {
-        max_zenith_deg: 45.0,
-        energy_min_gev: 300.0,
-        energy_max_gev: 1e5,
-        effective_area: AreaTable {
-            energy_gev: energy.clone(),
-            zenith_deg: vec![0.0, 30.0, 45.0],
-            area_m2: vec![
-                vec![300.0, 2e3, 6e3, 1.2e4, 2e4, 3e4],
-                vec![150.0, 1.2e3, 4e3, 9e3, 1.6e4, 2.5e4],
-                vec![50.0, 500.0, 2e3, 5e3, 1e4, 1.5e4],
-            ],
-        },
-        psf68_deg: CurveTable {
-            energy_gev: energy,
-            value: vec![1.5, 0.8, 0.5, 0.3, 0.25, 0.2],
-        },
-        energy_resolution: CurveTable {
-            energy_gev: vec![300.0, 1e3, 1e4, 1e5],
-            value: vec![0.5, 0.4, 0.3, 0.25],
-        },
-        systematic_deg: 0.0,
-        clock_precision_ns: 10,
-    };
-    InstrumentResponse::from_spec(&spec).unwrap()
+    let path = concat!(
+        env!("CARGO_MANIFEST_DIR"),
+        "/../../deploy/instruments/ventisca-array.toml"
+    );
+    let text = std::fs::read_to_string(path).expect("the demo instrument file is in the repository");
+    let spec: InstrumentSpec = toml::from_str(&text).expect("the demo instrument file parses");
+    InstrumentResponse::from_spec(&spec.response).expect("the demo instrument passes its checks")
 }
 
 /// What the instrument sees of one candidate: response, direction, disc, background, window.
@@ -159,7 +140,9 @@ impl<'a> BurstSampler<'a> {
     }
 
     fn draw(&self, distance_pc: f64, rng: &mut Pcg64, times: &mut Vec<i64>, energies: &mut Vec<f64>) {
-        let n = Poisson::new(self.proposals(distance_pc)).unwrap().sample(rng) as u64;
+        let n = Poisson::new(self.proposals(distance_pc))
+            .expect("a finite positive mean")
+            .sample(rng) as u64;
         for _ in 0..n {
             if let Some((tau, e)) = self.propose(rng) {
                 times.push(T0_NS - (tau * 1e9).round() as i64);
@@ -207,7 +190,7 @@ fn calibration() -> &'static Calibration {
 fn draw_background(s: &Scenario, rng: &mut Pcg64, times: &mut Vec<i64>, energies: &mut Vec<f64>) {
     let (start, end) = s.window();
     let n = Poisson::new(s.background_rate_hz * (s.pre_s + s.post_s))
-        .unwrap()
+        .expect("a finite positive mean")
         .sample(rng) as u64;
     let (lo, hi) = (s.response.energy_min_gev(), s.response.energy_max_gev());
     let a = 1.0 - s.background_index;
@@ -232,7 +215,7 @@ fn draw_afterglow(
 ) {
     let (start, end) = s.window();
     let (lo, hi) = (s.response.energy_min_gev(), s.response.energy_max_gev());
-    let n = Poisson::new(photons).unwrap().sample(rng) as u64;
+    let n = Poisson::new(photons).expect("a finite positive mean").sample(rng) as u64;
     for _ in 0..n {
         let u: f64 = rng.random();
         let t = start + ((onset_s - decay_s * (1.0 - u).ln()) * 1e9) as i64;
@@ -300,6 +283,20 @@ fn distance_interval_covers_the_true_distance_in_90_percent_of_trials() {
             "{r:?}"
         );
     }
+}
+
+#[test]
+fn distance_interval_coverage_holds_at_30_photons_on_equal_background() {
+    // 30 expected burst photons (counts scale as d^-2) on 1 Hz x 30 s = 30 expected background photons.
+    let s = Scenario {
+        background_rate_hz: 1.0,
+        ..Scenario::standard()
+    };
+    let d = calibration().distance_pc * (SIGNAL_PHOTONS / 30.0).sqrt();
+    let trials = burst_trials(&s, d, 6);
+    let covered = fraction(&trials, |r| r.distance_pc_lo <= d && d <= r.distance_pc_hi);
+    eprintln!("30 photons on 30 background: the 90% interval covers {d:.4} pc in {covered:.3} of {TRIALS}");
+    assert!((0.85..=0.95).contains(&covered), "coverage {covered}");
 }
 
 #[test]

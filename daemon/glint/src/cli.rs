@@ -31,6 +31,8 @@ pub(crate) struct Cli {
 enum Command {
     /// Check a configuration file and list every problem in it.
     CheckConfig(CheckConfigArgs),
+    /// Simulate an observatory's photon stream from a scenario and write it as a recording.
+    Simulate(crate::simulate::SimulateArgs),
     /// Replay recordings through the engine as fast as the CPU allows and print the alerts as JSON lines.
     Replay(crate::replay::ReplayArgs),
     /// Print what a configured instrument can see: background, critical counts, reach, upper limits.
@@ -81,6 +83,7 @@ pub(crate) fn config_or_exit(path: Option<&PathBuf>) -> anyhow::Result<Config> {
 pub(crate) fn dispatch(cli: Cli) -> anyhow::Result<ExitCode> {
     let result = match cli.command {
         Command::CheckConfig(a) => check_config(&a),
+        Command::Simulate(a) => crate::simulate::run(&a),
         Command::Replay(a) => crate::replay::run(&a),
         Command::Reach(a) => crate::reach::run(&a),
         Command::Run(a) => crate::daemon::run_command(a),

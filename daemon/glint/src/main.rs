@@ -21,6 +21,7 @@ mod logging;
 mod metrics;
 mod reach;
 mod replay;
+mod simulate;
 mod subscribers;
 mod timefmt;
 mod tls;

@@ -460,8 +460,13 @@ pub fn parse_scenario(text: &str, base_dir: &Path, name: &str) -> Result<Scenari
             p.add("batch_max_photons", format!("{bmp} is outside [1, 65536]"));
         }
         p.range("batch_max_s", h.batch_max_s, 0.0, 60.0, false);
-        // The daemon's default reorder tolerance is 0.02 s; jitter at or above it would make photons late.
-        p.range("jitter_s", h.jitter_s, 0.0, 0.0199, true);
+        // Jitter at or above the daemon's default reorder tolerance would make photons late.
+        if !(h.jitter_s.is_finite() && (0.0..0.02).contains(&h.jitter_s)) {
+            p.add(
+                "jitter_s",
+                format!("{} is outside [0, 0.02): it must stay below the daemon's default reorder tolerance, 0.02 s", h.jitter_s),
+            );
+        }
         p.range("status_period_s", h.status_period_s, 0.0, 3_600.0, false);
         if let Some(n) = &h.name
             && n.trim().is_empty()

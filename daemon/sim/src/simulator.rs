@@ -402,7 +402,8 @@ impl Simulator {
         // Whether (ra, dec) is ever in the field of view over [lo, hi]; the lowest zenith seen.
         let visible = |ra: f64, dec: f64, lo: i64, hi: i64| -> (bool, f64) {
             let (lo, hi) = (lo.max(kit.t0), hi.min(kit.t_end).max(lo.max(kit.t0)));
-            let steps = 400_i64;
+            // At least one look a minute (a source may graze the edge of the field briefly).
+            let steps = ((hi - lo) / 60_000_000_000).clamp(400, 50_000);
             let mut best = f64::INFINITY;
             for s in 0..=steps {
                 let t = lo + (((hi - lo) as f64) * s as f64 / steps as f64) as i64;
