@@ -5,4 +5,5 @@
 
 mod cli;
 mod live;
+mod replay;
 mod util;
