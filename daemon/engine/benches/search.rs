@@ -1,7 +1,7 @@
 //! Photons per second through the engine at 1 kHz of background with the default ladder (0.01 to 30 s) and
 //! search radius (0.5 deg): the full search, and the reorder stage alone (`search_enabled = false`). Each
 //! iteration feeds 60 s of event time in 0.1 s batches to an engine already warmed by 40 s of data.
-#![allow(missing_docs)]
+#![allow(missing_docs, clippy::unwrap_used)] // a benchmark may unwrap
 
 use criterion::{BatchSize, Criterion, Throughput, criterion_group, criterion_main};
 use glint_engine::{Engine, EngineConfig};

@@ -2,10 +2,6 @@
 //! jump, identical timestamps, spread wider than the PSF), the evaporation fit, and the verdict. Pure
 //! functions of what the candidate collected while it was open; the engine calls them when the watermark
 //! passes the end of the persistence window (or at `finish`, cut short).
-//!
-//! Verdict rules, in order: `instrumental` if any instrumental sign passes its threshold; else `undecided`
-//! if dead time covers more than `max_dead_fraction` of the persistence window or the input ended first;
-//! else `persistent` if the post- or pre-flash excess passes its significance; else `isolated`.
 
 use glint_science::geometry::gaussian_containment;
 use glint_science::instrument::InstrumentResponse;
@@ -88,6 +84,10 @@ pub(crate) fn spread_ratio(f: &Flash, response: &InstrumentResponse) -> f64 {
 }
 
 /// Builds the assessment and, for an instrumental verdict, the withdrawal.
+///
+/// Verdict rules, in order: `instrumental` if any instrumental sign passes its threshold; else `undecided`
+/// if dead time covers more than `max_dead_fraction` of the persistence window or the input ended first;
+/// else `persistent` if the post- or pre-flash excess passes its significance; else `isolated`.
 pub(crate) fn assess(inp: &AssessInput<'_>) -> (Assessment, Option<Withdrawal>) {
     let c = inp.cand;
     let cfg = inp.cfg;

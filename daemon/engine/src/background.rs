@@ -1,10 +1,8 @@
-//! Background model (SCIENCE.md section 4): the expected count in a disc and window is
-//! b = R x dt x a(zenith, azimuth) x Omega_r. This module holds both factors: the trailing all-sky rate R
-//! (released photons over live time) and the acceptance density a in the instrument frame, a time-decayed
-//! histogram of 32 zenith bins of equal solid angle (uniform in cos zenith up to the field-of-view edge) by
-//! 8 azimuth bins of 45 degrees, normalised to 1 over the field of view. The map survives restarts through a
-//! versioned, CRC-checked blob. Memory is fixed by the bin count; the rate keeps one time per photon in its
-//! retention window.
+//! Background model (SCIENCE.md section 4): b = R x dt x a(zenith, azimuth) x Omega_r. R is the trailing
+//! all-sky rate (released photons over live time); a is the acceptance density in the instrument frame, a
+//! time-decayed histogram of 32 equal-solid-angle zenith bins (uniform in cos zenith up to the field's edge)
+//! by 8 azimuth bins of 45 degrees, normalised to 1 over the field and saved as a versioned, CRC-checked blob.
+//! Memory: the fixed bins, plus one time per photon in the rate's retention window.
 
 use std::collections::VecDeque;
 
@@ -27,6 +25,8 @@ const RESCALE_EXPONENT: f64 = 200.0;
 #[derive(Debug, Clone)]
 pub(crate) struct AcceptanceMap {
     cos_max: f64,
+    /// Zenith angles (degrees) of the inner bin edges, so binning needs no trigonometry per photon.
+    zenith_edges: [f64; N_ZENITH - 1],
     max_zenith_deg: f64,
     tau_ns: f64,
     /// Bin weights scaled by exp((t_ref - t_now)/tau); the true weight at time t is w * exp(-(t - t_ref)/tau).
@@ -44,8 +44,15 @@ pub(crate) struct AcceptanceMap {
 
 impl AcceptanceMap {
     pub(crate) fn new(max_zenith_deg: f64, tau_s: f64) -> Self {
+        let cos_max = max_zenith_deg.to_radians().cos();
+        let mut zenith_edges = [0.0; N_ZENITH - 1];
+        for (i, e) in zenith_edges.iter_mut().enumerate() {
+            let c = 1.0 - (1.0 - cos_max) * (i + 1) as f64 / N_ZENITH as f64;
+            *e = c.clamp(-1.0, 1.0).acos().to_degrees();
+        }
         Self {
-            cos_max: max_zenith_deg.to_radians().cos(),
+            cos_max,
+            zenith_edges,
             max_zenith_deg,
             tau_ns: tau_s * 1e9,
             w: vec![0.0; N_BINS],
@@ -68,10 +75,7 @@ impl AcceptanceMap {
         if !(0.0..=self.max_zenith_deg).contains(&z) {
             return None;
         }
-        let c = z.to_radians().cos();
-        let span = 1.0 - self.cos_max;
-        let iz = (((1.0 - c) / span) * N_ZENITH as f64) as usize;
-        let iz = iz.min(N_ZENITH - 1);
+        let iz = self.zenith_edges.partition_point(|&e| e <= z);
         let az = f64::from(azimuth_deg).rem_euclid(360.0);
         let ia = ((az / 360.0) * N_AZIMUTH as f64) as usize;
         let ia = ia.min(N_AZIMUTH - 1);
@@ -98,9 +102,9 @@ impl AcceptanceMap {
             .t_ref
             .zip(self.t_last)
             .map_or(1.0, |(r, l)| self.growth(l, r));
-        for iz in 0..N_ZENITH {
-            for ia in 0..N_AZIMUTH {
-                self.w[iz * N_AZIMUTH + ia] += weight * band[iz] / sum * scale;
+        for (row, &b) in self.w.chunks_exact_mut(N_AZIMUTH).zip(&band) {
+            for w in row {
+                *w += weight * b / sum * scale;
             }
         }
         self.total += weight * scale;
@@ -304,6 +308,11 @@ impl AllSky {
         self.released += 1;
     }
 
+    /// Heap bytes, from capacity.
+    pub(crate) fn heap_bytes(&self) -> usize {
+        self.times.capacity() * size_of::<i64>()
+    }
+
     /// Photons released so far (all of them with time <= the newest release).
     pub(crate) fn released(&self) -> u64 {
         self.released
@@ -361,6 +370,10 @@ mod tests {
         assert_eq!(m.bin(60.1, 0.0), None);
         assert_eq!(m.bin(-1.0, 0.0), None);
         assert_eq!(m.bin(10.0, 360.0), m.bin(10.0, 0.0));
+        // Equal solid angle: the first edge is at acos(1 - (1 - cos 60)/32) = 10.14 deg [calc].
+        let edge = (1.0 - 0.5 / 32.0f64).acos().to_degrees() as f32;
+        assert_eq!(m.bin(edge - 0.01, 0.0), Some(0));
+        assert_eq!(m.bin(edge + 0.01, 0.0), Some(N_AZIMUTH as u16));
     }
 
     #[test]

@@ -208,3 +208,63 @@ impl EngineConfig {
         }
     }
 }
+
+#[cfg(test)]
+#[allow(clippy::unwrap_used)] // tests may unwrap
+mod tests {
+    use super::*;
+    use glint_science::instrument::{AreaTable, CurveTable, ResponseSpec};
+
+    fn response() -> InstrumentResponse {
+        InstrumentResponse::from_spec(&ResponseSpec {
+            max_zenith_deg: 45.0,
+            energy_min_gev: 100.0,
+            energy_max_gev: 1e5,
+            effective_area: AreaTable {
+                energy_gev: vec![100.0, 1e5],
+                zenith_deg: vec![0.0, 45.0],
+                area_m2: vec![vec![1e3, 1e5], vec![5e2, 5e4]],
+            },
+            psf68_deg: CurveTable {
+                energy_gev: vec![100.0, 1e5],
+                value: vec![0.5, 0.5],
+            },
+            energy_resolution: CurveTable {
+                energy_gev: vec![100.0, 1e5],
+                value: vec![0.3, 0.3],
+            },
+            systematic_deg: 0.0,
+            clock_precision_ns: 100,
+        })
+        .unwrap()
+    }
+
+    #[test]
+    fn defaults_pass_and_every_problem_is_reported_with_its_key() {
+        let good = EngineConfig::with_defaults("array", response());
+        assert_eq!(good.check(), Ok(()));
+        let mut bad = good.clone();
+        bad.ladder_s = vec![0.1, 0.1, 5000.0];
+        bad.search_radius_deg = 0.0;
+        bad.far_per_year = f64::NAN;
+        bad.assess.max_dead_fraction = 2.0;
+        bad.max_clock_jump_ns = 0;
+        let Err(EngineError::Config(problems)) = bad.check() else {
+            panic!("expected config errors")
+        };
+        for key in [
+            "ladder_s[2]",
+            "ladder_s: must be strictly increasing",
+            "search_radius_deg",
+            "far_per_year",
+            "assess.max_dead_fraction",
+            "max_clock_jump_ns",
+        ] {
+            assert!(
+                problems.iter().any(|p| p.starts_with(key)),
+                "{key} missing from {problems:?}"
+            );
+        }
+        assert_eq!(problems.len(), 6, "{problems:?}");
+    }
+}

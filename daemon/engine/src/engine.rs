@@ -102,6 +102,9 @@ pub struct EngineStats {
     pub active_pixels: u64,
     /// HEALPix depth of the sky index.
     pub sky_depth: u8,
+    /// Heap bytes held by the engine's photon state (sky index, release-order ring, all-sky times, reorder
+    /// buffer, open candidates), from the containers' capacities; fixed tables not included.
+    pub held_bytes: u64,
 }
 
 /// Derived constants of a configuration.
@@ -204,6 +207,18 @@ pub(crate) struct Candidate {
     pub(crate) late_crossings: u64,
 }
 
+/// A seed's lowest-p crossing: group index, timescale, counts, background, ln p, and the mask of every
+/// timescale that crossed at that seed.
+#[derive(Debug, Clone, Copy)]
+struct Crossing {
+    i: usize,
+    k: usize,
+    n: u64,
+    b: f64,
+    ln_p: f64,
+    mask: u64,
+}
+
 /// A released photon with what the search derives from it.
 #[derive(Debug, Clone, Copy)]
 struct Released {
@@ -243,6 +258,21 @@ struct StreamClock {
 ///
 /// [`save_state`](Self::save_state) and [`load_state`](Self::load_state) carry the acceptance map across
 /// restarts; load before the first frame.
+///
+/// # Search, candidates, assessment
+///
+/// Every released photon seeds one test per timescale (SCIENCE.md section 4) unless its window touches dead
+/// time or reaches before the stream began (counted in `skipped_dead`). No test runs until the warm-up rule
+/// is met: the acceptance map holds `warmup_photons` of decayed weight (a configured cos-power prior counts
+/// as that much weight; a loaded map meets it at once) and half the rate window was live. Thresholds are
+/// rebuilt when the all-sky rate moves by more than 2% or every min(60 s, tau / 10) of event time.
+///
+/// The first crossing opens a candidate and emits a [`Flash`] at once. A later crossing whose seed lies
+/// within max(3 r, r + 3 sigma_PSF) of the candidate's position and no later than its first crossing plus the
+/// longest timescale updates it (its best trigger is the lowest p); one after that but inside the persistence
+/// window is only counted (`crossings_after_flash`). The candidate stays open for the persistence window,
+/// max(`persistence_min_s`, `persistence_timescale_factor` x the best timescale) after its last crossing, and
+/// is assessed when the watermark passes its end.
 ///
 /// # Memory
 ///
@@ -338,6 +368,14 @@ impl Engine {
         s.warm = self.warm;
         s.held_photons = self.sky.len() as u64;
         s.active_pixels = self.sky.active_pixels() as u64;
+        s.held_bytes = (self.sky.heap_bytes()
+            + self.all_sky.heap_bytes()
+            + self.reorder.heap_bytes()
+            + self
+                .cands
+                .iter()
+                .map(|c| c.photons.capacity() * size_of::<CandPhoton>())
+                .sum::<usize>()) as u64;
         s
     }
 
@@ -381,6 +419,13 @@ impl Engine {
                 self.stats.refused_invalid += 1;
                 return Err(bad(format!(
                     "photon {i}: direction ({ra}, {dec}) is not a valid ICRS position"
+                )));
+            }
+            let (e, z, a) = (batch.energy_gev[i], batch.zenith_deg[i], batch.azimuth_deg[i]);
+            if !(e.is_finite() && e > 0.0 && z.is_finite() && a.is_finite()) {
+                self.stats.refused_invalid += 1;
+                return Err(bad(format!(
+                    "photon {i}: energy {e} GeV, zenith {z} deg, azimuth {a} deg must be finite, energy > 0"
                 )));
             }
         }
@@ -672,7 +717,7 @@ impl Engine {
                 return;
             }
         };
-        if !(model.dens[usize::from(bin)] > 0.0) {
+        if model.dens[usize::from(bin)] <= 0.0 {
             self.stats.seeds_outside_fov += 1;
             return;
         }
@@ -733,20 +778,29 @@ impl Engine {
             }
         }
         if let Some((k, n, b, ln_p)) = best {
-            self.on_crossing(i, k, n, b, ln_p, mask, out);
+            self.on_crossing(
+                Crossing {
+                    i,
+                    k,
+                    n,
+                    b,
+                    ln_p,
+                    mask,
+                },
+                out,
+            );
         }
     }
 
-    fn on_crossing(
-        &mut self,
-        i: usize,
-        k: usize,
-        n: u64,
-        b: f64,
-        ln_p: f64,
-        mask: u64,
-        out: &mut Vec<Finding>,
-    ) {
+    fn on_crossing(&mut self, x: Crossing, out: &mut Vec<Finding>) {
+        let Crossing {
+            i,
+            k,
+            n,
+            b,
+            ln_p,
+            mask,
+        } = x;
         let g = self.group[i];
         let t = g.p.t;
         let dt = self.p.ladder_ns[k];

@@ -38,7 +38,4 @@ pub enum EngineError {
     /// A saved state blob could not be read.
     #[error("cannot load engine state: {0}")]
     State(String),
-    /// A statistics routine refused its input (e.g. a rate of zero for the trials bound).
-    #[error("statistics: {0}")]
-    Science(String),
 }

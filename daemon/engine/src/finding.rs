@@ -141,8 +141,9 @@ pub struct Withdrawal {
     pub reason: String,
 }
 
-/// Everything the engine reports.
+/// Everything the engine reports. Findings are rare (a few per day), so the variants stay unboxed.
 #[derive(Debug, Clone, PartialEq)]
+#[allow(clippy::large_enum_variant)]
 pub enum Finding {
     /// A new candidate's first crossing, reported at once.
     Flash(Flash),

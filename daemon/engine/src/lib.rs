@@ -1,9 +1,9 @@
 //! glint's trigger engine: a synchronous state machine driven by event time. Frames go in through
-//! `push_batch` / `push_status`, findings come out into a caller's buffer. No I/O, no clock, no random
-//! numbers, no hash-map order in the outputs: live runs and replays give the same findings.
+//! [`Engine::push_batch`] and [`Engine::push_status`], findings come out into a caller's buffer. No I/O, no
+//! clock, no random numbers, no hash-map order in the outputs: live runs and replays give the same findings.
 //!
-//! Pipeline: reorder (watermark) -> sky index + background model -> seeded multi-timescale test ->
-//! candidates -> assessment (with the evaporation fit in [`fit`]).
+//! Pipeline: reorder (watermark) -> sky index + background model -> seeded multi-timescale test
+//! (SCIENCE.md section 4) -> candidates -> assessment (with the evaporation fit in [`fit`]).
 
 mod assess;
 mod background;

@@ -53,7 +53,7 @@ impl Reorder {
 
     /// Takes photons that are not late (any order); `batch` is left empty.
     pub(crate) fn push_all(&mut self, batch: &mut Vec<Photon>) {
-        batch.sort_unstable_by(|a, b| a.key().cmp(&b.key()));
+        batch.sort_unstable_by_key(Photon::key);
         let Some(first) = batch.first().map(Photon::key) else {
             return;
         };
@@ -97,6 +97,11 @@ impl Reorder {
         } else {
             None
         }
+    }
+
+    /// Heap bytes, from capacities.
+    pub(crate) fn heap_bytes(&self) -> usize {
+        (self.pending.capacity() + self.merge.capacity()) * size_of::<Photon>()
     }
 
     /// Photons waiting.
@@ -158,7 +163,7 @@ mod tests {
             r.push_all(&mut batch);
             assert!(batch.is_empty());
         }
-        all.sort_by(|a, b| a.key().cmp(&b.key()));
+        all.sort_by_key(Photon::key);
         let mut got = Vec::new();
         while let Some(p) = r.pop_before(i64::MAX) {
             got.push(p);

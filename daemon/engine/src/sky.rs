@@ -1,9 +1,8 @@
 //! Sky index: the photons of the last (longest timescale + pre-window), bucketed by HEALPix nested pixel at a
 //! depth whose pixels are at least as wide as the search radius, so a seed's disc lies inside its own pixel
-//! and the 8 (or 7) neighbours. Only active pixels exist; each keeps its photons in release (time) order, so a
-//! seed walks back from the newest photon and stops at the longest timescale. Memory: 72 bytes per held photon
-//! (32 in its pixel, 40 in the release-order ring) plus about 450 bytes per active pixel, i.e. it grows with
-//! (event rate x retention), never with uptime.
+//! and the 8 (or 7) neighbours. Only active pixels exist, each with its photons in time order, so a seed walks
+//! back from the newest and stops at the longest timescale. Memory: 72 bytes per held photon plus about 280 per
+//! active pixel (about 220 per held photon at 500 Hz): it grows with event rate x retention, never with uptime.
 
 use std::collections::{HashMap, VecDeque};
 use std::hash::{BuildHasherDefault, Hasher};
@@ -42,6 +41,9 @@ impl Cold {
     }
 }
 
+/// Slack on the neighbour-reach test for the f32 rounding of centres and cosines (each below 1e-7).
+const GEO_MARGIN: f64 = 1e-6;
+
 /// Marks an inactive neighbour in a bucket's neighbour cache.
 const NONE: u32 = u32::MAX;
 
@@ -53,6 +55,11 @@ pub(crate) struct Bucket {
     pub(crate) hot: VecDeque<Hot>,
     /// Bucket of each neighbouring pixel (same order as `Meta::neigh`), NONE when that pixel is inactive.
     nslots: [u32; 8],
+    /// Per neighbour: its centre (unit vector) and the cosine of (search radius + its bounding radius) less
+    /// a margin covering f32 rounding; a seed whose dot product with the centre is below that cannot reach
+    /// into the neighbour. (For tiny radii the margin keeps every neighbour: safe, just slower.) Read only
+    /// for the seed's own bucket, right after its first line.
+    geo: [[f32; 4]; 8],
 }
 
 /// The rest of an active pixel.
@@ -198,9 +205,6 @@ pub(crate) struct SkyIndex {
     depth: u8,
     buckets: Vec<Bucket>,
     meta: Vec<Meta>,
-    /// Per bucket, per neighbour: its centre (unit vector) and the cosine of (search radius + its bounding
-    /// radius); a seed whose dot product with the centre is below that cannot reach into the neighbour.
-    geo: Vec<[[f64; 4]; 8]>,
     radius_rad: f64,
     free: Vec<u32>,
     map: PixMap,
@@ -238,13 +242,29 @@ impl SkyIndex {
             depth,
             buckets: Vec::new(),
             meta: Vec::new(),
-            geo: Vec::new(),
             radius_rad: radius_deg.to_radians(),
             free: Vec::new(),
             map: PixMap::new(depth),
             fifo: VecDeque::new(),
             scratch: Vec::with_capacity(8),
         }
+    }
+
+    /// Heap bytes of the index, from capacities.
+    pub(crate) fn heap_bytes(&self) -> usize {
+        let hot: usize = self
+            .buckets
+            .iter()
+            .map(|b| b.hot.capacity() * size_of::<Hot>())
+            .sum();
+        let map = match &self.map {
+            PixMap::Dense { slots, .. } => slots.capacity() * size_of::<u32>(),
+            PixMap::Hashed(m) => m.capacity() * (size_of::<u64>() + size_of::<u32>() + 1),
+        };
+        hot + self.buckets.capacity() * size_of::<Bucket>()
+            + self.meta.capacity() * size_of::<Meta>()
+            + self.fifo.capacity() * size_of::<Entry>()
+            + map
     }
 
     pub(crate) fn depth(&self) -> u8 {
@@ -298,13 +318,13 @@ impl SkyIndex {
                 self.buckets.push(Bucket {
                     hot: VecDeque::new(),
                     nslots: [NONE; 8],
+                    geo: [[0.0; 4]; 8],
                 });
                 self.meta.push(Meta::default());
-                self.geo.push([[0.0; 4]; 8]);
                 (self.buckets.len() - 1) as u32
             }
         };
-        let mut geo = [[0.0, 0.0, 0.0, 2.0]; 8];
+        let mut geo = [[0.0f32, 0.0, 0.0, 2.0]; 8];
         for (g, &q) in geo.iter_mut().zip(&neigh[..n]) {
             let (lon, lat) = self.layer.center(q);
             let (sl, cl) = lat.sin_cos();
@@ -315,11 +335,11 @@ impl SkyIndex {
             let cos_reach = if reach >= std::f64::consts::PI {
                 -2.0
             } else {
-                reach.cos()
+                reach.cos() - GEO_MARGIN
             };
-            *g = [cl * co, cl * so, sl, cos_reach];
+            *g = [(cl * co) as f32, (cl * so) as f32, sl as f32, cos_reach as f32];
         }
-        self.geo[slot as usize] = geo;
+        self.buckets[slot as usize].geo = geo;
         let m = &mut self.meta[slot as usize];
         m.pix = pix;
         m.neigh = neigh;
@@ -348,6 +368,9 @@ impl SkyIndex {
 
     fn close(&mut self, slot: u32) {
         let pix = self.meta[slot as usize].pix;
+        if self.buckets[slot as usize].hot.capacity() > 8 {
+            self.buckets[slot as usize].hot.shrink_to(8);
+        }
         let nslots = self.buckets[slot as usize].nslots;
         for qs in nslots {
             if qs != NONE {
@@ -371,6 +394,11 @@ impl SkyIndex {
             b.hot.pop_front();
             if b.hot.is_empty() {
                 self.close(slot);
+            } else if b.hot.capacity() > 8 && b.hot.len() * 4 < b.hot.capacity() {
+                // A reused bucket keeps the capacity of its busiest past; give most of it back so memory
+                // follows the current occupancy, not the peak of the whole uptime.
+                let keep = b.hot.len() * 2;
+                b.hot.shrink_to(keep);
             }
         }
     }
@@ -381,10 +409,12 @@ impl SkyIndex {
     pub(crate) fn neighbourhood(&self, slot: u32, v: [f64; 3], out: &mut [u32; 9]) -> usize {
         out[0] = slot;
         let mut n = 1;
-        let geo = &self.geo[slot as usize];
-        for (i, &s) in self.buckets[slot as usize].nslots.iter().enumerate() {
+        let b = &self.buckets[slot as usize];
+        let geo = &b.geo;
+        for (i, &s) in b.nslots.iter().enumerate() {
             let g = &geo[i];
-            if s != NONE && g[0] * v[0] + g[1] * v[1] + g[2] * v[2] >= g[3] {
+            let d = f64::from(g[0]) * v[0] + f64::from(g[1]) * v[1] + f64::from(g[2]) * v[2];
+            if s != NONE && d >= f64::from(g[3]) {
                 out[n] = s;
                 n += 1;
             }

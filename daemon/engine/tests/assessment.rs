@@ -2,6 +2,7 @@
 //! persistent, identical timestamps and an all-sky jump are instrumental (and withdrawn), dead time in the
 //! persistence window or input ending before it closes leave the verdict undecided.
 #![allow(missing_docs)]
+#![allow(clippy::unwrap_used)] // tests may unwrap
 
 mod common;
 use common::*;

@@ -2,6 +2,7 @@
 //! on top of background. Each must give exactly one flash at its time, with the injected position inside
 //! the flash's 90% error radius in at least 90% of trials; clusters below threshold must give nothing.
 #![allow(missing_docs)]
+#![allow(clippy::unwrap_used)] // tests may unwrap
 
 mod common;
 use common::*;

@@ -2,6 +2,7 @@
 //! sequence gaps and from stream breaks), clock jumps, the saved acceptance map, the warm-up rule, malformed
 //! frames and the no-search mode.
 #![allow(missing_docs)]
+#![allow(clippy::unwrap_used)] // tests may unwrap
 
 mod common;
 use common::*;
@@ -382,4 +383,28 @@ fn no_search_mode_only_reorders() {
     assert_eq!(s.released, ph.len() as u64);
     assert_eq!(s.seeds_tested, 0);
     assert_eq!(s.held_photons, 0);
+}
+
+#[test]
+fn held_state_follows_the_rate_not_the_uptime() {
+    let mut r = rng(12);
+    let mut e = Engine::new(config(1.0)).unwrap();
+    let mut out = Vec::new();
+    let mut seq = 1;
+    let mut sizes = Vec::new();
+    for minute in 0..5 {
+        let from = T0 + minute * 60 * S;
+        let ph = background(&mut r, 500.0, from, from + 60 * S);
+        seq = feed(&mut e, &ph, S / 10, from + 60 * S, &mut out, seq);
+        let s = e.stats();
+        sizes.push((s.held_photons, s.held_bytes));
+    }
+    eprintln!("held (photons, bytes) per minute: {sizes:?}");
+    // The index holds (longest timescale + pre-window) = 60 s of photons, whatever the uptime.
+    for &(n, bytes) in &sizes[1..] {
+        assert!((27_000..33_000).contains(&n), "{sizes:?}");
+        assert!(bytes < 400 * n, "{} bytes per held photon", bytes / n);
+    }
+    let (first, last) = (sizes[1].1 as f64, sizes[4].1 as f64);
+    assert!(last < 1.3 * first, "state grew with uptime: {sizes:?}");
 }

@@ -182,6 +182,7 @@ pub(crate) fn run(args: DemoArgs) -> anyhow::Result<ExitCode> {
         ("  decided -> fsynced ", Stage::Journal),
         ("  fsynced -> sent    ", Stage::Send),
         ("  end to end         ", Stage::EndToEnd),
+        ("  flashes, end to end", Stage::FlashEndToEnd),
     ] {
         let p = metrics.percentiles(stage);
         println!(
@@ -216,6 +217,8 @@ fn print_latency(metrics: &Metrics) {
         ("decided -> fsynced", Stage::Journal),
         ("fsynced -> socket ", Stage::Send),
         ("receipt -> socket ", Stage::EndToEnd),
+        ("flashes: -> decided", Stage::FlashDecide),
+        ("flashes: -> socket ", Stage::FlashEndToEnd),
     ] {
         let p = metrics.percentiles(stage);
         println!(

@@ -243,6 +243,10 @@ impl Desk {
                     .record(Stage::Decide, stamps.received_unix_ns, stamps.decided_unix_ns);
                 self.metrics
                     .record(Stage::Journal, stamps.decided_unix_ns, journaled);
+                if a.kind == pb::AlertKind::Flash as i32 {
+                    let (r, d) = (stamps.received_unix_ns, stamps.decided_unix_ns);
+                    self.metrics.record(Stage::FlashDecide, r, d);
+                }
             }
             self.metrics.count_alert(a.kind);
             let a = Arc::new(std::mem::take(a));

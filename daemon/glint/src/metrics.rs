@@ -1,6 +1,6 @@
 //! The daemon's telemetry: latency histograms per stage and end to end (hdrhistogram, nanoseconds), counters
 //! of photons, frames, alerts and connections, and an optional plain-HTTP endpoint serving them in the
-//! Prometheus text format. Memory is fixed: four histograms and a handful of atomics.
+//! Prometheus text format. Memory is fixed: six histograms and a handful of atomics.
 
 use std::fmt::Write as _;
 use std::sync::Mutex;
@@ -22,10 +22,21 @@ pub(crate) enum Stage {
     Send,
     /// Frame read to the alert frame handed to a subscriber's socket.
     EndToEnd,
+    /// `Decide` for flashes only (assessments include the evaporation fit).
+    FlashDecide,
+    /// `EndToEnd` for flashes only: the low-latency path the daemon exists for.
+    FlashEndToEnd,
 }
 
 impl Stage {
-    const ALL: [Self; 4] = [Self::Decide, Self::Journal, Self::Send, Self::EndToEnd];
+    const ALL: [Self; 6] = [
+        Self::Decide,
+        Self::Journal,
+        Self::Send,
+        Self::EndToEnd,
+        Self::FlashDecide,
+        Self::FlashEndToEnd,
+    ];
 
     fn index(self) -> usize {
         match self {
@@ -33,6 +44,8 @@ impl Stage {
             Self::Journal => 1,
             Self::Send => 2,
             Self::EndToEnd => 3,
+            Self::FlashDecide => 4,
+            Self::FlashEndToEnd => 5,
         }
     }
 
@@ -43,6 +56,8 @@ impl Stage {
             Self::Journal => "journal",
             Self::Send => "send",
             Self::EndToEnd => "end_to_end",
+            Self::FlashDecide => "flash_decide",
+            Self::FlashEndToEnd => "flash_end_to_end",
         }
     }
 }

@@ -364,7 +364,11 @@ async fn stream_alerts(
                     if let Some(l) = a.latency.as_mut() {
                         l.sent_unix_ns = now_unix_ns();
                         if !a.replayed {
-                            live.push((l.received_unix_ns, l.journaled_unix_ns));
+                            live.push((
+                                l.received_unix_ns,
+                                l.journaled_unix_ns,
+                                a.kind == pb::AlertKind::Flash as i32,
+                            ));
                         }
                     }
                     sink.feed(pb::SubscriberFrame {
@@ -388,9 +392,12 @@ async fn stream_alerts(
                 Ok(r) => r?,
             }
             let done = now_unix_ns();
-            for (received, journaled) in live {
+            for (received, journaled, flash) in live {
                 hub.metrics.record(Stage::Send, journaled, done);
                 hub.metrics.record(Stage::EndToEnd, received, done);
+                if flash {
+                    hub.metrics.record(Stage::FlashEndToEnd, received, done);
+                }
             }
             *cursor = newest;
             next_beat = tokio::time::Instant::now() + beat;

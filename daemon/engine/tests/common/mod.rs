@@ -1,7 +1,7 @@
 //! Shared helpers of the engine tests: a simple instrument, seeded background and cluster generators and a
 //! driver that feeds batches and collects findings. The instrument frame is tied to the sky (a site at the
 //! pole, no rotation): zenith = 90 - dec, azimuth = ra, so acceptance maps onto a fixed sky cap.
-#![allow(dead_code, unreachable_pub)]
+#![allow(dead_code, unreachable_pub, clippy::unwrap_used)] // test helpers; tests may unwrap
 
 use glint_engine::{Engine, EngineConfig, Finding};
 use glint_science::instrument::{AreaTable, CurveTable, InstrumentResponse, ResponseSpec};
