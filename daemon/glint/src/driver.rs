@@ -35,6 +35,7 @@ pub(crate) fn engine_config(inst: &InstrumentConfig, search_enabled: bool) -> En
             identical_fraction_max: a.identical_fraction_max,
             spread_ratio_max: a.spread_ratio_max,
             max_dead_fraction: a.max_dead_fraction,
+            background_spectral_index: inst.spec.background.spectral_index,
             ..AssessConfig::default()
         },
         search_enabled,
