@@ -10,12 +10,25 @@ fn help_lists_every_subcommand_with_a_description() {
     let out = Command::new(glint_bin()).arg("--help").output().unwrap();
     assert!(out.status.success());
     let text = String::from_utf8_lossy(&out.stdout);
-    for cmd in ["run", "demo", "simulate", "replay", "feed", "listen", "reach", "check-config", "withdraw"] {
+    for cmd in [
+        "run",
+        "demo",
+        "simulate",
+        "replay",
+        "feed",
+        "listen",
+        "reach",
+        "check-config",
+        "withdraw",
+    ] {
         let line = text
             .lines()
             .find(|l| l.trim_start().starts_with(&format!("{cmd} ")))
             .unwrap_or_else(|| panic!("--help does not list {cmd}:\n{text}"));
-        assert!(line.trim_start()[cmd.len()..].trim().len() > 10, "no description for {cmd}: {line}");
+        assert!(
+            line.trim_start()[cmd.len()..].trim().len() > 10,
+            "no description for {cmd}: {line}"
+        );
     }
 }
 
@@ -26,7 +39,11 @@ fn reference_config_checks_clean() {
         .arg(repo_root().join("deploy/glint.toml"))
         .output()
         .unwrap();
-    assert!(out.status.success(), "stderr: {}", String::from_utf8_lossy(&out.stderr));
+    assert!(
+        out.status.success(),
+        "stderr: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     assert!(String::from_utf8_lossy(&out.stdout).contains("ok (1 instrument(s): ventisca-array)"));
 }
 
@@ -39,17 +56,30 @@ fn broken_config_lists_every_error_and_exits_2() {
     let broken = good
         .replace("heartbeat_s = 5.0", "heartbeat_s = \"five\"")
         .replace("[journal]", "[journal]\nsegmnet_bytes = 1")
-        .replace("token_file = \"tokens/ventisca-array.token\"", "token_file = \"tokens/missing.token\"")
-        .replace("spec_file = \"instruments/ventisca-array.toml\"", "spec_file = \"instruments/nowhere.toml\"");
+        .replace(
+            "token_file = \"tokens/ventisca-array.token\"",
+            "token_file = \"tokens/missing.token\"",
+        )
+        .replace(
+            "spec_file = \"instruments/ventisca-array.toml\"",
+            "spec_file = \"instruments/nowhere.toml\"",
+        );
     let path = dir.path().join("broken.toml");
     std::fs::write(&path, broken).unwrap();
     // Token files are relative to the config file: copy the real ones beside it.
     std::fs::create_dir_all(dir.path().join("tokens")).unwrap();
     for t in ["subscriber-1", "operator"] {
-        std::fs::copy(repo_root().join(format!("deploy/tokens/{t}.token")), dir.path().join(format!("tokens/{t}.token")))
-            .unwrap();
+        std::fs::copy(
+            repo_root().join(format!("deploy/tokens/{t}.token")),
+            dir.path().join(format!("tokens/{t}.token")),
+        )
+        .unwrap();
     }
-    let out = Command::new(glint_bin()).arg("check-config").arg(&path).output().unwrap();
+    let out = Command::new(glint_bin())
+        .arg("check-config")
+        .arg(&path)
+        .output()
+        .unwrap();
     assert_eq!(out.status.code(), Some(2));
     let err = String::from_utf8_lossy(&out.stderr);
     for key in [
@@ -78,7 +108,10 @@ fn environment_overrides_the_file() {
 
 #[test]
 fn reach_json_has_the_documented_fields() {
-    let out = Command::new(glint_bin()).args(["reach", "--json"]).output().unwrap();
+    let out = Command::new(glint_bin())
+        .args(["reach", "--json"])
+        .output()
+        .unwrap();
     assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
     let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
     for k in [

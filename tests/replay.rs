@@ -32,8 +32,18 @@ fn recording_of(dir: &Path) -> PathBuf {
 }
 
 fn replay(rec: &Path, out: &Path) -> String {
-    let o = Command::new(glint_bin()).arg("replay").arg(rec).arg("--alerts-out").arg(out).output().unwrap();
-    assert!(o.status.success(), "replay failed: {}", String::from_utf8_lossy(&o.stderr));
+    let o = Command::new(glint_bin())
+        .arg("replay")
+        .arg(rec)
+        .arg("--alerts-out")
+        .arg(out)
+        .output()
+        .unwrap();
+    assert!(
+        o.status.success(),
+        "replay failed: {}",
+        String::from_utf8_lossy(&o.stderr)
+    );
     String::from_utf8(o.stdout).unwrap()
 }
 
@@ -79,7 +89,12 @@ fn fixtures_give_their_committed_alerts_line_for_line() {
                 (Some(a), Some(b)) if a == b => {}
                 (Some(a), Some(b)) => {
                     let mut d = Vec::new();
-                    json_diff("", &serde_json::from_str(a).unwrap(), &serde_json::from_str(b).unwrap(), &mut d);
+                    json_diff(
+                        "",
+                        &serde_json::from_str(a).unwrap(),
+                        &serde_json::from_str(b).unwrap(),
+                        &mut d,
+                    );
                     report.push(format!("line {}:\n    {}", i + 1, d.join("\n    ")));
                 }
                 (Some(a), None) => report.push(format!("line {}: expected, missing: {a}", i + 1)),
@@ -125,16 +140,28 @@ fn simulate_reproduces_the_committed_recording_byte_for_byte() {
         .output()
         .unwrap();
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
-    assert!(std::fs::read(&out).unwrap() == std::fs::read(recording_of(&dir)).unwrap(), "simulate is not deterministic");
+    assert!(
+        std::fs::read(&out).unwrap() == std::fs::read(recording_of(&dir)).unwrap(),
+        "simulate is not deterministic"
+    );
 }
 
 #[test]
 fn no_search_replay_takes_every_photon_and_finds_nothing() {
     let dir = &fixtures()[0];
-    let o = Command::new(glint_bin()).arg("replay").arg(recording_of(dir)).arg("--no-search").output().unwrap();
+    let o = Command::new(glint_bin())
+        .arg("replay")
+        .arg(recording_of(dir))
+        .arg("--no-search")
+        .output()
+        .unwrap();
     assert!(o.status.success());
     let text = String::from_utf8(o.stdout).unwrap();
-    assert_eq!(text.lines().count(), 1, "--no-search must give only the summary:\n{text}");
+    assert_eq!(
+        text.lines().count(),
+        1,
+        "--no-search must give only the summary:\n{text}"
+    );
     let s: Value = serde_json::from_str(text.trim()).unwrap();
     assert!(s["photons"].as_u64().unwrap() > 10_000);
     assert_eq!(s["refused_photons"], 0);
@@ -147,14 +174,28 @@ fn truncated_recording_is_a_clear_error() {
     let tmp = tempfile::tempdir().unwrap();
     let cut = tmp.path().join("cut.glrec.zst");
     std::fs::write(&cut, &bytes[..bytes.len() / 2]).unwrap();
-    let o = Command::new(glint_bin()).arg("replay").arg(&cut).output().unwrap();
+    let o = Command::new(glint_bin())
+        .arg("replay")
+        .arg(&cut)
+        .output()
+        .unwrap();
     assert_eq!(o.status.code(), Some(1));
     let err = String::from_utf8_lossy(&o.stderr);
-    assert!(err.contains("cut.glrec.zst") && err.to_lowercase().contains("truncated"), "{err}");
+    assert!(
+        err.contains("cut.glrec.zst") && err.to_lowercase().contains("truncated"),
+        "{err}"
+    );
     let foreign = tmp.path().join("foreign.glrec");
     std::fs::write(&foreign, b"PK\x03\x04 this is a zip file, not a recording").unwrap();
-    let o = Command::new(glint_bin()).arg("replay").arg(&foreign).output().unwrap();
+    let o = Command::new(glint_bin())
+        .arg("replay")
+        .arg(&foreign)
+        .output()
+        .unwrap();
     assert_eq!(o.status.code(), Some(1));
     let err = String::from_utf8_lossy(&o.stderr);
-    assert!(err.contains("foreign.glrec") && err.contains("not a glint recording"), "{err}");
+    assert!(
+        err.contains("foreign.glrec") && err.contains("not a glint recording"),
+        "{err}"
+    );
 }

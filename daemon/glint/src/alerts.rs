@@ -64,7 +64,11 @@ fn assessment_of(a: &Assessment, flash: Option<(u64, &str)>) -> pb::Assessment {
             converged: fit.converged,
             reason: fit.reason.clone(),
             explosion_gps_ns: fit.explosion_ns,
-            explosion_utc: if fit.converged { timefmt::gps_ns_to_utc(fit.explosion_ns) } else { String::new() },
+            explosion_utc: if fit.converged {
+                timefmt::gps_ns_to_utc(fit.explosion_ns)
+            } else {
+                String::new()
+            },
             distance_pc: fit.distance_pc,
             distance_pc_lo: fit.distance_pc_lo,
             distance_pc_hi: fit.distance_pc_hi,
@@ -81,7 +85,10 @@ fn assessment_of(a: &Assessment, flash: Option<(u64, &str)>) -> pb::Assessment {
 /// Turns an engine finding into an alert. `flash` is the sequence number and id of the flash an assessment or
 /// withdrawal refers to. Sequence number, id and issue time are set later by [`stamp`].
 pub(crate) fn finding_to_alert(instrument: &str, f: &Finding, flash: Option<(u64, &str)>) -> pb::Alert {
-    let mut alert = pb::Alert { instrument: instrument.to_string(), ..Default::default() };
+    let mut alert = pb::Alert {
+        instrument: instrument.to_string(),
+        ..Default::default()
+    };
     match f {
         Finding::Flash(fl) => {
             alert.kind = pb::AlertKind::Flash as i32;
@@ -108,7 +115,12 @@ pub(crate) fn stamp(alert: &mut pb::Alert, seq: u64, issued_gps_ns: i64) {
     alert.issued_gps_ns = issued_gps_ns;
     alert.issued_utc = timefmt::gps_ns_to_utc(issued_gps_ns);
     let when = alert.trigger.as_ref().map_or(issued_gps_ns, |t| t.end_gps_ns);
-    alert.id = format!("GL-{}-{}-{}", alert.instrument, timefmt::gps_ns_to_id_stamp(when), seq);
+    alert.id = format!(
+        "GL-{}-{}-{}",
+        alert.instrument,
+        timefmt::gps_ns_to_id_stamp(when),
+        seq
+    );
 }
 
 /// Lower-case name of an alert kind, as used on the command line and in JSON.
@@ -294,7 +306,13 @@ pub(crate) fn alert_json(a: &pb::Alert) -> serde_json::Value {
         }),
     });
     let latency = a.latency.as_ref().filter(|l| l.received_unix_ns != 0).map(|l| {
-        let ms = |t: i64| if t == 0 { 0.0 } else { (t - l.received_unix_ns) as f64 / 1e6 };
+        let ms = |t: i64| {
+            if t == 0 {
+                0.0
+            } else {
+                (t - l.received_unix_ns) as f64 / 1e6
+            }
+        };
         LatencyJson {
             received_unix_ns: l.received_unix_ns,
             decided_unix_ns: l.decided_unix_ns,
@@ -323,12 +341,26 @@ pub(crate) fn alert_json(a: &pb::Alert) -> serde_json::Value {
 
 /// A short readable summary of one alert for a terminal.
 pub(crate) fn alert_summary(a: &pb::Alert) -> String {
-    let mut s = format!("#{} {} {} [{}]", a.seq, kind_name(a.kind).to_uppercase(), a.id, a.instrument);
+    let mut s = format!(
+        "#{} {} {} [{}]",
+        a.seq,
+        kind_name(a.kind).to_uppercase(),
+        a.id,
+        a.instrument
+    );
     if let Some(t) = &a.trigger {
         s += &format!(
             "\n    at RA {:.3} Dec {:+.3} (±{:.2}°, 90%)  {}  timescale {} s\n    {} photons on {:.3} expected: p = {:.2e}, {:.1} sigma, FAR {:.2e}/yr",
-            t.ra_deg, t.dec_deg, t.error_radius_deg, t.end_utc, t.timescale_s, t.counts, t.background, t.p_value,
-            t.sigma, t.far_per_year
+            t.ra_deg,
+            t.dec_deg,
+            t.error_radius_deg,
+            t.end_utc,
+            t.timescale_s,
+            t.counts,
+            t.background,
+            t.p_value,
+            t.sigma,
+            t.far_per_year
         );
     }
     if let Some(x) = &a.assessment {
@@ -342,7 +374,11 @@ pub(crate) fn alert_summary(a: &pb::Alert) -> String {
             x.pre_counts,
             x.pre_background,
             x.pre_sigma,
-            if x.flags.is_empty() { String::new() } else { format!(", flags: {}", x.flags.join(" ")) }
+            if x.flags.is_empty() {
+                String::new()
+            } else {
+                format!(", flags: {}", x.flags.join(" "))
+            }
         );
         if let Some(f) = x.fit.as_ref() {
             if f.converged {
@@ -358,8 +394,15 @@ pub(crate) fn alert_summary(a: &pb::Alert) -> String {
     if !a.withdrawn_id.is_empty() {
         s += &format!("\n    withdraws {}: {}", a.withdrawn_id, a.reason);
     }
-    if let Some(l) = a.latency.as_ref().filter(|l| l.received_unix_ns != 0 && l.sent_unix_ns != 0) {
-        s += &format!("\n    latency {:.2} ms (receipt to send)", (l.sent_unix_ns - l.received_unix_ns) as f64 / 1e6);
+    if let Some(l) = a
+        .latency
+        .as_ref()
+        .filter(|l| l.received_unix_ns != 0 && l.sent_unix_ns != 0)
+    {
+        s += &format!(
+            "\n    latency {:.2} ms (receipt to send)",
+            (l.sent_unix_ns - l.received_unix_ns) as f64 / 1e6
+        );
     }
     s
 }
@@ -377,7 +420,10 @@ pub(crate) struct Sequencer {
 impl Sequencer {
     /// A sequencer whose first alert gets `next_seq` (1 for a fresh journal).
     pub(crate) fn starting_at(next_seq: u64) -> Self {
-        Self { next_seq: next_seq.max(1), flashes: Default::default() }
+        Self {
+            next_seq: next_seq.max(1),
+            flashes: Default::default(),
+        }
     }
 
     /// The sequence number the next alert will get.
@@ -412,7 +458,12 @@ impl Sequencer {
     }
 
     /// An operator's withdrawal of any alert by id.
-    pub(crate) fn operator_withdrawal(&mut self, withdrawn_id: &str, reason: &str, issued_gps_ns: i64) -> pb::Alert {
+    pub(crate) fn operator_withdrawal(
+        &mut self,
+        withdrawn_id: &str,
+        reason: &str,
+        issued_gps_ns: i64,
+    ) -> pb::Alert {
         let seq = self.next_seq();
         self.next_seq = seq + 1;
         let mut alert = pb::Alert {

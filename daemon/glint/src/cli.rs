@@ -108,7 +108,11 @@ fn check_config(a: &CheckConfigArgs) -> anyhow::Result<ExitCode> {
         "{}: ok ({} instrument(s): {})",
         cfg.source_name,
         cfg.instruments.len(),
-        cfg.instruments.iter().map(|i| i.id.as_str()).collect::<Vec<_>>().join(", ")
+        cfg.instruments
+            .iter()
+            .map(|i| i.id.as_str())
+            .collect::<Vec<_>>()
+            .join(", ")
     );
     Ok(ExitCode::SUCCESS)
 }

@@ -21,13 +21,22 @@ pub(crate) const EMBEDDED_DEFAULT: &str = include_str!("../../../deploy/glint-de
 /// Instrument blocks that ship with glint, addressable as `spec_file = "builtin:NAME"` so the embedded
 /// default needs no file on disk.
 const BUILTIN_INSTRUMENTS: &[(&str, &str)] = &[
-    ("ventisca-array", include_str!("../../../deploy/instruments/ventisca-array.toml")),
-    ("orbiter-lat", include_str!("../../../deploy/instruments/orbiter-lat.toml")),
+    (
+        "ventisca-array",
+        include_str!("../../../deploy/instruments/ventisca-array.toml"),
+    ),
+    (
+        "orbiter-lat",
+        include_str!("../../../deploy/instruments/orbiter-lat.toml"),
+    ),
 ];
 
 /// Looks up an instrument block shipped with glint by name.
 pub(crate) fn builtin_instrument(name: &str) -> Option<&'static str> {
-    BUILTIN_INSTRUMENTS.iter().find(|(n, _)| *n == name).map(|(_, text)| *text)
+    BUILTIN_INSTRUMENTS
+        .iter()
+        .find(|(n, _)| *n == name)
+        .map(|(_, text)| *text)
 }
 
 /// One problem in a configuration, naming the key.
@@ -67,7 +76,8 @@ impl Secret {
     pub(crate) fn expose(&self) -> &str {
         &self.0
     }
-    /// Wraps a value (tests and the demo).
+    /// Wraps a value (tests).
+    #[cfg(test)]
     pub(crate) fn new(s: impl Into<String>) -> Self {
         Self(s.into())
     }
@@ -250,7 +260,10 @@ impl Config {
         let name = path.display().to_string();
         let text = std::fs::read_to_string(path).map_err(|e| ConfigError {
             source_name: name.clone(),
-            problems: vec![Problem { key: "(file)".into(), message: format!("cannot read: {e}") }],
+            problems: vec![Problem {
+                key: "(file)".into(),
+                message: format!("cannot read: {e}"),
+            }],
         })?;
         let base = path.parent().map(Path::to_path_buf).unwrap_or_default();
         Self::from_toml(&text, &name, &base, true)
@@ -262,12 +275,21 @@ impl Config {
     }
 
     /// Compiles configuration text; `base_dir` resolves relative paths (token and spec files).
-    pub(crate) fn from_toml(text: &str, source_name: &str, base_dir: &Path, with_env: bool) -> Result<Self, ConfigError> {
+    pub(crate) fn from_toml(
+        text: &str,
+        source_name: &str,
+        base_dir: &Path,
+        with_env: bool,
+    ) -> Result<Self, ConfigError> {
         let fail = |key: &str, message: String| ConfigError {
             source_name: source_name.to_string(),
-            problems: vec![Problem { key: key.into(), message }],
+            problems: vec![Problem {
+                key: key.into(),
+                message,
+            }],
         };
-        let mut builder = config::Config::builder().add_source(config::File::from_str(text, config::FileFormat::Toml));
+        let mut builder =
+            config::Config::builder().add_source(config::File::from_str(text, config::FileFormat::Toml));
         if with_env {
             builder = builder.add_source(
                 config::Environment::with_prefix("GLINT")
@@ -279,12 +301,23 @@ impl Config {
             );
         }
         let raw = builder.build().map_err(|e| fail("(syntax)", e.to_string()))?;
-        let root: Table = raw.try_deserialize().map_err(|e| fail("(syntax)", e.to_string()))?;
-        let mut r = Reader { problems: Vec::new(), base_dir: base_dir.to_path_buf() };
+        let root: Table = raw
+            .try_deserialize()
+            .map_err(|e| fail("(syntax)", e.to_string()))?;
+        let mut r = Reader {
+            problems: Vec::new(),
+            base_dir: base_dir.to_path_buf(),
+        };
         let cfg = r.compile(root);
         match cfg {
-            Some(c) if r.problems.is_empty() => Ok(Self { source_name: source_name.to_string(), ..c }),
-            _ => Err(ConfigError { source_name: source_name.to_string(), problems: r.problems }),
+            Some(c) if r.problems.is_empty() => Ok(Self {
+                source_name: source_name.to_string(),
+                ..c
+            }),
+            _ => Err(ConfigError {
+                source_name: source_name.to_string(),
+                problems: r.problems,
+            }),
         }
     }
 
@@ -308,23 +341,36 @@ struct Section {
 
 impl Section {
     fn key(&self, k: &str) -> String {
-        if self.prefix.is_empty() { k.to_string() } else { format!("{}.{}", self.prefix, k) }
+        if self.prefix.is_empty() {
+            k.to_string()
+        } else {
+            format!("{}.{}", self.prefix, k)
+        }
     }
 }
 
 impl Reader {
     fn problem(&mut self, key: impl Into<String>, message: impl Into<String>) {
-        self.problems.push(Problem { key: key.into(), message: message.into() });
+        self.problems.push(Problem {
+            key: key.into(),
+            message: message.into(),
+        });
     }
 
     fn section(&mut self, parent: &mut Section, name: &str) -> Section {
         let prefix = parent.key(name);
         match parent.table.remove(name) {
-            None => Section { prefix, table: Table::new() },
+            None => Section {
+                prefix,
+                table: Table::new(),
+            },
             Some(Value::Table(t)) => Section { prefix, table: t },
             Some(other) => {
                 self.problem(&prefix, format!("expected a table, found {}", other.type_str()));
-                Section { prefix, table: Table::new() }
+                Section {
+                    prefix,
+                    table: Table::new(),
+                }
             }
         }
     }
@@ -386,7 +432,10 @@ impl Reader {
         match text.parse() {
             Ok(a) => a,
             Err(e) => {
-                self.problem(s.key(k), format!("'{text}' is not an address like 127.0.0.1:7601 ({e})"));
+                self.problem(
+                    s.key(k),
+                    format!("'{text}' is not an address like 127.0.0.1:7601 ({e})"),
+                );
                 SocketAddr::from(([127, 0, 0, 1], 0))
             }
         }
@@ -424,7 +473,10 @@ impl Reader {
                 match std::fs::read_to_string(&path) {
                     Ok(t) => self.check_secret(s.key(&file_key), t.trim().to_string()),
                     Err(e) => {
-                        self.problem(s.key(&file_key), format!("cannot read token file {}: {e}", path.display()));
+                        self.problem(
+                            s.key(&file_key),
+                            format!("cannot read token file {}: {e}", path.display()),
+                        );
                         None
                     }
                 }
@@ -480,13 +532,19 @@ impl Reader {
     }
 
     fn compile(&mut self, root: Table) -> Option<Config> {
-        let mut top = Section { prefix: String::new(), table: root };
+        let mut top = Section {
+            prefix: String::new(),
+            table: root,
+        };
 
         let mut d = self.section(&mut top, "daemon");
         let state_dir: String = self.get(&mut d, "state_dir", "/var/lib/glint".to_string());
         let log_level: String = self.get(&mut d, "log_level", "info".to_string());
         if tracing_subscriber::EnvFilter::try_new(&log_level).is_err() {
-            self.problem(d.key("log_level"), format!("'{log_level}' is not a log filter (e.g. info, glint=debug)"));
+            self.problem(
+                d.key("log_level"),
+                format!("'{log_level}' is not a log filter (e.g. info, glint=debug)"),
+            );
         }
         let fmt_text: String = self.get(&mut d, "log_format", "text".to_string());
         let log_format = match fmt_text.as_str() {
@@ -497,7 +555,11 @@ impl Reader {
                 LogFormat::Text
             }
         };
-        let max_frame_bytes = self.nonzero(&mut d, "max_frame_bytes", glint_wire::framing::DEFAULT_MAX_FRAME_BYTES);
+        let max_frame_bytes = self.nonzero(
+            &mut d,
+            "max_frame_bytes",
+            glint_wire::framing::DEFAULT_MAX_FRAME_BYTES,
+        );
         if max_frame_bytes.get() > 256 * 1024 * 1024 {
             self.problem(d.key("max_frame_bytes"), "must be at most 268435456 (256 MiB)");
         }
@@ -541,7 +603,9 @@ impl Reader {
         for (i, f) in files.into_iter().enumerate() {
             let p = self.path(&f);
             match std::fs::read_to_string(&p) {
-                Ok(t) => tokens.extend(self.check_secret(s.key(&format!("token_files[{i}]")), t.trim().into())),
+                Ok(t) => {
+                    tokens.extend(self.check_secret(s.key(&format!("token_files[{i}]")), t.trim().into()))
+                }
                 Err(e) => self.problem(
                     s.key(&format!("token_files[{i}]")),
                     format!("cannot read token file {}: {e}", p.display()),
@@ -593,11 +657,16 @@ impl Reader {
                                 instruments.push(inst);
                             }
                         }
-                        other => self.problem(prefix, format!("expected a table, found {}", other.type_str())),
+                        other => {
+                            self.problem(prefix, format!("expected a table, found {}", other.type_str()))
+                        }
                     }
                 }
             }
-            Some(other) => self.problem("instrument", format!("expected [[instrument]] tables, found {}", other.type_str())),
+            Some(other) => self.problem(
+                "instrument",
+                format!("expected [[instrument]] tables, found {}", other.type_str()),
+            ),
             None => {}
         }
         if instruments.is_empty() && !self.problems.iter().any(|p| p.key.starts_with("instrument")) {
@@ -606,31 +675,59 @@ impl Reader {
         let mut seen = BTreeMap::new();
         for (i, inst) in instruments.iter().enumerate() {
             if let Some(j) = seen.insert(inst.id.clone(), i) {
-                self.problem(format!("instrument[{i}].id"), format!("'{}' is already used by instrument[{j}]", inst.id));
+                self.problem(
+                    format!("instrument[{i}].id"),
+                    format!("'{}' is already used by instrument[{j}]", inst.id),
+                );
             }
         }
         self.finish(top);
 
-        Some(Config { source_name: String::new(), daemon, ingest, subscribers, journal, metrics_listen, instruments })
+        Some(Config {
+            source_name: String::new(),
+            daemon,
+            ingest,
+            subscribers,
+            journal,
+            metrics_listen,
+            instruments,
+        })
     }
 
     fn instrument(&mut self, mut s: Section) -> Option<InstrumentConfig> {
         let id: Option<String> = self.required(&mut s, "id");
         if let Some(id) = &id {
-            if id.is_empty() || !id.chars().all(|c| c.is_ascii_alphanumeric() || c == '-' || c == '_') {
-                self.problem(s.key("id"), format!("'{id}' must be non-empty ASCII letters, digits, '-' or '_'"));
+            if id.is_empty()
+                || !id
+                    .chars()
+                    .all(|c| c.is_ascii_alphanumeric() || c == '-' || c == '_')
+            {
+                self.problem(
+                    s.key("id"),
+                    format!("'{id}' must be non-empty ASCII letters, digits, '-' or '_'"),
+                );
             }
         }
         let token = self.secret(&mut s, "token", true);
         let spec = self.instrument_spec(&mut s);
 
         let mut q = self.section(&mut s, "search");
-        let ladder_s: Vec<f64> = self.get(&mut q, "ladder_s", vec![0.01, 0.03, 0.1, 0.3, 1.0, 3.0, 10.0, 30.0]);
+        let ladder_s: Vec<f64> = self.get(
+            &mut q,
+            "ladder_s",
+            vec![0.01, 0.03, 0.1, 0.3, 1.0, 3.0, 10.0, 30.0],
+        );
         if ladder_s.is_empty() || ladder_s.len() > 32 {
             self.problem(q.key("ladder_s"), "needs 1 to 32 timescales");
         }
-        if ladder_s.iter().any(|t| !(t.is_finite() && *t >= 1e-4 && *t <= 3600.0)) {
-            self.problem(q.key("ladder_s"), "every timescale must lie in [0.0001, 3600] seconds");
+        if ladder_s
+            .iter()
+            .any(|t| !(t.is_finite() && *t >= 1e-4 && *t <= 3600.0))
+        {
+            self.problem(
+                q.key("ladder_s"),
+                "every timescale must lie in [0.0001, 3600] seconds",
+            );
         }
         if ladder_s.windows(2).any(|w| w[1] <= w[0]) {
             self.problem(q.key("ladder_s"), "timescales must be strictly increasing");
@@ -692,19 +789,34 @@ impl Reader {
                 return None;
             }
         };
-        Some(InstrumentConfig { id, token, spec, response, search, assess })
+        Some(InstrumentConfig {
+            id,
+            token,
+            spec,
+            response,
+            search,
+            assess,
+        })
     }
 
     /// The instrument block: inline `site`/`response`/`background` tables, or `spec_file` naming a file (or
     /// `builtin:NAME`) that holds them.
     fn instrument_spec(&mut self, s: &mut Section) -> Option<InstrumentSpec> {
         let spec_file: Option<String> = self.opt(s, "spec_file");
-        let inline: Vec<&str> =
-            ["site", "response", "background"].into_iter().filter(|k| s.table.contains_key(*k)).collect();
+        let inline: Vec<&str> = ["site", "response", "background"]
+            .into_iter()
+            .filter(|k| s.table.contains_key(*k))
+            .collect();
         let (table, origin) = match spec_file {
             Some(f) => {
                 if !inline.is_empty() {
-                    self.problem(s.key("spec_file"), format!("give spec_file or inline tables ({}), not both", inline.join(", ")));
+                    self.problem(
+                        s.key("spec_file"),
+                        format!(
+                            "give spec_file or inline tables ({}), not both",
+                            inline.join(", ")
+                        ),
+                    );
                     return None;
                 }
                 let (text, origin) = if let Some(name) = f.strip_prefix("builtin:") {
@@ -712,7 +824,10 @@ impl Reader {
                         Some(t) => (t.to_string(), f.clone()),
                         None => {
                             let known: Vec<_> = BUILTIN_INSTRUMENTS.iter().map(|(n, _)| *n).collect();
-                            self.problem(s.key("spec_file"), format!("no built-in instrument '{name}' (known: {})", known.join(", ")));
+                            self.problem(
+                                s.key("spec_file"),
+                                format!("no built-in instrument '{name}' (known: {})", known.join(", ")),
+                            );
                             return None;
                         }
                     }
@@ -744,7 +859,11 @@ impl Reader {
                 (t, String::new())
             }
         };
-        let key = if origin.is_empty() { s.prefix.clone() } else { format!("{} ({origin})", s.prefix) };
+        let key = if origin.is_empty() {
+            s.prefix.clone()
+        } else {
+            format!("{} ({origin})", s.prefix)
+        };
         match Value::Table(table).try_into::<InstrumentSpec>() {
             Ok(spec) => {
                 let mut probs = Vec::new();
@@ -817,14 +936,22 @@ mod tests {
             assert!(keys.contains(&k), "missing problem for {k}; got {keys:?}");
         }
         let shown = e.to_string();
-        assert!(shown.contains("broken.toml: daemon.bogus: unknown key"), "{shown}");
+        assert!(
+            shown.contains("broken.toml: daemon.bogus: unknown key"),
+            "{shown}"
+        );
     }
 
     #[test]
     fn plain_remote_listener_needs_explicit_permission() {
         let text = EMBEDDED_DEFAULT.replace("listen = \"127.0.0.1:7601\"", "listen = \"0.0.0.0:7601\"");
         let e = Config::from_toml(&text, "x.toml", Path::new("."), false).expect_err("must fail");
-        assert!(e.problems.iter().any(|p| p.key == "ingest.listen" && p.message.contains("TLS")), "{e}");
+        assert!(
+            e.problems
+                .iter()
+                .any(|p| p.key == "ingest.listen" && p.message.contains("TLS")),
+            "{e}"
+        );
         let ok = text.replace("[ingest]", "[ingest]\nallow_plain_remote = true");
         Config::from_toml(&ok, "x.toml", Path::new("."), false).unwrap_or_else(|e| panic!("{e}"));
     }

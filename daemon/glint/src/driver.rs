@@ -24,7 +24,9 @@ pub(crate) fn engine_config(inst: &InstrumentConfig, search_enabled: bool) -> En
         warmup_photons: s.warmup_photons,
         reorder_tolerance_ns: ns(s.reorder_tolerance_s),
         max_clock_jump_ns: ns(s.max_clock_jump_s),
-        acceptance_prior_cos_power: s.acceptance_prior.then_some(inst.spec.background.zenith_cos_power),
+        acceptance_prior_cos_power: s
+            .acceptance_prior
+            .then_some(inst.spec.background.zenith_cos_power),
         assess: AssessConfig {
             persistence_min_s: a.persistence_min_s,
             persistence_timescale_factor: a.persistence_timescale_factor,
@@ -74,7 +76,6 @@ pub(crate) struct StreamCounters {
 
 /// One instrument's engine with validation and counters in front of it.
 pub(crate) struct InstrumentDriver {
-    id: String,
     engine: Engine,
     reorder_tolerance_ns: i64,
     counters: StreamCounters,
@@ -85,12 +86,11 @@ impl InstrumentDriver {
     pub(crate) fn new(inst: &InstrumentConfig, search_enabled: bool) -> Result<Self, EngineError> {
         let cfg = engine_config(inst, search_enabled);
         let reorder_tolerance_ns = cfg.reorder_tolerance_ns;
-        Ok(Self { id: inst.id.clone(), engine: Engine::new(cfg)?, reorder_tolerance_ns, counters: StreamCounters::default() })
-    }
-
-    /// The instrument id.
-    pub(crate) fn id(&self) -> &str {
-        &self.id
+        Ok(Self {
+            engine: Engine::new(cfg)?,
+            reorder_tolerance_ns,
+            counters: StreamCounters::default(),
+        })
     }
 
     /// Checks a batch without taking it: what ingest uses to answer a producer at once.
@@ -102,16 +102,18 @@ impl InstrumentDriver {
         })
     }
 
-    /// The reorder tolerance the engine uses, nanoseconds.
-    pub(crate) fn reorder_tolerance_ns(&self) -> i64 {
-        self.reorder_tolerance_ns
-    }
-
     /// Validates and takes a photon batch.
-    pub(crate) fn on_batch(&mut self, batch: &pb::PhotonBatch, out: &mut Vec<Finding>) -> Result<(), Refused> {
+    pub(crate) fn on_batch(
+        &mut self,
+        batch: &pb::PhotonBatch,
+        out: &mut Vec<Finding>,
+    ) -> Result<(), Refused> {
         let n = batch.time_gps_ns.len() as u64;
-        let checked = Self::check_batch(batch, self.reorder_tolerance_ns)
-            .and_then(|()| self.engine.push_batch(batch, out).map_err(|e| self.engine_refusal(e, batch.seq)));
+        let checked = Self::check_batch(batch, self.reorder_tolerance_ns).and_then(|()| {
+            self.engine
+                .push_batch(batch, out)
+                .map_err(|e| self.engine_refusal(e, batch.seq))
+        });
         match checked {
             Ok(()) => {
                 self.counters.batches += 1;
@@ -127,10 +129,22 @@ impl InstrumentDriver {
     }
 
     /// Validates and takes a status frame.
-    pub(crate) fn on_status(&mut self, status: &pb::StreamStatus, out: &mut Vec<Finding>) -> Result<(), Refused> {
+    pub(crate) fn on_status(
+        &mut self,
+        status: &pb::StreamStatus,
+        out: &mut Vec<Finding>,
+    ) -> Result<(), Refused> {
         let checked = validate::validate_status(status)
-            .map_err(|e| Refused { code: e.refusal_code(), detail: e.to_string(), seq: status.seq })
-            .and_then(|()| self.engine.push_status(status, out).map_err(|e| self.engine_refusal(e, status.seq)));
+            .map_err(|e| Refused {
+                code: e.refusal_code(),
+                detail: e.to_string(),
+                seq: status.seq,
+            })
+            .and_then(|()| {
+                self.engine
+                    .push_status(status, out)
+                    .map_err(|e| self.engine_refusal(e, status.seq))
+            });
         match checked {
             Ok(()) => {
                 self.counters.statuses += 1;
@@ -145,7 +159,11 @@ impl InstrumentDriver {
 
     /// Takes any producer frame. A `Hello` inside a stream (a recording that spans a reconnect) marks a
     /// stream break: the gap until the next frame is dead time.
-    pub(crate) fn on_frame(&mut self, frame: &pb::ProducerFrame, out: &mut Vec<Finding>) -> Result<(), Refused> {
+    pub(crate) fn on_frame(
+        &mut self,
+        frame: &pb::ProducerFrame,
+        out: &mut Vec<Finding>,
+    ) -> Result<(), Refused> {
         match &frame.body {
             Some(Body::Batch(b)) => self.on_batch(b, out),
             Some(Body::Status(s)) => self.on_status(s, out),
@@ -155,7 +173,11 @@ impl InstrumentDriver {
             }
             None => {
                 self.counters.refused_frames += 1;
-                Err(Refused { code: pb::RefusalCode::MalformedFrame, detail: "frame has no body".into(), seq: 0 })
+                Err(Refused {
+                    code: pb::RefusalCode::MalformedFrame,
+                    detail: "frame has no body".into(),
+                    seq: 0,
+                })
             }
         }
     }
@@ -167,7 +189,11 @@ impl InstrumentDriver {
         } else {
             pb::RefusalCode::InvalidBatch
         };
-        Refused { code, detail: e.to_string(), seq }
+        Refused {
+            code,
+            detail: e.to_string(),
+            seq,
+        }
     }
 
     /// The producer went away: dead time until its next frame.

@@ -44,6 +44,7 @@ fn main() -> ExitCode {
 /// A closed stdout (e.g. piped into `head`) is a normal end, not an error.
 fn is_broken_pipe(e: &anyhow::Error) -> bool {
     e.chain().any(|c| {
-        c.downcast_ref::<std::io::Error>().is_some_and(|io| io.kind() == std::io::ErrorKind::BrokenPipe)
+        c.downcast_ref::<std::io::Error>()
+            .is_some_and(|io| io.kind() == std::io::ErrorKind::BrokenPipe)
     })
 }

@@ -35,7 +35,9 @@ pub(crate) struct ReachArgs {
 pub(crate) fn run(args: &ReachArgs) -> anyhow::Result<ExitCode> {
     let cfg = config_or_exit(args.config.as_ref())?;
     let inst = match &args.instrument {
-        Some(id) => cfg.instrument(id).with_context(|| format!("no instrument '{id}' in {}", cfg.source_name))?,
+        Some(id) => cfg
+            .instrument(id)
+            .with_context(|| format!("no instrument '{id}' in {}", cfg.source_name))?,
         None => cfg.instruments.first().context("no instrument configured")?,
     };
     let far = args.far_per_year.unwrap_or(inst.search.far_per_year);
@@ -73,13 +75,20 @@ pub(crate) fn run(args: &ReachArgs) -> anyhow::Result<ExitCode> {
     }
     println!(" {:>10} {:>10}", "r50 [pc]", "r90 [pc]");
     for t in &r.timescales {
-        print!("{:>9}s {:>12.4e} {:>8}", t.timescale_s, t.background, t.critical_count);
+        print!(
+            "{:>9}s {:>12.4e} {:>8}",
+            t.timescale_s, t.background, t.critical_count
+        );
         for s in &t.signal {
             print!(" {:>11.3e}", s.counts);
         }
         println!(" {:>10.4} {:>10.4}", t.r50_pc, t.r90_pc);
     }
-    println!("best r50: {:.4} pc ({:.3} light-years)", r.best_r50_pc, r.best_r50_pc * 3.261_563_777);
+    println!(
+        "best r50: {:.4} pc ({:.3} light-years)",
+        r.best_r50_pc,
+        r.best_r50_pc * 3.261_563_777
+    );
     println!("effective volume: {:.3e} pc^3", r.effective_volume_pc3);
     println!(
         "rate-density upper limit, 99% CL, one year live, no detection: {:.3e} per pc^3 per year",

@@ -82,10 +82,16 @@ pub(crate) fn run(args: &ReplayArgs) -> anyhow::Result<ExitCode> {
     let cfg = config_or_exit(args.config.as_ref())?;
     crate::logging::init(&cfg.daemon.log_level, cfg.daemon.log_format);
     let file = match &args.alerts_out {
-        Some(p) => Some(BufWriter::new(File::create(p).with_context(|| format!("creating {}", p.display()))?)),
+        Some(p) => Some(BufWriter::new(
+            File::create(p).with_context(|| format!("creating {}", p.display()))?,
+        )),
         None => None,
     };
-    let mut out = Out { stdout: BufWriter::new(std::io::stdout().lock()), file, quiet: args.quiet };
+    let mut out = Out {
+        stdout: BufWriter::new(std::io::stdout().lock()),
+        file,
+        quiet: args.quiet,
+    };
     let mut drivers: BTreeMap<String, InstrumentDriver> = BTreeMap::new();
     let mut seq = Sequencer::starting_at(1);
     let mut alerts_by_kind: BTreeMap<&'static str, u64> = BTreeMap::new();
@@ -93,19 +99,20 @@ pub(crate) fn run(args: &ReplayArgs) -> anyhow::Result<ExitCode> {
     let mut findings: Vec<Finding> = Vec::new();
     let started = Instant::now();
 
-    let mut emit = |id: &str, d: &InstrumentDriver, found: &mut Vec<Finding>, out: &mut Out| -> anyhow::Result<()> {
-        for f in found.drain(..) {
-            // Event time, not wall time, so replays are reproducible.
-            let issued = d.watermark_ns().unwrap_or(0);
-            let alert = seq.assign(id, &f, issued);
-            *alerts_by_kind.entry(alerts::kind_name(alert.kind)).or_default() += 1;
-            if let Some(a) = &alert.assessment {
-                *verdicts.entry(alerts::verdict_name(a.verdict)).or_default() += 1;
+    let mut emit =
+        |id: &str, d: &InstrumentDriver, found: &mut Vec<Finding>, out: &mut Out| -> anyhow::Result<()> {
+            for f in found.drain(..) {
+                // Event time, not wall time, so replays are reproducible.
+                let issued = d.watermark_ns().unwrap_or(0);
+                let alert = seq.assign(id, &f, issued);
+                *alerts_by_kind.entry(alerts::kind_name(alert.kind)).or_default() += 1;
+                if let Some(a) = &alert.assessment {
+                    *verdicts.entry(alerts::verdict_name(a.verdict)).or_default() += 1;
+                }
+                out.alert(&alerts::alert_json(&alert).to_string())?;
             }
-            out.alert(&alerts::alert_json(&alert).to_string())?;
-        }
-        Ok(())
-    };
+            Ok(())
+        };
 
     for path in &args.files {
         let reader = RecordingReader::open(path, cfg.daemon.max_frame_bytes)
@@ -119,11 +126,18 @@ pub(crate) fn run(args: &ReplayArgs) -> anyhow::Result<ExitCode> {
                 }
             }
             let Some(id) = current.clone() else {
-                anyhow::bail!("{}: the recording does not start with a Hello; give --instrument", path.display());
+                anyhow::bail!(
+                    "{}: the recording does not start with a Hello; give --instrument",
+                    path.display()
+                );
             };
             if !drivers.contains_key(&id) {
                 let inst = cfg.instrument(&id).with_context(|| {
-                    format!("{}: instrument '{id}' is not in {} (give --instrument or --config)", path.display(), cfg.source_name)
+                    format!(
+                        "{}: instrument '{id}' is not in {} (give --instrument or --config)",
+                        path.display(),
+                        cfg.source_name
+                    )
                 })?;
                 drivers.insert(id.clone(), InstrumentDriver::new(inst, !args.no_search)?);
                 // A fresh driver has seen no stream yet: its first Hello is not a break.

@@ -31,16 +31,24 @@ pub(crate) struct SimulateArgs {
 /// Runs `glint simulate`.
 pub(crate) fn run(args: &SimulateArgs) -> anyhow::Result<ExitCode> {
     let started = Instant::now();
-    let scenario = load_scenario(&args.scenario).with_context(|| format!("scenario {}", args.scenario.display()))?;
+    let scenario =
+        load_scenario(&args.scenario).with_context(|| format!("scenario {}", args.scenario.display()))?;
     let seed = args.seed.unwrap_or(scenario.seed);
-    let mut sim = Simulator::new(&scenario, seed).with_context(|| format!("scenario {}", args.scenario.display()))?;
-    let mut writer = RecordingWriter::create(&args.out).with_context(|| format!("creating {}", args.out.display()))?;
+    let mut sim =
+        Simulator::new(&scenario, seed).with_context(|| format!("scenario {}", args.scenario.display()))?;
+    let mut writer =
+        RecordingWriter::create(&args.out).with_context(|| format!("creating {}", args.out.display()))?;
     for frame in &mut sim {
-        writer.write_frame(&frame).with_context(|| format!("writing {}", args.out.display()))?;
+        writer
+            .write_frame(&frame)
+            .with_context(|| format!("writing {}", args.out.display()))?;
     }
-    writer.finish().with_context(|| format!("finishing {}", args.out.display()))?;
+    writer
+        .finish()
+        .with_context(|| format!("finishing {}", args.out.display()))?;
     if let Some(path) = &args.truth {
-        let mut w = BufWriter::new(File::create(path).with_context(|| format!("creating {}", path.display()))?);
+        let mut w =
+            BufWriter::new(File::create(path).with_context(|| format!("creating {}", path.display()))?);
         for t in sim.truth() {
             writeln!(w, "{}", serde_json::to_string(&t)?)?;
         }

@@ -29,9 +29,13 @@ pub(crate) fn gps_ns_to_mjd(gps_ns: i64) -> String {
 /// Unix-epoch nanoseconds (what the host clock gives) to GPS nanoseconds, leap seconds included.
 pub(crate) fn unix_ns_to_gps_ns(unix_ns: i64) -> i64 {
     let e = Epoch::from_unix_duration(Duration::from_total_nanoseconds(i128::from(unix_ns)));
-    e.to_gpst_nanoseconds().ok().and_then(|n| i64::try_from(n).ok()).unwrap_or(0)
+    e.to_gpst_nanoseconds()
+        .ok()
+        .and_then(|n| i64::try_from(n).ok())
+        .unwrap_or(0)
 }
 
+#[cfg(test)]
 /// GPS nanoseconds of a UTC ISO 8601 string (`2026-12-01T02:00:00Z` and the forms hifitime accepts).
 pub(crate) fn utc_to_gps_ns(text: &str) -> Option<i64> {
     let e = Epoch::from_gregorian_str(text.trim_end_matches('Z')).ok()?;
