@@ -13,6 +13,7 @@ use std::sync::Arc;
 use std::time::{Duration, Instant};
 
 use anyhow::{Context, anyhow, bail};
+use glint_engine::Finding;
 use glint_wire::pb;
 use glint_wire::recording::{Compression, RotatingWriter, RotationPolicy};
 use tokio::net::TcpListener;
@@ -23,6 +24,7 @@ use crate::config::{Config, InstrumentConfig};
 use crate::desk::{Desk, Stamps};
 use crate::driver::InstrumentDriver;
 use crate::ingest::{self, EngineMsg, IngestShared, Slot};
+use crate::issuing::{self, Arrivals};
 use crate::metrics::Metrics;
 use crate::subscribers::{self, Hub, Watermarks};
 use crate::timefmt::now_unix_ns;
@@ -258,6 +260,8 @@ impl Daemon {
             let ctx = EngineThread {
                 index,
                 id: inst.id.clone(),
+                tolerance_ns: driver.reorder_tolerance_ns(),
+                arrivals: Arrivals::default(),
                 driver,
                 rx,
                 desk: desk.clone(),
@@ -428,6 +432,8 @@ fn recorder(cfg: &Config, inst: &InstrumentConfig) -> anyhow::Result<Option<Rota
 struct EngineThread {
     index: usize,
     id: String,
+    tolerance_ns: i64,
+    arrivals: Arrivals,
     driver: InstrumentDriver,
     rx: async_channel::Receiver<EngineMsg>,
     desk: Arc<Desk>,
@@ -456,6 +462,7 @@ impl EngineThread {
                     continue;
                 }
                 EngineMsg::Batch(b, received) => {
+                    self.arrivals.note(&b.time_gps_ns, received);
                     let b = self.record_batch(b, event_ns);
                     if let Err(r) = self.driver.on_batch(&b, &mut out) {
                         tracing::warn!(instrument = %self.id, seq = r.seq, code = r.code.as_str_name(), "engine refused a batch: {}", r.detail);
@@ -476,6 +483,9 @@ impl EngineThread {
                 self.watermarks.set(self.index, w);
             }
             self.issue(&mut out, received);
+            if let Some(w) = self.driver.watermark_ns() {
+                self.arrivals.forget_before(w.saturating_sub(self.tolerance_ns));
+            }
             if last_save.elapsed() >= self.save_every {
                 self.save();
                 last_save = Instant::now();
@@ -502,26 +512,34 @@ impl EngineThread {
         }
     }
 
-    fn issue(&mut self, out: &mut Vec<glint_engine::Finding>, received: i64) {
+    /// Issues one engine step's findings. Flashes first, stamped with the arrival of the photon that completed
+    /// them (the earliest such arrival when a step gives several); the rest with the receipt of the frame
+    /// that decided them. Flashes go first so an assessment never precedes its own flash.
+    fn issue(&mut self, out: &mut Vec<Finding>, received: i64) {
         if out.is_empty() {
             return;
         }
-        let stamps = Stamps {
-            received_unix_ns: received,
-            decided_unix_ns: now_unix_ns(),
-        };
-        match self.desk.issue(&self.id, out, stamps) {
-            Ok(alerts) => {
-                for a in alerts {
-                    tracing::info!(instrument = %self.id, seq = a.seq, id = %a.id, kind = crate::alerts::kind_name(a.kind), "alert issued");
+        let decided = now_unix_ns();
+        let mut flashes = Vec::new();
+        let mut rest = Vec::new();
+        let mut completed: Option<i64> = None;
+        for f in out.drain(..) {
+            if let Finding::Flash(x) = &f {
+                if received != 0 {
+                    let at = self.arrivals.completed(x, self.tolerance_ns).unwrap_or(received);
+                    completed = Some(completed.map_or(at, |c| c.min(at)));
                 }
-            }
-            Err(e) => {
-                tracing::error!(instrument = %self.id, "cannot issue {} alert(s): {e}", out.len());
-                self.fatal.cancel();
+                flashes.push(f);
+            } else {
+                rest.push(f);
             }
         }
-        out.clear();
+        let stamps = |received_unix_ns| Stamps {
+            received_unix_ns,
+            decided_unix_ns: decided,
+        };
+        issuing::issue(&self.desk, &self.id, &flashes, stamps(completed.unwrap_or(received)), &self.fatal);
+        issuing::issue(&self.desk, &self.id, &rest, stamps(received), &self.fatal);
     }
 
     fn save(&self) {

@@ -93,6 +93,11 @@ impl InstrumentDriver {
         })
     }
 
+    /// The reorder tolerance the engine uses, nanoseconds.
+    pub(crate) fn reorder_tolerance_ns(&self) -> i64 {
+        self.reorder_tolerance_ns
+    }
+
     /// Checks a batch without taking it: what ingest uses to answer a producer at once.
     pub(crate) fn check_batch(batch: &pb::PhotonBatch, reorder_tolerance_ns: i64) -> Result<(), Refused> {
         validate::validate_batch(batch, reorder_tolerance_ns).map_err(|e| Refused {

@@ -15,6 +15,7 @@ mod desk;
 mod driver;
 mod feed;
 mod ingest;
+mod issuing;
 mod journal;
 mod listen;
 mod logging;
