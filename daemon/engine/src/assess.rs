@@ -19,9 +19,9 @@ pub(crate) struct AssessInput<'a> {
     /// End of the persistence window actually covered (the nominal end, or the end of input when cut short).
     pub(crate) close: i64,
     pub(crate) cut_short: bool,
-    /// Dead time inside (last crossing, close], ns.
+    /// Dead time inside the post-flash window (end of the best trigger's window, close], ns.
     pub(crate) dead_post_ns: i64,
-    /// All-sky photons released in (last crossing, close].
+    /// All-sky photons released in the post-flash window.
     pub(crate) post_all_sky: u64,
     /// Acceptance density at the candidate's instrument-frame bin, per sr.
     pub(crate) density: f64,
@@ -39,6 +39,23 @@ pub(crate) struct AssessInput<'a> {
 fn excess(n: u64, b: f64) -> (f64, f64) {
     let ln_p = ln_sf(n, b.max(0.0));
     (ln_p.exp(), clamp_sigma(sigma_from_ln_p(ln_p)))
+}
+
+/// Photons an evaporation burst puts in the `pre_ns` before its flash span, given `signal` photons (above
+/// background) over the span of `span_ns` ending at the explosion. Above a fixed energy threshold the light
+/// curve rises as tau^-1/2 toward the explosion (SCIENCE.md section 2), so the counts in the last tau grow as
+/// sqrt(tau) and the pre-window holds signal x (sqrt(1 + pre / span) - 1) [calc] from the formula. For a real
+/// instrument this is an upper bound: the spectrum softens as tau grows, and the effective area falls toward
+/// low energies. The span is taken at least as long as the pre-window, so a short flash cannot excuse a
+/// long pre-flash excess (a burst bright enough to fill the pre-window would have crossed on a timescale as
+/// long, and its span would reach back that far).
+pub(crate) fn evaporation_rise(signal: f64, span_ns: i64, pre_ns: i64) -> f64 {
+    // A NaN signal (none can arise from finite counts) gives no rise rather than a NaN expectation.
+    if signal.is_nan() || signal <= 0.0 || pre_ns <= 0 {
+        return 0.0;
+    }
+    let span = span_ns.max(pre_ns) as f64;
+    signal * ((1.0 + pre_ns as f64 / span).sqrt() - 1.0)
 }
 
 /// Fraction of photons whose time lies within `precision_ns` of another photon's.
@@ -86,31 +103,36 @@ pub(crate) fn spread_ratio(f: &Flash, response: &InstrumentResponse) -> f64 {
 /// Builds the assessment and, for an instrumental verdict, the withdrawal.
 ///
 /// Verdict rules, in order: `instrumental` if any instrumental sign passes its threshold; else `undecided`
-/// if dead time covers more than `max_dead_fraction` of the persistence window or the input ended first;
+/// if dead time covers more than `max_dead_fraction` of the post-flash window or the input ended first;
 /// else `persistent` if the post- or pre-flash excess passes its significance; else `isolated`.
+///
+/// The post-flash window runs from the end of the best trigger's window to the end of the persistence
+/// window. An evaporation burst is brightest at its end, so its best window ends at the explosion and the
+/// model puts nothing after it; an afterglow-like burst peaks and fades, so its tail follows its best window.
+/// (The last crossing would start the window too late: a fading burst keeps crossing on the longer
+/// timescales while its tail is still bright.) The pre-flash window is the `pre_window_s` before the flash
+/// span; its expectation is the background plus the rise an evaporation burst ending at the best window's
+/// end would put there (`evaporation_rise`), so a burst's own rising light curve is not called persistent.
 pub(crate) fn assess(inp: &AssessInput<'_>) -> (Assessment, Option<Withdrawal>) {
     let c = inp.cand;
     let cfg = inp.cfg;
     let frac = (inp.density * inp.omega_r).clamp(0.0, 1.0);
     let mut flags: Vec<String> = Vec::new();
 
-    // Persistence: the disc after the last crossing and before the flash span, against the all-sky photons of
-    // the same windows times the disc's share of the acceptance (dead time needs no correction: it has no
-    // photons in either).
-    let post_counts = c
-        .photons
-        .iter()
-        .filter(|p| p.t > c.t_last && p.t <= inp.close)
-        .count() as u64;
+    // Persistence: the disc after the best trigger's window and before the flash span, against the all-sky
+    // photons of the same windows times the disc's share of the acceptance (dead time needs no correction:
+    // it has no photons in either).
+    let post_from = c.best.end_ns;
+    let in_disc = |a: i64, b: i64| c.photons.iter().filter(|p| p.t > a && p.t <= b).count() as u64;
+    let post_counts = in_disc(post_from, inp.close);
     let post_background = inp.post_all_sky as f64 * frac;
     let (post_p_value, post_sigma) = excess(post_counts, post_background);
     let pre_from = c.span_start.saturating_sub(inp.pre_ns);
-    let pre_counts = c
-        .photons
-        .iter()
-        .filter(|p| p.t > pre_from && p.t <= c.span_start)
-        .count() as u64;
-    let pre_background = c.pre_all_sky as f64 * frac;
+    let pre_counts = in_disc(pre_from, c.span_start);
+    let span_ns = post_from.saturating_sub(c.span_start);
+    let span_signal = in_disc(c.span_start, post_from) as f64 - inp.rate_hz * frac * span_ns as f64 * 1e-9;
+    let rise = evaporation_rise(span_signal, span_ns, inp.pre_ns);
+    let pre_background = c.pre_all_sky as f64 * frac + rise;
     let (pre_p_value, pre_sigma) = excess(pre_counts, pre_background);
 
     // Instrumental signs.
@@ -134,7 +156,7 @@ pub(crate) fn assess(inp: &AssessInput<'_>) -> (Assessment, Option<Withdrawal>) 
     }
     flags.extend(instrumental.iter().map(|s| (*s).to_owned()));
 
-    let window_ns = inp.close.saturating_sub(c.t_last);
+    let window_ns = inp.close.saturating_sub(post_from);
     let dead_fraction = if window_ns > 0 {
         inp.dead_post_ns as f64 / window_ns as f64
     } else {
@@ -195,14 +217,16 @@ pub(crate) fn assess(inp: &AssessInput<'_>) -> (Assessment, Option<Withdrawal>) 
         identical_time_fraction: identical,
         spread_ratio: spread,
         dead_seconds: inp.dead_post_ns as f64 * 1e-9,
-        fit,
+        fit: crate::fit::FitResult::pending(),
+        fit_job: Some(fit),
     };
     (assessment, withdrawal)
 }
 
-/// The evaporation fit over the disc photons from (flash span start - longest timescale) to the end of the
-/// persistence window, energies inside the instrument's range.
-fn fit(inp: &AssessInput<'_>, frac: f64) -> crate::fit::FitResult {
+/// The evaporation fit's job: the disc photons from (flash span start - longest timescale) to the end of the
+/// persistence window, energies inside the instrument's range, and what the fit needs besides. The engine
+/// runs it at once unless it defers fits to its caller (`EngineConfig::defer_fit`).
+fn fit(inp: &AssessInput<'_>, frac: f64) -> FitJob {
     let c = inp.cand;
     let start = c.span_start.saturating_sub(inp.longest_ns);
     let end = inp.close.max(start.saturating_add(1));
@@ -218,17 +242,55 @@ fn fit(inp: &AssessInput<'_>, frac: f64) -> crate::fit::FitResult {
     flash_e.sort_by(f64::total_cmp);
     let sigma = inp.response.psf_sigma_deg(median_sorted(&flash_e));
     let containment = gaussian_containment(inp.search_radius_deg, sigma).clamp(1e-6, 1.0);
-    fit_evaporation(&FitInput {
-        times_ns: &times,
-        energies_gev: &energies,
+    FitJob {
+        times_ns: times,
+        energies_gev: energies,
         zenith_deg: c.zenith0,
-        response: inp.response,
+        response: inp.response.clone(),
         background_rate_hz: inp.rate_hz * frac,
         background_spectral_index: inp.cfg.background_spectral_index,
         window_start_ns: start,
         window_end_ns: end,
         psf_containment: containment,
-    })
+    }
+}
+
+/// An evaporation fit still to run, owning its data (the photons' times and energies, a copy of the
+/// instrument's response) so it can run on another thread. [`run`](Self::run) is a pure function of the
+/// job: the same result whether the engine calls it at once or its caller does later.
+#[derive(Debug, Clone, PartialEq)]
+pub struct FitJob {
+    times_ns: Vec<i64>,
+    energies_gev: Vec<f64>,
+    zenith_deg: f64,
+    response: InstrumentResponse,
+    background_rate_hz: f64,
+    background_spectral_index: f64,
+    window_start_ns: i64,
+    window_end_ns: i64,
+    psf_containment: f64,
+}
+
+impl FitJob {
+    /// Runs the fit: up to a few hundred milliseconds with many photons (see [`fit_evaporation`]).
+    pub fn run(&self) -> crate::fit::FitResult {
+        fit_evaporation(&FitInput {
+            times_ns: &self.times_ns,
+            energies_gev: &self.energies_gev,
+            zenith_deg: self.zenith_deg,
+            response: &self.response,
+            background_rate_hz: self.background_rate_hz,
+            background_spectral_index: self.background_spectral_index,
+            window_start_ns: self.window_start_ns,
+            window_end_ns: self.window_end_ns,
+            psf_containment: self.psf_containment,
+        })
+    }
+
+    /// Photons the fit takes.
+    pub fn photons(&self) -> usize {
+        self.times_ns.len()
+    }
 }
 
 #[cfg(test)]
@@ -241,5 +303,24 @@ mod tests {
         assert_eq!(identical_time_fraction(&[0, 100, 200, 300], 0), 0.0);
         assert_eq!(identical_time_fraction(&[0, 10, 200, 300], 10), 0.5);
         assert_eq!(identical_time_fraction(&[7], 0), 0.0);
+    }
+
+    #[test]
+    fn evaporation_rise_follows_the_square_root_law() {
+        let s = 1_000_000_000;
+        // [calc] from the formula: N(< tau) ~ sqrt(tau), so 100 photons in the last 30 s give
+        // 100 (sqrt(60 / 30) - 1) = 41.42 in the 30 s before.
+        assert!((evaporation_rise(100.0, 30 * s, 30 * s) - 41.421_356).abs() < 1e-5);
+        // 300 s of span: 100 (sqrt(330 / 300) - 1) = 4.881.
+        assert!((evaporation_rise(100.0, 300 * s, 30 * s) - 4.880_885).abs() < 1e-5);
+        // A span shorter than the pre-window counts as long as it: a 1 s flash excuses no more than a 30 s one.
+        assert_eq!(
+            evaporation_rise(10.0, s, 30 * s),
+            evaporation_rise(10.0, 30 * s, 30 * s)
+        );
+        assert_eq!(evaporation_rise(0.0, 30 * s, 30 * s), 0.0);
+        assert_eq!(evaporation_rise(-3.0, 30 * s, 30 * s), 0.0);
+        assert_eq!(evaporation_rise(f64::NAN, 30 * s, 30 * s), 0.0);
+        assert_eq!(evaporation_rise(50.0, 30 * s, 0), 0.0);
     }
 }

@@ -36,6 +36,11 @@ pub struct EngineConfig {
     pub assess: AssessConfig,
     /// False: reorder and count only (`glint replay --no-search`); no search, no findings.
     pub search_enabled: bool,
+    /// True: assessments leave the engine with their evaporation fit pending (`Assessment::fit_job`) for the
+    /// caller to run elsewhere, so a slow fit does not hold up the photons behind it (the live daemon). False:
+    /// the engine runs the fit itself (replays). The verdict never depends on the fit, and a job's
+    /// [`run`](crate::FitJob::run) gives exactly what the engine would have, so both give the same findings.
+    pub defer_fit: bool,
 }
 
 /// Assessment settings and verdict thresholds (defaults as in `deploy/glint.toml`).
@@ -110,6 +115,7 @@ impl EngineConfig {
             acceptance_prior_cos_power: None,
             assess: AssessConfig::default(),
             search_enabled: true,
+            defer_fit: false,
         }
     }
 

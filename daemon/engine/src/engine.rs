@@ -182,14 +182,18 @@ pub(crate) struct Candidate {
     pub(crate) id: u64,
     /// Centre of the candidate's disc (the first flash's position) and its acceptance bin.
     pub(crate) pos0: [f64; 3],
-    /// Crossings whose seed lies within max(3 r, r + 3 sigma_PSF) of `pos0` belong to this candidate: a
-    /// burst's photons, hence its seeds, scatter by the PSF around the source.
+    /// Crossings whose seed lies within max(3 r, r + 3 sigma_PSF) of `pos0` (sigma at the instrument's
+    /// lowest energy) belong to this candidate: a burst's photons, hence its seeds, scatter by the PSF around
+    /// the source.
     pub(crate) cos_merge: f64,
     pub(crate) bin0: u16,
     pub(crate) zenith0: f64,
     /// Crossings with seed time up to here update the candidate; later ones within the persistence window
-    /// are only counted.
+    /// are only counted, unless more significant than `best` and no later than `extend_limit`.
     pub(crate) span_limit: i64,
+    /// A more significant crossing up to here still moves the best trigger and the last crossing: the first
+    /// crossing plus the persistence window of the longest timescale.
+    pub(crate) extend_limit: i64,
     /// Earliest window start and latest seed time over the merged crossings: the flash span.
     pub(crate) span_start: i64,
     pub(crate) t_last: i64,
@@ -199,8 +203,9 @@ pub(crate) struct Candidate {
     pub(crate) best_all_sky_expected: f64,
     /// All-sky photons in the pre-window (span_start - pre, span_start].
     pub(crate) pre_all_sky: u64,
-    /// Photons released when the last crossing was processed (all those with time <= t_last).
-    pub(crate) released_at_last: u64,
+    /// Photons released when the best crossing was processed (all those with time <= best.end_ns): the
+    /// post-flash window starts there.
+    pub(crate) released_at_best: u64,
     /// Photons in the disc from (first window start - longest - pre) on, in time order.
     pub(crate) photons: Vec<CandPhoton>,
     pub(crate) capped: bool,
@@ -249,12 +254,13 @@ struct StreamClock {
 /// time), [`stream_break`](Self::stream_break) when the producer disconnects, and
 /// [`finish`](Self::finish) at the end of input. Each call appends findings to the caller's buffer.
 ///
-/// Time only moves forward. The watermark (latest time seen minus the reorder tolerance) never goes back;
-/// photons behind it on arrival are counted as late and dropped; a frame more than `max_clock_jump_ns` ahead
-/// of the stream is refused with [`EngineError::ClockJump`] and leaves the engine unchanged (after a stream
-/// break the next frame may start anywhere: the gap becomes dead time). Everything downstream of the reorder
-/// stage sees photons in time order, so the same frames always give the same findings, and batches shuffled
-/// within the reorder tolerance give the same findings too.
+/// Time only moves forward. The watermark (latest time seen minus the reorder tolerance, or the producer's
+/// promise `complete_before_gps_ns` when that is later) never goes back; photons behind it on arrival are
+/// counted as late and dropped; a frame more than `max_clock_jump_ns` ahead of the stream is refused with
+/// [`EngineError::ClockJump`] and leaves the engine unchanged (after a stream break the next frame may start
+/// anywhere: the gap becomes dead time). Everything downstream of the reorder stage sees photons in time
+/// order, so the same frames always give the same findings, and batches shuffled within the reorder
+/// tolerance, or carrying promises that are kept, give the same findings too (promises change only when).
 ///
 /// [`save_state`](Self::save_state) and [`load_state`](Self::load_state) carry the acceptance map across
 /// restarts; load before the first frame.
@@ -268,11 +274,14 @@ struct StreamClock {
 /// rebuilt when the all-sky rate moves by more than 2% or every min(60 s, tau / 10) of event time.
 ///
 /// The first crossing opens a candidate and emits a [`Flash`] at once. A later crossing whose seed lies
-/// within max(3 r, r + 3 sigma_PSF) of the candidate's position and no later than its first crossing plus the
-/// longest timescale updates it (its best trigger is the lowest p); one after that but inside the persistence
-/// window is only counted (`crossings_after_flash`). The candidate stays open for the persistence window,
-/// max(`persistence_min_s`, `persistence_timescale_factor` x the best timescale) after its last crossing, and
-/// is assessed when the watermark passes its end.
+/// within max(3 r, r + 3 sigma_PSF) of the candidate's position (sigma at the instrument's lowest energy)
+/// and no later than its first crossing plus the longest timescale updates it (its best trigger is the
+/// lowest p); one after that but inside the persistence window is only counted (`crossings_after_flash`), unless it is more significant than the best so far and
+/// comes within the longest timescale's persistence window (300 s by default) of the first crossing: then it
+/// becomes the best trigger and the last crossing. A burst that brightens to a sudden end, as an evaporating
+/// black hole does, so has its best trigger at its end however early it first crossed. The candidate stays
+/// open for the persistence window, max(`persistence_min_s`, `persistence_timescale_factor` x the best
+/// trigger's timescale) after its last crossing, and is assessed when the watermark passes its end.
 ///
 /// # Memory
 ///
@@ -393,7 +402,8 @@ impl Engine {
     }
 
     /// Takes a photon batch (already validated by the caller), releases what the watermark allows and runs
-    /// the search on it.
+    /// the search on it. A promise in the batch (`complete_before_gps_ns`, at most its latest time + 1) moves
+    /// the watermark up to it at once.
     pub fn push_batch(&mut self, batch: &PhotonBatch, out: &mut Vec<Finding>) -> Result<(), EngineError> {
         let n = batch.time_gps_ns.len();
         let bad = |detail: String| EngineError::InvalidFrame {
@@ -429,7 +439,16 @@ impl Engine {
                 )));
             }
         }
-        let Some((&tmin, &tmax)) = batch.time_gps_ns.iter().min().zip(batch.time_gps_ns.iter().max()) else {
+        let promise = batch.complete_before_gps_ns;
+        let newest = batch.time_gps_ns.iter().max();
+        if promise != 0 && (promise < 0 || newest.is_none_or(|&t| promise > t.saturating_add(1))) {
+            self.stats.refused_invalid += 1;
+            return Err(bad(format!(
+                "complete_before_gps_ns = {promise} must be 0 or at most the latest photon time + 1 ({})",
+                newest.map_or_else(|| "no photons".to_owned(), |t| t.saturating_add(1).to_string())
+            )));
+        }
+        let Some((&tmin, &tmax)) = batch.time_gps_ns.iter().min().zip(newest) else {
             if self.clock.latest.is_some() && !self.clock.broken {
                 self.note_seq(batch.seq, None);
             }
@@ -458,6 +477,9 @@ impl Engine {
         self.incoming = incoming;
         self.stats.photons_in += n as u64;
         self.move_time(tmax);
+        if promise > 0 {
+            self.reorder.advance_watermark(promise);
+        }
         self.advance(out);
         Ok(())
     }
@@ -808,7 +830,12 @@ impl Engine {
             dot(g.v, c.pos0) >= c.cos_merge && t <= c.t_last.saturating_add(self.persistence_ns(c))
         });
         if let Some(ci) = found {
-            if t > self.cands[ci].span_limit {
+            let c = &self.cands[ci];
+            // A burst that brightens to its end (an evaporating black hole's light curve rises as
+            // tau^-1/2 until it stops dead) keeps giving more significant crossings after the span limit:
+            // they move the best trigger, so the flash ends where the burst does.
+            let brighter = ln_p < c.best.ln_p && t <= c.extend_limit;
+            if t > c.span_limit && !brighter {
                 self.cands[ci].late_crossings += 1;
                 return;
             }
@@ -824,7 +851,6 @@ impl Engine {
             let c = &mut self.cands[ci];
             c.mask |= mask;
             c.t_last = c.t_last.max(t);
-            c.released_at_last = released;
             if start < c.span_start {
                 c.span_start = start;
                 c.pre_all_sky = pre_all_sky;
@@ -837,6 +863,7 @@ impl Engine {
                 c.best = flash;
                 c.best_all_sky = all_sky;
                 c.best_all_sky_expected = expected;
+                c.released_at_best = released;
             }
             return;
         }
@@ -848,9 +875,11 @@ impl Engine {
         self.next_id += 1;
         let flash = self.build_flash(i, k, n, b, ln_p, id);
         let pos0 = unit_vector(flash.ra_deg, flash.dec_deg);
-        let mut energies: Vec<f64> = flash.photons.iter().map(|p| p.energy_gev).collect();
-        energies.sort_by(f64::total_cmp);
-        let sigma = self.cfg.response.psf_sigma_deg(median_sorted(&energies));
+        // The seeds scatter by the PSF at their own energies, the widest at the lowest: with the flash's
+        // median energy instead, a bright soft source's low-energy seeds cross outside the radius and split
+        // it into several candidates.
+        let resp = &self.cfg.response;
+        let sigma = resp.psf_sigma_deg(resp.energy_min_gev());
         let r = self.cfg.search_radius_deg;
         let merge_deg = (3.0 * r).max(r + 3.0 * sigma).min(90.0);
         let (all_sky, expected) = self.flash_all_sky(&flash, g.bin);
@@ -903,11 +932,12 @@ impl Engine {
             bin0: g.bin.unwrap_or(0),
             zenith0: f64::from(g.p.zenith),
             span_limit: t.saturating_add(self.p.longest_ns),
+            extend_limit: t.saturating_add(self.longest_persistence_ns()),
             span_start: start,
             t_last: t,
             mask,
             pre_all_sky: self.pre_all_sky(start),
-            released_at_last: self.all_sky.released(),
+            released_at_best: self.all_sky.released(),
             best: flash,
             best_all_sky: all_sky,
             best_all_sky_expected: expected,
@@ -922,10 +952,26 @@ impl Engine {
         self.all_sky.count(start.saturating_sub(self.p.pre_ns), start)
     }
 
-    /// All-sky photons in a flash window with the flash's own photons left out, and their expectation from
-    /// the rate over the rate window just before it (outside the flash, so a jump is not diluted).
+    /// All-sky photons in a flash window with the flash's own source left out, and their expectation from
+    /// the rate over the rate window just before it (outside the flash, so a jump is not diluted). The source
+    /// is left out with a cone of max(3 r, r + 4 sigma_PSF) at the instrument's lowest energy: a bright soft
+    /// source puts most of its photons outside the search disc, and its PSF's wings must not look like an
+    /// all-sky jump (4 sigma holds all but exp(-8) of a Gaussian PSF's photons).
     fn flash_all_sky(&self, f: &Flash, bin: Option<u16>) -> (u64, f64) {
-        let counts = self.all_sky.count(f.start_ns, f.end_ns).saturating_sub(f.counts);
+        let resp = &self.cfg.response;
+        let r = self.cfg.search_radius_deg;
+        let own_deg = (3.0 * r)
+            .max(r + 4.0 * resp.psf_sigma_deg(resp.energy_min_gev()))
+            .min(90.0);
+        let (centre, cos_own) = (unit_vector(f.ra_deg, f.dec_deg), own_deg.to_radians().cos());
+        let mut own = 0u64;
+        self.sky
+            .for_each_hot_in_cone(f.ra_deg, f.dec_deg, own_deg, f.start_ns.saturating_add(1), |h| {
+                if h.t <= f.end_ns && dot(h.v, centre) >= cos_own {
+                    own += 1;
+                }
+            });
+        let counts = self.all_sky.count(f.start_ns, f.end_ns).saturating_sub(own);
         let start = self.clock.start.unwrap_or(f.start_ns);
         let live = |a: i64, b: i64| {
             let a = a.max(start);
@@ -943,8 +989,8 @@ impl Engine {
             .as_ref()
             .zip(bin)
             .map_or(0.0, |(m, b)| m.dens[usize::from(b)]);
-        let disc_fraction = (a * self.p.omega_r).clamp(0.0, 1.0);
-        let expected = rate * live(f.start_ns, f.end_ns) as f64 * 1e-9 * (1.0 - disc_fraction);
+        let own_fraction = (a * disc_solid_angle_sr(own_deg)).clamp(0.0, 1.0);
+        let expected = rate * live(f.start_ns, f.end_ns) as f64 * 1e-9 * (1.0 - own_fraction);
         (counts, expected)
     }
 
@@ -1069,6 +1115,17 @@ impl Engine {
         )
     }
 
+    /// The persistence window of the longest timescale: how long after its first crossing a candidate may
+    /// still take a more significant crossing.
+    fn longest_persistence_ns(&self) -> i64 {
+        let a = &self.cfg.assess;
+        let longest_s = self.cfg.ladder_s.last().copied().unwrap_or(0.0);
+        secs_to_ns(
+            a.persistence_min_s
+                .max(a.persistence_timescale_factor * longest_s),
+        )
+    }
+
     fn close_of(&self, c: &Candidate) -> i64 {
         c.t_last.saturating_add(self.persistence_ns(c))
     }
@@ -1093,10 +1150,11 @@ impl Engine {
     fn emit_assessment(&mut self, c: Candidate, close: i64, cut_short: bool, out: &mut Vec<Finding>) {
         let dens = self.model.as_ref().map_or(0.0, |m| m.dens[usize::from(c.bin0)]);
         let rate = self.model.as_ref().map_or(0.0, |m| m.rate_hz);
-        let post_all_sky = self.all_sky.released().saturating_sub(c.released_at_last);
+        // The post-flash window runs from the end of the best trigger's window (see assess.rs).
+        let post_all_sky = self.all_sky.released().saturating_sub(c.released_at_best);
         let dead_post_ns = self
             .dead
-            .overlap(c.t_last.saturating_add(1), close.saturating_add(1));
+            .overlap(c.best.end_ns.saturating_add(1), close.saturating_add(1));
         let input = AssessInput {
             cand: &c,
             close,
@@ -1112,7 +1170,12 @@ impl Engine {
             response: &self.cfg.response,
             cfg: &self.cfg.assess,
         };
-        let (assessment, withdrawal) = assess::assess(&input);
+        let (mut assessment, withdrawal) = assess::assess(&input);
+        if !self.cfg.defer_fit {
+            if let Some(job) = assessment.fit_job.take() {
+                assessment.fit = job.run();
+            }
+        }
         self.stats.assessments += 1;
         out.push(Finding::Assessment(assessment));
         if let Some(w) = withdrawal {

@@ -4,6 +4,7 @@
 
 use serde::{Deserialize, Serialize};
 
+use crate::assess::FitJob;
 use crate::fit::FitResult;
 
 /// One photon of a flash, as it arrived (GPS ns, ICRS degrees, GeV, instrument-frame degrees).
@@ -99,7 +100,8 @@ pub struct Assessment {
     pub verdict: Verdict,
     /// The candidate's best (lowest p) trigger.
     pub trigger: Flash,
-    /// Photons in the disc after the flash, in (last crossing, window end].
+    /// Photons in the disc after the flash, in (end of the best trigger's window, end of the persistence
+    /// window]: an evaporation burst is brightest at its end, so nothing of it follows its best window.
     pub post_counts: u64,
     /// Expected background for them: all-sky photons in the window x a(zenith, azimuth) x Omega_r.
     pub post_background: f64,
@@ -109,7 +111,9 @@ pub struct Assessment {
     pub post_sigma: f64,
     /// Photons in the disc in the pre-window before the flash.
     pub pre_counts: u64,
-    /// Expected background for them.
+    /// Expected counts for them without persistence: the background, plus the rise an evaporation burst
+    /// ending at the best window's end would put there (its light curve rises as tau^-1/2; see
+    /// `assess::evaporation_rise`), so a burst's own rise is not called persistent.
     pub pre_background: f64,
     /// P(N >= pre_counts | pre_background).
     pub pre_p_value: f64,
@@ -118,7 +122,8 @@ pub struct Assessment {
     /// Reasons behind the verdict and caveats, e.g. `all_sky_jump`, `identical_timestamps`, `wide_spread`,
     /// `dead_time`, `cut_short`, `post_excess`, `pre_excess`, `photons_capped`, `crossings_after_flash`.
     pub flags: Vec<String>,
-    /// All-sky photons in the best trigger's window, the flash's own disc left out.
+    /// All-sky photons in the best trigger's window, a cone around the flash left out that holds its PSF's
+    /// wings at the lowest energy (max(3 r, r + 4 sigma_PSF)).
     pub all_sky_counts: u64,
     /// Their expectation from the all-sky rate just before the window.
     pub all_sky_expected: f64,
@@ -126,10 +131,13 @@ pub struct Assessment {
     pub identical_time_fraction: f64,
     /// RMS spread of the trigger's photons about their centroid over the PSF's expectation.
     pub spread_ratio: f64,
-    /// Dead time inside the persistence window, seconds.
+    /// Dead time inside the post-flash window, seconds.
     pub dead_seconds: f64,
-    /// The evaporation fit.
+    /// The evaporation fit; [`FitResult::pending`] while `fit_job` is set.
     pub fit: FitResult,
+    /// The fit still to run when the engine defers it (`EngineConfig::defer_fit`): run it, put the result in
+    /// `fit` and clear this before the assessment goes out. None once the fit is in `fit`.
+    pub fit_job: Option<FitJob>,
 }
 
 /// An alert retracted by the engine.

@@ -40,6 +40,8 @@ const MAX_SOLVER_ITERATIONS: usize = 200;
 const MAX_BRACKET_DOUBLINGS: usize = 200;
 /// Name of the goodness-of-fit test reported in `FitResult::gof_test`.
 const GOF_TEST: &str = "ks_time";
+/// `FitResult::reason` of a fit still to run.
+const PENDING: &str = "pending";
 
 /// What the fit needs: the candidate's photons in the disc and window, the instrument, and the background.
 #[derive(Clone, Copy)]
@@ -93,6 +95,17 @@ pub struct FitResult {
 }
 
 impl FitResult {
+    /// A fit not run yet: what an assessment carries while its `fit_job` waits for the caller
+    /// (`converged = false`, reason `pending`, the numbers zero).
+    pub fn pending() -> Self {
+        Self::failed(PENDING.to_owned())
+    }
+
+    /// True for [`pending`](Self::pending).
+    pub fn is_pending(&self) -> bool {
+        !self.converged && self.reason == PENDING
+    }
+
     fn failed(reason: String) -> Self {
         Self {
             converged: false,

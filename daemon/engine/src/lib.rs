@@ -16,6 +16,7 @@ pub mod fit;
 mod reorder;
 mod sky;
 
+pub use assess::FitJob;
 pub use config::{AssessConfig, EngineConfig};
 pub use engine::{Engine, EngineStats, SECONDS_PER_YEAR};
 pub use error::EngineError;

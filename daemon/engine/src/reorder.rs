@@ -1,7 +1,8 @@
-//! Reorder stage: photons wait here until the watermark (latest time seen minus the reorder tolerance) passes
-//! them, then leave in time order with a total tie-break on their other fields, so the same photons give the
-//! same sequence whatever batches they came in. Photons already behind the watermark when they arrive are late:
-//! counted and dropped, never slipped into the past. Holds at most (rate x tolerance) photons.
+//! Reorder stage: photons wait here until the watermark (latest time seen minus the reorder tolerance, or a
+//! producer's promise that nothing older follows, whichever is later) passes them, then leave in time order
+//! with a total tie-break on their other fields, so the same photons give the same sequence whatever batches
+//! they came in. Photons already behind the watermark when they arrive are late: counted and dropped, never
+//! slipped into the past. Holds at most (rate x tolerance) photons.
 
 use std::collections::VecDeque;
 

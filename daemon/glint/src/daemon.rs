@@ -1,7 +1,8 @@
 //! `glint run`: the live daemon. Binds the ingest and subscriber listeners, starts one engine thread per
-//! instrument (fed by a bounded channel, issuing findings through the alert desk), and stops in stages on
-//! SIGTERM/SIGINT within `daemon.shutdown_deadline`: stop accepting, drain the engines (open candidates are
-//! assessed as cut short), fsync the journal, say goodbye to subscribers. A second signal exits at once.
+//! instrument (fed by a bounded channel, issuing findings through the alert desk; evaporation fits go to one
+//! fit worker), and stops in stages on SIGTERM/SIGINT within `daemon.shutdown_deadline`: stop accepting,
+//! drain the engines (open candidates are assessed as cut short) and the fit worker, fsync the journal, say
+//! goodbye to subscribers. A second signal exits at once.
 //! Bound addresses are logged and written to `state_dir/ports.json` (useful with port 0).
 
 use std::fs::File;
@@ -24,7 +25,7 @@ use crate::config::{Config, InstrumentConfig};
 use crate::desk::{Desk, Stamps};
 use crate::driver::InstrumentDriver;
 use crate::ingest::{self, EngineMsg, IngestShared, Slot};
-use crate::issuing::{self, Arrivals};
+use crate::issuing::{self, Arrivals, FitTask};
 use crate::metrics::Metrics;
 use crate::subscribers::{self, Hub, Watermarks};
 use crate::timefmt::now_unix_ns;
@@ -106,6 +107,7 @@ pub(crate) struct Daemon {
     ingest: Arc<IngestShared>,
     engines: Vec<(String, std::thread::JoinHandle<()>)>,
     engines_done: tokio::sync::mpsc::Receiver<String>,
+    fit_worker: Option<std::thread::JoinHandle<()>>,
     _lock: PidLock,
 }
 
@@ -230,10 +232,12 @@ impl Daemon {
         let (done_tx, engines_done) = tokio::sync::mpsc::channel(cfg.instruments.len().max(1));
         let mut slots = Vec::new();
         let mut engines = Vec::new();
+        let (fit_tx, fit_worker) =
+            issuing::start_fit_worker(desk.clone(), fatal.clone()).context("cannot start the fit worker")?;
         for (index, inst) in cfg.instruments.iter().enumerate() {
             let (tx, rx) = async_channel::bounded(cfg.ingest.queue_batches.get());
             let mut driver =
-                InstrumentDriver::new(inst, true).with_context(|| format!("instrument {}", inst.id))?;
+                InstrumentDriver::live(inst).with_context(|| format!("instrument {}", inst.id))?;
             let sp = state_path(&state_dir, &inst.id);
             match std::fs::read(&sp) {
                 Ok(blob) => match driver.load_state(&blob) {
@@ -265,10 +269,12 @@ impl Daemon {
                 driver,
                 rx,
                 desk: desk.clone(),
+                fits: fit_tx.clone(),
                 watermarks: watermarks.clone(),
                 state_file: sp,
                 save_every: cfg.daemon.state_save_interval,
                 recorder: recorder(&cfg, inst)?,
+                hello: None,
                 fatal: fatal.clone(),
             };
             let done = done_tx.clone();
@@ -282,6 +288,8 @@ impl Daemon {
                 .context("cannot start an engine thread")?;
             engines.push((inst.id.clone(), handle));
         }
+        // The engine threads hold the only senders: the worker ends once they have.
+        drop(fit_tx);
         let ingest = Arc::new(IngestShared {
             slots,
             max_frame: cfg.daemon.max_frame_bytes,
@@ -354,6 +362,7 @@ impl Daemon {
             ingest,
             engines,
             engines_done,
+            fit_worker: Some(fit_worker),
             _lock: lock,
         })
     }
@@ -391,6 +400,16 @@ impl Daemon {
         }
         for (_, h) in self.engines.drain(..) {
             let _ = h.join();
+        }
+        // The fits the engines deferred, the last assessments among them: the worker ends once it has run
+        // them all, since the engine threads held its only senders.
+        if let Some(worker) = self.fit_worker.take() {
+            let joined = tokio::time::timeout_at(end, tokio::task::spawn_blocking(move || worker.join()))
+                .await
+                .map_err(|_| late("running the last evaporation fits"))?;
+            if !matches!(joined, Ok(Ok(()))) {
+                tracing::error!("the fit worker failed; assessments it held may be missing");
+            }
         }
         // 3. Journal on disk (every alert already was before it was sent; this covers the last ones).
         let desk = self.desk.clone();
@@ -437,10 +456,13 @@ struct EngineThread {
     driver: InstrumentDriver,
     rx: async_channel::Receiver<EngineMsg>,
     desk: Arc<Desk>,
+    fits: std::sync::mpsc::SyncSender<FitTask>,
     watermarks: Arc<Watermarks>,
     state_file: PathBuf,
     save_every: Duration,
     recorder: Option<RotatingWriter>,
+    /// The producer's Hello, until the first frame after it is recorded.
+    hello: Option<pb::Hello>,
     fatal: CancellationToken,
 }
 
@@ -453,7 +475,9 @@ impl EngineThread {
         while let Ok(msg) = self.rx.recv_blocking() {
             let received = match msg {
                 EngineMsg::Hello(h) => {
-                    self.record(pb::producer_frame::Body::Hello(h), event_ns);
+                    // Recorded with the first frame after it, at that frame's event time: a file opened at
+                    // time 0 would rotate at its first frame, splitting the stream with a spurious reconnect.
+                    self.hello = Some(h);
                     continue;
                 }
                 EngineMsg::StreamBreak => {
@@ -463,6 +487,7 @@ impl EngineThread {
                 }
                 EngineMsg::Batch(b, received) => {
                     self.arrivals.note(&b.time_gps_ns, received);
+                    event_ns = event_ns.max(b.time_gps_ns.iter().copied().max().unwrap_or(0));
                     let b = self.record_batch(b, event_ns);
                     if let Err(r) = self.driver.on_batch(&b, &mut out) {
                         tracing::warn!(instrument = %self.id, seq = r.seq, code = r.code.as_str_name(), "engine refused a batch: {}", r.detail);
@@ -512,34 +537,47 @@ impl EngineThread {
         }
     }
 
-    /// Issues one engine step's findings. Flashes first, stamped with the arrival of the photon that completed
-    /// them (the earliest such arrival when a step gives several); the rest with the receipt of the frame
-    /// that decided them. Flashes go first so an assessment never precedes its own flash.
+    /// Issues one engine step's findings: flashes first, stamped with the arrival of the photon that completed
+    /// them (the earliest such arrival when a step gives several), so an assessment never precedes its own
+    /// flash; then the rest that need no fit, stamped with the receipt of the frame that decided them; and
+    /// the assessments whose fit is pending go to the fit worker.
     fn issue(&mut self, out: &mut Vec<Finding>, received: i64) {
         if out.is_empty() {
             return;
         }
+        let (now, later) = issuing::split_deferred(out);
         let decided = now_unix_ns();
-        let mut flashes = Vec::new();
-        let mut rest = Vec::new();
-        let mut completed: Option<i64> = None;
-        for f in out.drain(..) {
-            if let Finding::Flash(x) = &f {
-                if received != 0 {
-                    let at = self.arrivals.completed(x, self.tolerance_ns).unwrap_or(received);
-                    completed = Some(completed.map_or(at, |c| c.min(at)));
+        let (flashes, rest): (Vec<Finding>, Vec<Finding>) =
+            now.into_iter().partition(|f| matches!(f, Finding::Flash(_)));
+        let completed = flashes
+            .iter()
+            .filter_map(|f| match f {
+                Finding::Flash(x) if received != 0 => {
+                    Some(self.arrivals.completed(x, self.tolerance_ns).unwrap_or(received))
                 }
-                flashes.push(f);
-            } else {
-                rest.push(f);
-            }
-        }
+                _ => None,
+            })
+            .min();
         let stamps = |received_unix_ns| Stamps {
             received_unix_ns,
             decided_unix_ns: decided,
         };
-        issuing::issue(&self.desk, &self.id, &flashes, stamps(completed.unwrap_or(received)), &self.fatal);
+        issuing::issue(
+            &self.desk,
+            &self.id,
+            &flashes,
+            stamps(completed.unwrap_or(received)),
+            &self.fatal,
+        );
         issuing::issue(&self.desk, &self.id, &rest, stamps(received), &self.fatal);
+        if !later.is_empty() {
+            let task = FitTask {
+                instrument: Arc::from(self.id.as_str()),
+                findings: later,
+                received_unix_ns: received,
+            };
+            issuing::defer(&self.fits, task, &self.desk, &self.fatal);
+        }
     }
 
     fn save(&self) {
@@ -556,11 +594,13 @@ impl EngineThread {
         let Some(w) = self.recorder.as_mut() else {
             return body;
         };
+        let header = self.hello.take().map(|h| pb::ProducerFrame {
+            body: Some(pb::producer_frame::Body::Hello(h)),
+        });
         let frame = pb::ProducerFrame { body: Some(body) };
-        let result = match &frame.body {
-            Some(pb::producer_frame::Body::Hello(_)) => w.set_header(frame.clone(), event_ns),
-            _ => w.write_frame(&frame, event_ns),
-        };
+        let result = header
+            .map_or(Ok(None), |h| w.set_header(h, event_ns))
+            .and_then(|_| w.write_frame(&frame, event_ns));
         if let Err(e) = result {
             tracing::error!(instrument = %self.id, "recording stopped: {e}");
             self.recorder = None;

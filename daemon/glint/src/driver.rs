@@ -41,6 +41,7 @@ pub(crate) fn engine_config(inst: &InstrumentConfig, search_enabled: bool) -> En
             ..AssessConfig::default()
         },
         search_enabled,
+        defer_fit: false,
     }
 }
 
@@ -84,7 +85,18 @@ pub(crate) struct InstrumentDriver {
 impl InstrumentDriver {
     /// A driver for one configured instrument; `search_enabled = false` runs validation and reorder only.
     pub(crate) fn new(inst: &InstrumentConfig, search_enabled: bool) -> Result<Self, EngineError> {
-        let cfg = engine_config(inst, search_enabled);
+        Self::with_config(engine_config(inst, search_enabled))
+    }
+
+    /// The live daemon's driver: the search on, and assessments leave the engine with their evaporation fit
+    /// pending, for the fit worker to run, so a slow fit never holds up the photons behind it.
+    pub(crate) fn live(inst: &InstrumentConfig) -> Result<Self, EngineError> {
+        let mut cfg = engine_config(inst, true);
+        cfg.defer_fit = true;
+        Self::with_config(cfg)
+    }
+
+    fn with_config(cfg: EngineConfig) -> Result<Self, EngineError> {
         let reorder_tolerance_ns = cfg.reorder_tolerance_ns;
         Ok(Self {
             engine: Engine::new(cfg)?,

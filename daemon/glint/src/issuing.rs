@@ -21,7 +21,13 @@ const SPARE_BUFFERS: usize = 16;
 
 /// Issues findings through the desk and logs each alert. A desk failure (the journal cannot be written)
 /// stops the daemon: one that cannot journal must not send.
-pub(crate) fn issue(desk: &Desk, instrument: &str, findings: &[Finding], stamps: Stamps, fatal: &CancellationToken) {
+pub(crate) fn issue(
+    desk: &Desk,
+    instrument: &str,
+    findings: &[Finding],
+    stamps: Stamps,
+    fatal: &CancellationToken,
+) {
     if findings.is_empty() {
         return;
     }
@@ -110,5 +116,144 @@ impl Arrivals {
     #[cfg(test)]
     fn len(&self) -> usize {
         self.batches.len()
+    }
+}
+
+/// Assessments of one engine step whose fit is still to run, each with the withdrawal that follows it when
+/// instrumental (a withdrawal must not overtake its assessment: the desk links both to the flash).
+#[derive(Debug)]
+pub(crate) struct FitTask {
+    /// Instrument the findings belong to.
+    pub(crate) instrument: Arc<str>,
+    /// The findings, in the engine's order.
+    pub(crate) findings: Vec<Finding>,
+    /// Receipt of the frame that decided them; the decided stamp is set once the fits have run.
+    pub(crate) received_unix_ns: i64,
+}
+
+impl FitTask {
+    /// Runs the pending fits and issues the findings.
+    fn complete(mut self, desk: &Desk, fatal: &CancellationToken) {
+        for f in &mut self.findings {
+            if let Finding::Assessment(a) = f {
+                if let Some(job) = a.fit_job.take() {
+                    a.fit = job.run();
+                }
+            }
+        }
+        let stamps = Stamps {
+            received_unix_ns: self.received_unix_ns,
+            decided_unix_ns: now_unix_ns(),
+        };
+        issue(desk, &self.instrument, &self.findings, stamps, fatal);
+    }
+}
+
+/// Splits one engine step's findings: those that can go out now, in order, and those waiting on a fit (an
+/// assessment with a pending fit and the withdrawal of the same candidate right after it).
+pub(crate) fn split_deferred(findings: &mut Vec<Finding>) -> (Vec<Finding>, Vec<Finding>) {
+    let mut now = Vec::new();
+    let mut later: Vec<Finding> = Vec::new();
+    for f in findings.drain(..) {
+        let follows_deferred = match (&f, later.last()) {
+            (Finding::Withdrawal(w), Some(Finding::Assessment(a))) => a.candidate == w.candidate,
+            _ => false,
+        };
+        match &f {
+            Finding::Assessment(a) if a.fit_job.is_some() => later.push(f),
+            Finding::Withdrawal(_) if follows_deferred => later.push(f),
+            _ => now.push(f),
+        }
+    }
+    (now, later)
+}
+
+/// The daemon's fit worker: runs the evaporation fits the engines deferred, one at a time, and issues the
+/// assessments. It ends once every sender is dropped and the queue is drained, so shutdown waits for it
+/// after the engines and before the journal's final fsync.
+pub(crate) fn start_fit_worker(
+    desk: Arc<Desk>,
+    fatal: CancellationToken,
+) -> std::io::Result<(mpsc::SyncSender<FitTask>, std::thread::JoinHandle<()>)> {
+    let (tx, rx) = mpsc::sync_channel::<FitTask>(FIT_QUEUE);
+    let handle = std::thread::Builder::new()
+        .name("fit-worker".into())
+        .spawn(move || {
+            while let Ok(task) = rx.recv() {
+                task.complete(&desk, &fatal);
+            }
+        })?;
+    Ok((tx, handle))
+}
+
+/// Hands a task to the fit worker; if the worker is gone (it cannot be, short of a panic), runs it here so no
+/// assessment is lost.
+pub(crate) fn defer(tx: &mpsc::SyncSender<FitTask>, task: FitTask, desk: &Desk, fatal: &CancellationToken) {
+    if let Err(mpsc::SendError(task)) = tx.send(task) {
+        tracing::error!(instrument = %task.instrument, "the fit worker has stopped: running the fit on the engine thread");
+        task.complete(desk, fatal);
+    }
+}
+
+#[cfg(test)]
+#[allow(clippy::unwrap_used)] // tests may unwrap
+mod tests {
+    use super::*;
+    use glint_engine::PhotonRec;
+
+    fn flash(times: &[i64]) -> Flash {
+        Flash {
+            candidate: 1,
+            start_ns: times[0] - 1,
+            end_ns: *times.last().unwrap(),
+            ra_deg: 10.0,
+            dec_deg: -20.0,
+            error_radius_deg: 0.1,
+            search_radius_deg: 0.5,
+            timescale_s: 0.1,
+            counts: times.len() as u64,
+            background: 0.1,
+            p_value: 1e-9,
+            ln_p: -20.7,
+            sigma: 6.0,
+            far_per_year: 0.1,
+            zenith_deg: 10.0,
+            photons: times
+                .iter()
+                .map(|&t| PhotonRec {
+                    time_ns: t,
+                    ra_deg: 10.0,
+                    dec_deg: -20.0,
+                    energy_gev: 500.0,
+                    zenith_deg: 10.0,
+                    azimuth_deg: 0.0,
+                })
+                .collect(),
+        }
+    }
+
+    #[test]
+    fn a_flash_is_stamped_with_the_arrival_of_its_last_photon_to_arrive() {
+        const TOL: i64 = 20;
+        let mut a = Arrivals::default();
+        a.note(&[100, 105, 110], 1_000);
+        // Out of order: the photon at 108 comes in the next batch, after the one at 110.
+        a.note(&[120, 108, 125], 2_000);
+        a.note(&[130, 140], 3_000);
+        // The flash ending at 110 was completed by the photon at 108, read at 2000.
+        assert_eq!(a.completed(&flash(&[100, 108, 110]), TOL), Some(2_000));
+        // Photons older than the tolerance before the end cannot have come after it: not looked at.
+        assert_eq!(a.completed(&flash(&[108, 130, 140]), 0), Some(3_000));
+        assert_eq!(a.completed(&flash(&[108, 140]), TOL), Some(3_000));
+        assert_eq!(a.completed(&flash(&[999]), TOL), None);
+        // Forgetting drops whole batches whose photons are all older than the bound, oldest first.
+        a.forget_before(111);
+        assert_eq!(a.len(), 2);
+        assert_eq!(a.completed(&flash(&[100, 108, 110]), TOL), Some(2_000));
+        a.forget_before(126);
+        assert_eq!(a.len(), 1);
+        assert_eq!(a.completed(&flash(&[125]), TOL), None);
+        a.note(&[], 4_000);
+        assert_eq!(a.len(), 1, "an empty batch holds no arrival");
     }
 }

@@ -14,7 +14,9 @@ use tokio::net::TcpListener;
 /// A stage of the path from a producer's frame to a subscriber's socket.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub(crate) enum Stage {
-    /// Frame read to finding decided (queue wait, reorder hold excluded: it is event time).
+    /// Frame read to finding decided. For a flash the frame is the one that brought the last of its photons
+    /// to arrive, so the wait in the reorder stage counts; for an assessment it is the frame whose event time
+    /// closed its persistence window, and the evaporation fit counts.
     Decide,
     /// Finding decided to journal record fsynced.
     Journal,

@@ -1,5 +1,6 @@
 //! The simulator proper: turns a checked scenario and a seed into the producer frames an instrument's front
-//! end would send (a `Hello`, then photon batches and `StreamStatus` heartbeats), plus truth records.
+//! end would send (a `Hello`, then photon batches, each promising how old the photons still to come can be,
+//! and `StreamStatus` heartbeats), plus truth records.
 //!
 //! Memory is bounded: transient sources (evaporation, afterglow-like bursts, identical-timestamp glitches)
 //! are drawn once up front (they are small and capped); the background, steady sources and rate jumps are
@@ -688,11 +689,38 @@ impl Simulator {
 
     fn flush(&mut self) {
         if let Some(mut o) = self.open.take() {
+            let latest = o.batch.time_gps_ns.iter().copied().max().unwrap_or(0);
+            o.batch.complete_before_gps_ns = self.unsent_floor().min(latest.saturating_add(1)).max(0);
             o.batch.seq = self.next_seq;
             self.next_seq += 1;
             self.stats.batches += 1;
             self.push(Body::Batch(o.batch));
         }
+    }
+
+    /// The batch promise (`complete_before_gps_ns`): nothing not yet sent is older than this. Queued photons
+    /// go out in order of their send time, at most the jitter after their own time, so none is older than the
+    /// next one's send time minus the jitter; photons not drawn yet lie at or after the clock tick of the
+    /// generated span's end. A dead interval still to be declared must reach the daemon before the watermark
+    /// passes it, so the promise stops at its start.
+    fn unsent_floor(&self) -> i64 {
+        let queued = self
+            .pending
+            .get(self.pending_pos)
+            .map_or(i64::MAX, |p| p.key.saturating_sub(self.kit.jitter_ns.max(0)));
+        let undrawn = if self.generated_until < self.kit.t_end {
+            self.kit.quantise(self.generated_until)
+        } else {
+            i64::MAX
+        };
+        let undeclared = self
+            .dead
+            .iter()
+            .filter(|d| d.declared && !d.done)
+            .map(|d| d.start)
+            .min()
+            .unwrap_or(i64::MAX);
+        queued.min(undrawn).min(undeclared)
     }
 
     fn push(&mut self, body: Body) {
@@ -702,8 +730,9 @@ impl Simulator {
 
     fn take_photon(&mut self) {
         let p = self.pending[self.pending_pos];
-        self.pending_pos += 1;
+        // Still queued while an earlier batch is flushed, so that batch's promise covers it.
         self.before_event(p.key);
+        self.pending_pos += 1;
         let cap = self.batch_max_photons;
         let o = self.open.get_or_insert_with(|| OpenBatch {
             first_key: p.key,

@@ -1,6 +1,7 @@
 //! The frame stream as a producer contract: Hello first, sequence numbers from 1, valid batches of bounded
-//! size and span, out-of-order only within the jitter, heartbeats that keep their promise, declared and
-//! silent dead time, and determinism (same seed, same bytes; sources on their own random streams).
+//! size and span, out-of-order only within the jitter, heartbeats and batches that keep their promises,
+//! declared and silent dead time, and determinism (same seed, same bytes; sources on their own random
+//! streams).
 
 #![allow(clippy::unwrap_used)]
 
@@ -81,6 +82,7 @@ fn frames_keep_the_producer_contract() {
     let mut gaps = Vec::new();
     let mut latest_t = t0;
     let mut promised = t0;
+    let mut batch_promised = 0;
     let mut statuses = Vec::new();
     let mut declared = Vec::new();
     let mut photons = 0;
@@ -102,19 +104,44 @@ fn frames_keep_the_producer_contract() {
                 );
                 for &t in &b.time_gps_ns {
                     assert!((t0..t_end).contains(&t));
-                    // Out of order only within the jitter, and never behind a heartbeat's promise.
+                    // Out of order only within the jitter, never behind a heartbeat's promise nor behind an
+                    // earlier batch's.
                     assert!(
                         t > latest_t - JITTER_NS && t >= promised - JITTER_NS,
                         "t {t} after {latest_t}"
                     );
+                    assert!(
+                        t >= batch_promised,
+                        "t {t} behind an earlier batch's promise {batch_promised}"
+                    );
                     latest_t = latest_t.max(t);
                     assert!(!(silent_lo..silent_hi).contains(&t) && !(declared_lo..declared_hi).contains(&t));
                 }
+                // The promise covers at most what was sent, and trails the newest photon by no more than the
+                // jitter, except while a declared dead interval has yet to be declared: it waits at its start.
+                let p = b.complete_before_gps_ns;
+                assert!(
+                    p <= hi + 1,
+                    "batch {} promises {p} past its newest photon {hi}",
+                    b.seq
+                );
+                assert!(
+                    p >= hi - JITTER_NS || p == declared_lo,
+                    "batch {} promises {p}, far behind its newest photon {hi}",
+                    b.seq
+                );
+                batch_promised = batch_promised.max(p);
                 photons += b.time_gps_ns.len() as u64;
                 (b.seq, None)
             }
             Body::Status(st) => {
                 validate_status(st).unwrap();
+                if !st.dead.is_empty() {
+                    assert!(
+                        batch_promised <= declared_lo,
+                        "a batch promised {batch_promised}, past the dead interval declared only now"
+                    );
+                }
                 promised = st.now_gps_ns;
                 declared.extend(
                     st.dead

@@ -121,6 +121,24 @@ pub enum BatchError {
         /// The tolerance it exceeded, ns.
         tolerance_ns: i64,
     },
+    /// `complete_before_gps_ns` (the promise that no older photon follows) is negative or ahead of what the
+    /// batch covers: at most its latest photon time + 1.
+    #[error(
+        "complete_before_gps_ns = {promise_ns} is outside [0, {max_ns}] (0 = no promise; at most the batch's \
+         latest photon time + 1)"
+    )]
+    PromiseOutOfRange {
+        /// The promise sent, GPS ns.
+        promise_ns: i64,
+        /// The batch's latest photon time + 1, GPS ns.
+        max_ns: i64,
+    },
+    /// A promise on a batch with no photons, which has nothing to bound it.
+    #[error("complete_before_gps_ns = {promise_ns} on a batch with no photons: it must be 0")]
+    PromiseWithoutPhotons {
+        /// The promise sent, GPS ns.
+        promise_ns: i64,
+    },
 }
 
 impl BatchError {
@@ -135,7 +153,8 @@ impl BatchError {
 /// 0). Returns the first problem found, checking lengths first and then photon by photon in column order.
 ///
 /// Ranges: RA [0, 360), Dec [-90, 90], zenith [0, 180], azimuth [0, 360), energy > 0, psf68 > 0 (when
-/// present), gammaness [0, 1] (when present). An empty batch is valid.
+/// present), gammaness [0, 1] (when present). The promise `complete_before_gps_ns` is 0 (none) or in
+/// [1, latest photon time + 1], checked after the photons; an empty batch is valid with no promise.
 pub fn validate_batch(batch: &pb::PhotonBatch, reorder_tolerance_ns: i64) -> Result<(), BatchError> {
     let n = batch.time_gps_ns.len();
     let required = [
@@ -221,6 +240,22 @@ pub fn validate_batch(batch: &pb::PhotonBatch, reorder_tolerance_ns: i64) -> Res
         if let Some(&v) = batch.gammaness.get(i) {
             check_f32(i, Column::Gammaness, v, |v| (0.0..=1.0).contains(&v), "[0, 1]")?;
         }
+    }
+    check_promise(batch.complete_before_gps_ns, (n > 0).then_some(latest))
+}
+
+/// The promise must not reach past the batch: a producer moves time on through quiet periods with a
+/// `StreamStatus`, whose own promise is `now - tolerance`.
+fn check_promise(promise_ns: i64, latest: Option<i64>) -> Result<(), BatchError> {
+    if promise_ns == 0 {
+        return Ok(());
+    }
+    let Some(latest) = latest else {
+        return Err(BatchError::PromiseWithoutPhotons { promise_ns });
+    };
+    let max_ns = latest.saturating_add(1);
+    if promise_ns < 0 || promise_ns > max_ns {
+        return Err(BatchError::PromiseOutOfRange { promise_ns, max_ns });
     }
     Ok(())
 }
@@ -531,6 +566,61 @@ mod tests {
                 behind_ns: u64::MAX,
                 ..
             })
+        ));
+    }
+
+    #[test]
+    fn promise_reaches_at_most_one_past_the_latest_photon() {
+        let mut b = batch();
+        let latest = *b.time_gps_ns.iter().max().unwrap();
+        // Anywhere from the first photon's time up to one past the latest, or none.
+        for ok in [0, 1, b.time_gps_ns[0], latest, latest + 1] {
+            b.complete_before_gps_ns = ok;
+            assert_eq!(validate_batch(&b, TOL), Ok(()), "promise {ok}");
+        }
+        b.complete_before_gps_ns = latest + 2;
+        let err = validate_batch(&b, TOL).unwrap_err();
+        assert_eq!(
+            err,
+            BatchError::PromiseOutOfRange {
+                promise_ns: latest + 2,
+                max_ns: latest + 1
+            }
+        );
+        assert_eq!(
+            err.to_string(),
+            format!(
+                "complete_before_gps_ns = {} is outside [0, {}] (0 = no promise; at most the batch's latest \
+                 photon time + 1)",
+                latest + 2,
+                latest + 1
+            )
+        );
+        assert_eq!(err.refusal_code(), RefusalCode::InvalidBatch);
+        b.complete_before_gps_ns = -1;
+        assert!(matches!(
+            validate_batch(&b, TOL),
+            Err(BatchError::PromiseOutOfRange { promise_ns: -1, .. })
+        ));
+        // The latest photon at the end of the time scale: the bound saturates instead of overflowing.
+        b.time_gps_ns[9] = i64::MAX;
+        b.complete_before_gps_ns = i64::MAX;
+        assert_eq!(validate_batch(&b, i64::MAX), Ok(()));
+        // A promise needs photons to bound it; a bad photon is reported before the promise.
+        let empty = pb::PhotonBatch {
+            complete_before_gps_ns: 5,
+            ..Default::default()
+        };
+        assert_eq!(
+            validate_batch(&empty, TOL),
+            Err(BatchError::PromiseWithoutPhotons { promise_ns: 5 })
+        );
+        let mut b = batch();
+        b.complete_before_gps_ns = -1;
+        b.dec_deg[2] = 91.0;
+        assert!(matches!(
+            validate_batch(&b, TOL),
+            Err(BatchError::OutOfRange { index: 2, .. })
         ));
     }
 

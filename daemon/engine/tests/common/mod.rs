@@ -205,6 +205,7 @@ pub fn batch(seq: u64, ph: &[Ph]) -> PhotonBatch {
         energy_gev: ph.iter().map(|p| p.e).collect(),
         psf68_deg: vec![],
         gammaness: vec![],
+        complete_before_gps_ns: 0,
     }
 }
 
