@@ -318,7 +318,7 @@ fn sigkill_then_restart_delivers_every_journalled_alert_once_in_order() {
     let token = util::token_file(dir.path(), "producer.token", PRODUCER_TOKEN);
     let mut d = Daemon::start(dir.path(), "");
     let (mut sub, _) = util::subscriber(d.subs, SUBSCRIBER_TOKEN, 0, true);
-    // Five minutes of demo at 25x: alerts flow for about ten seconds.
+    // Twelve minutes of demo at 25x: alerts flow for about half a minute.
     let mut feed = Command::new(util::glint_bin())
         .arg("feed")
         .arg(&rec)

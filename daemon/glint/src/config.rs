@@ -200,7 +200,7 @@ pub(crate) struct SearchConfig {
 pub(crate) struct AssessSettings {
     /// Shortest persistence window, seconds.
     pub(crate) persistence_min_s: f64,
-    /// The persistence window is at least this many times the candidate's timescale.
+    /// The persistence window is at least this many times the timescale of the candidate's best trigger.
     pub(crate) persistence_timescale_factor: f64,
     /// Window before the flash checked for earlier emission, seconds.
     pub(crate) pre_window_s: f64,
