@@ -128,13 +128,13 @@ fn replay_is_byte_identical_run_after_run() {
 
 #[test]
 fn simulate_reproduces_the_committed_recording_byte_for_byte() {
-    let dir = repo_root().join("replay-fixtures/demo");
+    let dir = repo_root().join("replay-fixtures/four-verdicts");
     let tmp = tempfile::tempdir().unwrap();
-    let out = tmp.path().join("demo.glrec.zst");
+    let out = tmp.path().join("four-verdicts.glrec.zst");
     let o = Command::new(glint_bin())
         .arg("simulate")
         .arg("--scenario")
-        .arg(repo_root().join("deploy/scenarios/demo.toml"))
+        .arg(dir.join("scenario.toml"))
         .args(["--seed", "7", "--out"])
         .arg(&out)
         .output()

@@ -462,8 +462,10 @@ impl SkyIndex {
         }
     }
 
-    /// Calls `f` for every held photon with time >= `t_from` within `radius_deg` (approximate pixel cover,
-    /// exact angle check by the caller) of `ra`, `dec`; pixels visited in index order, photons in time order.
+    /// Calls `f` for every held photon with time >= `t_from` within `radius_deg` of `ra`, `dec`; pixels
+    /// visited in index order, photons in time order. The angle is checked on the hot record before the cold
+    /// one is looked up (a search of the whole store): the pixels cover several times the cone's area, and
+    /// this runs when a flash is emitted, on its latency path.
     pub(crate) fn for_each_in_cone(
         &self,
         ra_deg: f64,
@@ -477,11 +479,16 @@ impl SkyIndex {
             .clamp(-std::f64::consts::FRAC_PI_2, std::f64::consts::FRAC_PI_2);
         let radius = radius_deg.to_radians().min(std::f64::consts::PI);
         let cover = self.layer.cone_coverage_approx(ra_deg.to_radians(), lat, radius);
+        let (centre, cos_r) = (unit_vector(ra_deg, dec_deg), radius.cos());
         for pix in cover.flat_iter() {
             if let Some(s) = self.map.get(pix) {
                 let hot = &self.buckets[s as usize].hot;
                 let start = hot.partition_point(|h| h.t < t_from);
                 for h in hot.range(start..) {
+                    let d = h.v[0] * centre[0] + h.v[1] * centre[1] + h.v[2] * centre[2];
+                    if d < cos_r {
+                        continue;
+                    }
                     if let Some(c) = self.cold_of(s, h) {
                         f(h, &c);
                     }

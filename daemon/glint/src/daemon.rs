@@ -558,9 +558,6 @@ impl EngineThread {
                 _ => None,
             })
             .min();
-        if let Some(c) = completed {
-            eprintln!("DBG flash: arrival->frame_received {:.3} ms, frame_received->decided {:.3} ms, wm {:?}", (received - c) as f64 / 1e6, (decided - received) as f64 / 1e6, self.driver.watermark_ns());
-        }
         let stamps = |received_unix_ns| Stamps {
             received_unix_ns,
             decided_unix_ns: decided,
