@@ -176,20 +176,7 @@ pub(crate) fn run(args: DemoArgs) -> anyhow::Result<ExitCode> {
     for (k, n) in &kinds {
         println!("  {n:>3}  {k}");
     }
-    println!("latency, frame receipt to subscriber socket (ms):");
-    for (label, stage) in [
-        ("  receipt -> decided ", Stage::Decide),
-        ("  decided -> fsynced ", Stage::Journal),
-        ("  fsynced -> sent    ", Stage::Send),
-        ("  end to end         ", Stage::EndToEnd),
-        ("  flashes, end to end", Stage::FlashEndToEnd),
-    ] {
-        let p = metrics.percentiles(stage);
-        println!(
-            "{label} n={:<3} p50 {:>7.3}  p99 {:>7.3}  max {:>7.3}",
-            p.count, p.p50_ms, p.p99_ms, p.max_ms
-        );
-    }
+    print_latency(&metrics);
     println!("(alerts decided at shutdown, for candidates cut short, carry no receipt stamp)");
     Ok(ExitCode::SUCCESS)
 }

@@ -112,21 +112,8 @@ pub(crate) async fn serve(
     let permits = Arc::new(Semaphore::new(MAX_CONNECTIONS));
     let mut backoff = Duration::from_millis(10);
     loop {
-        let accepted = tokio::select! {
-            () = stop.cancelled() => return,
-            a = listener.accept() => a,
-        };
-        let (tcp, peer) = match accepted {
-            Ok(x) => {
-                backoff = Duration::from_millis(10);
-                x
-            }
-            Err(e) => {
-                tracing::warn!(error = %e, "ingest: accept failed, retrying in {} ms", backoff.as_millis());
-                tokio::time::sleep(backoff).await;
-                backoff = (backoff * 2).min(Duration::from_secs(1));
-                continue;
-            }
+        let Some((tcp, peer)) = crate::net::accept(&listener, &stop, &mut backoff, "ingest").await else {
+            return;
         };
         let Ok(permit) = permits.clone().try_acquire_owned() else {
             tracing::warn!(%peer, "ingest: {MAX_CONNECTIONS} connections open, refusing another");

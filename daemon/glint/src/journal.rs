@@ -487,17 +487,22 @@ impl Journal {
     }
 }
 
+/// Writes the segment header (magic and format version) and makes it durable.
+fn write_header_to(f: &mut File, path: &Path) -> Result<(), JournalError> {
+    let mut header = Vec::with_capacity(HEADER_LEN as usize);
+    header.extend_from_slice(&MAGIC);
+    header.extend_from_slice(&FORMAT_VERSION.to_le_bytes());
+    f.write_all(&header).map_err(io_err(path, "write header"))?;
+    f.sync_all().map_err(io_err(path, "sync"))
+}
+
 fn write_header(path: &Path) -> Result<(), JournalError> {
     let mut f = OpenOptions::new()
         .write(true)
         .truncate(true)
         .open(path)
         .map_err(io_err(path, "open"))?;
-    let mut header = Vec::with_capacity(HEADER_LEN as usize);
-    header.extend_from_slice(&MAGIC);
-    header.extend_from_slice(&FORMAT_VERSION.to_le_bytes());
-    f.write_all(&header).map_err(io_err(path, "write header"))?;
-    f.sync_all().map_err(io_err(path, "sync"))
+    write_header_to(&mut f, path)
 }
 
 fn create_segment(path: &Path) -> Result<File, JournalError> {
@@ -506,11 +511,7 @@ fn create_segment(path: &Path) -> Result<File, JournalError> {
         .append(true)
         .open(path)
         .map_err(io_err(path, "create"))?;
-    let mut header = Vec::with_capacity(HEADER_LEN as usize);
-    header.extend_from_slice(&MAGIC);
-    header.extend_from_slice(&FORMAT_VERSION.to_le_bytes());
-    f.write_all(&header).map_err(io_err(path, "write header"))?;
-    f.sync_all().map_err(io_err(path, "sync"))?;
+    write_header_to(&mut f, path)?;
     Ok(f)
 }
 

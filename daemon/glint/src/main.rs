@@ -20,6 +20,7 @@ mod journal;
 mod listen;
 mod logging;
 mod metrics;
+mod net;
 mod reach;
 mod replay;
 mod simulate;

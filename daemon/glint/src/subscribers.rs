@@ -94,22 +94,9 @@ pub(crate) async fn serve(
     let permits = Arc::new(Semaphore::new(hub.cfg.max_connections.get()));
     let mut backoff = Duration::from_millis(10);
     loop {
-        let accepted = tokio::select! {
-            () = stop.cancelled() => return,
-            a = listener.accept() => a,
-        };
-        let (tcp, peer) = match accepted {
-            Ok(x) => {
-                backoff = Duration::from_millis(10);
-                x
-            }
-            Err(e) => {
-                // Out of file descriptors and the like: wait, so the loop does not spin.
-                tracing::warn!(error = %e, "subscribers: accept failed, retrying in {} ms", backoff.as_millis());
-                tokio::time::sleep(backoff).await;
-                backoff = (backoff * 2).min(Duration::from_secs(1));
-                continue;
-            }
+        let Some((tcp, peer)) = crate::net::accept(&listener, &stop, &mut backoff, "subscribers").await
+        else {
+            return;
         };
         let permit = permits.clone().try_acquire_owned().ok();
         let hub = hub.clone();
