@@ -248,6 +248,7 @@ fn deploy_scenarios_all_parse() {
             "demo.toml",
             "one-burst.toml",
             "quiet-hour.toml",
+            "stress-10khz.toml",
             "stress-20khz.toml"
         ]
     );
