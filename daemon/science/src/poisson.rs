@@ -118,6 +118,36 @@ pub fn ln_pmf(n: u64, b: f64) -> f64 {
     -stirlerr(x) - bd0(x, b) - 0.5 * (LN_2PI + x.ln())
 }
 
+/// The continued fraction of the regularised upper incomplete gamma, Q(a, z) = e^-z z^a / Gamma(a) * h, by
+/// the modified Lentz method; converges fast for z >= a + 1. Returns h.
+fn upper_gamma_cf(a: f64, z: f64, max_terms: u64) -> f64 {
+    let mut bb = z + 1.0 - a;
+    let mut c = 1.0 / FPMIN;
+    let mut d = 1.0 / bb;
+    let mut h = d;
+    let mut i = 0.0_f64;
+    for _ in 0..max_terms {
+        i += 1.0;
+        let an = -i * (i - a);
+        bb += 2.0;
+        d = an * d + bb;
+        if d.abs() < FPMIN {
+            d = FPMIN;
+        }
+        c = bb + an / c;
+        if c.abs() < FPMIN {
+            c = FPMIN;
+        }
+        d = 1.0 / d;
+        let del = d * c;
+        h *= del;
+        if (del - 1.0).abs() < 1e-16 {
+            break;
+        }
+    }
+    h
+}
+
 /// Both tails at once: `(ln P(N >= n | b), ln P(N <= n - 1 | b))`, each accurate in its own right.
 fn ln_tails(n: u64, b: f64) -> (f64, f64) {
     if b.is_nan() || b < 0.0 {
@@ -151,30 +181,7 @@ fn ln_tails(n: u64, b: f64) -> (f64, f64) {
     } else {
         // Lower Poisson tail = regularised upper gamma Q(n, b), by the continued fraction (modified Lentz),
         // with prefactor e^-b b^n / Gamma(n) = n pmf(n, b).
-        let mut bb = b + 1.0 - x;
-        let mut c = 1.0 / FPMIN;
-        let mut d = 1.0 / bb;
-        let mut h = d;
-        let mut i = 0.0_f64;
-        for _ in 0..MAX_TERMS {
-            i += 1.0;
-            let an = -i * (i - x);
-            bb += 2.0;
-            d = an * d + bb;
-            if d.abs() < FPMIN {
-                d = FPMIN;
-            }
-            c = bb + an / c;
-            if c.abs() < FPMIN {
-                c = FPMIN;
-            }
-            d = 1.0 / d;
-            let del = d * c;
-            h *= del;
-            if (del - 1.0).abs() < 1e-16 {
-                break;
-            }
-        }
+        let h = upper_gamma_cf(x, b, MAX_TERMS);
         let ln_below = x.ln() + ln_pmf(n, b) + h.ln();
         (ln1mexp(ln_below), ln_below)
     }
@@ -248,30 +255,7 @@ pub fn ln_p_from_sigma(z: f64) -> f64 {
         let p = (ln_pref + sum.ln()).exp();
         -std::f64::consts::LN_2 + (-p).ln_1p()
     } else {
-        let mut bb = x + 1.0 - a;
-        let mut c = 1.0 / FPMIN;
-        let mut d = 1.0 / bb;
-        let mut h = d;
-        let mut i = 0.0_f64;
-        for _ in 0..10_000 {
-            i += 1.0;
-            let an = -i * (i - a);
-            bb += 2.0;
-            d = an * d + bb;
-            if d.abs() < FPMIN {
-                d = FPMIN;
-            }
-            c = bb + an / c;
-            if c.abs() < FPMIN {
-                c = FPMIN;
-            }
-            d = 1.0 / d;
-            let del = d * c;
-            h *= del;
-            if (del - 1.0).abs() < 1e-16 {
-                break;
-            }
-        }
+        let h = upper_gamma_cf(a, x, 10_000);
         -std::f64::consts::LN_2 + ln_pref + h.ln()
     }
 }
