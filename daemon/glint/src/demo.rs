@@ -56,31 +56,8 @@ pub(crate) fn run(args: DemoArgs) -> anyhow::Result<ExitCode> {
     let scenario = glint_sim::parse_scenario(DEMO_SCENARIO, &scen_dir, "demo")?;
     let sim = glint_sim::Simulator::new(&scenario, scenario.seed)?;
 
-    let mut cfg = Config::embedded_default().map_err(crate::cli::BadConfig)?;
-    crate::logging::init("warn", cfg.daemon.log_format);
-    let loopback = SocketAddr::from(([127, 0, 0, 1], 0));
-    cfg.daemon.state_dir = tmp.path().join("state");
-    cfg.ingest.listen = loopback;
-    cfg.subscribers.listen = loopback;
+    let (mut cfg, producer_token, sub_token) = loopback_config(tmp.path(), &scenario.instrument.id)?;
     cfg.subscribers.heartbeat = Duration::from_secs(1);
-    cfg.metrics_listen = None;
-    let inst = cfg
-        .instruments
-        .iter()
-        .find(|i| i.id == scenario.instrument.id)
-        .ok_or_else(|| {
-            anyhow!(
-                "the default configuration has no instrument '{}'",
-                scenario.instrument.id
-            )
-        })?;
-    let producer_token = inst.token.expose().to_string();
-    let sub_token = cfg
-        .subscribers
-        .tokens
-        .first()
-        .ok_or_else(|| anyhow!("the default configuration has no subscriber token"))?;
-    let sub_token = sub_token.expose().to_string();
     let event_s = (scenario.end_gps_ns() - scenario.start_gps_ns) as f64 / 1e9;
     let speed = (event_s / args.seconds).max(1e-3);
 
@@ -181,6 +158,32 @@ pub(crate) fn run(args: DemoArgs) -> anyhow::Result<ExitCode> {
     Ok(ExitCode::SUCCESS)
 }
 
+/// The embedded default configuration moved onto free loopback ports and a state directory under `tmp`, with
+/// the producer token of `instrument` and the first subscriber token: what the demo and the benchmark run on.
+fn loopback_config(tmp: &std::path::Path, instrument: &str) -> anyhow::Result<(Config, String, String)> {
+    let mut cfg = Config::embedded_default().map_err(crate::cli::BadConfig)?;
+    crate::logging::init("warn", cfg.daemon.log_format);
+    let loopback = SocketAddr::from(([127, 0, 0, 1], 0));
+    cfg.daemon.state_dir = tmp.join("state");
+    cfg.ingest.listen = loopback;
+    cfg.subscribers.listen = loopback;
+    cfg.metrics_listen = None;
+    let producer_token = cfg
+        .instrument(instrument)
+        .ok_or_else(|| anyhow!("the default configuration has no instrument '{instrument}'"))?
+        .token
+        .expose()
+        .to_string();
+    let sub_token = cfg
+        .subscribers
+        .tokens
+        .first()
+        .ok_or_else(|| anyhow!("the default configuration has no subscriber token"))?
+        .expose()
+        .to_string();
+    Ok((cfg, producer_token, sub_token))
+}
+
 /// Arguments of `glint bench-live` (hidden): the live daemon's throughput and latency benchmark.
 #[derive(Debug, clap::Args)]
 pub(crate) struct BenchArgs {
@@ -244,33 +247,7 @@ pub(crate) fn bench(args: BenchArgs) -> anyhow::Result<ExitCode> {
             t.elapsed().as_secs_f64()
         );
     }
-    let mut cfg = Config::embedded_default().map_err(crate::cli::BadConfig)?;
-    crate::logging::init("warn", cfg.daemon.log_format);
-    let loopback = SocketAddr::from(([127, 0, 0, 1], 0));
-    cfg.daemon.state_dir = tmp.path().join("state");
-    cfg.ingest.listen = loopback;
-    cfg.subscribers.listen = loopback;
-    cfg.metrics_listen = None;
-    let producer_token = cfg
-        .instruments
-        .iter()
-        .find(|i| i.id == scenario.instrument.id)
-        .ok_or_else(|| {
-            anyhow!(
-                "the default configuration has no instrument '{}'",
-                scenario.instrument.id
-            )
-        })?
-        .token
-        .expose()
-        .to_string();
-    let sub_token = cfg
-        .subscribers
-        .tokens
-        .first()
-        .ok_or_else(|| anyhow!("no subscriber token"))?
-        .expose()
-        .to_string();
+    let (cfg, producer_token, sub_token) = loopback_config(tmp.path(), &scenario.instrument.id)?;
     let rt = tokio::runtime::Builder::new_multi_thread()
         .enable_all()
         .build()

@@ -339,6 +339,23 @@ impl Connection<'_> {
         Ok(())
     }
 
+    /// Checks the sequence number; a number that does not increase is a protocol violation that ends the
+    /// connection, so the refusal is sent here and the detail returned for the log.
+    async fn seq_or_close(&mut self, framed: &mut Conn, metrics: &Metrics, seq: u64) -> Result<(), String> {
+        let checked = self.check_seq(seq);
+        if let Err(detail) = &checked {
+            refuse_and_close(
+                framed,
+                metrics,
+                pb::RefusalCode::ProtocolViolation,
+                detail.clone(),
+                seq,
+            )
+            .await;
+        }
+        checked
+    }
+
     async fn warn(
         &mut self,
         framed: &mut Conn,
@@ -396,15 +413,7 @@ impl Connection<'_> {
             match frame.body {
                 Some(producer_frame::Body::Batch(b)) => {
                     let n = b.time_gps_ns.len() as u64;
-                    if let Err(detail) = self.check_seq(b.seq) {
-                        refuse_and_close(
-                            framed,
-                            metrics,
-                            pb::RefusalCode::ProtocolViolation,
-                            detail.clone(),
-                            b.seq,
-                        )
-                        .await;
+                    if let Err(detail) = self.seq_or_close(framed, metrics, b.seq).await {
                         return detail;
                     }
                     if let Err(r) = InstrumentDriver::check_batch(&b, self.slot.reorder_tolerance_ns) {
@@ -443,15 +452,7 @@ impl Connection<'_> {
                     self.taken(seq, n);
                 }
                 Some(producer_frame::Body::Status(s)) => {
-                    if let Err(detail) = self.check_seq(s.seq) {
-                        refuse_and_close(
-                            framed,
-                            metrics,
-                            pb::RefusalCode::ProtocolViolation,
-                            detail.clone(),
-                            s.seq,
-                        )
-                        .await;
+                    if let Err(detail) = self.seq_or_close(framed, metrics, s.seq).await {
                         return detail;
                     }
                     if let Err(e) = validate::validate_status(&s) {
