@@ -13,7 +13,7 @@ use crate::background::{AcceptanceMap, AllSky, N_BINS};
 use crate::config::EngineConfig;
 use crate::dead::DeadTime;
 use crate::error::EngineError;
-use crate::finding::{Finding, Flash, PhotonRec};
+use crate::finding::{Finding, FindingSink, Flash, PhotonRec};
 use crate::reorder::{Photon, Reorder};
 use crate::sky::{SkyIndex, radec_of, unit_vector};
 
@@ -404,7 +404,7 @@ impl Engine {
     /// Takes a photon batch (already validated by the caller), releases what the watermark allows and runs
     /// the search on it. A promise in the batch (`complete_before_gps_ns`, at most its latest time + 1) moves
     /// the watermark up to it at once.
-    pub fn push_batch(&mut self, batch: &PhotonBatch, out: &mut Vec<Finding>) -> Result<(), EngineError> {
+    pub fn push_batch(&mut self, batch: &PhotonBatch, out: &mut dyn FindingSink) -> Result<(), EngineError> {
         let n = batch.time_gps_ns.len();
         let bad = |detail: String| EngineError::InvalidFrame {
             seq: batch.seq,
@@ -485,7 +485,11 @@ impl Engine {
     }
 
     /// Takes a stream status: time moves on to `now - tolerance` and declared dead intervals are recorded.
-    pub fn push_status(&mut self, status: &StreamStatus, out: &mut Vec<Finding>) -> Result<(), EngineError> {
+    pub fn push_status(
+        &mut self,
+        status: &StreamStatus,
+        out: &mut dyn FindingSink,
+    ) -> Result<(), EngineError> {
         let mut newest = status.now_gps_ns;
         for (i, d) in status.dead.iter().enumerate() {
             if d.end_gps_ns < d.start_gps_ns {
@@ -526,7 +530,7 @@ impl Engine {
 
     /// End of input: releases every pending photon, assesses the candidates whose persistence window the data
     /// covered, and assesses the rest as undecided (cut short).
-    pub fn finish(&mut self, out: &mut Vec<Finding>) {
+    pub fn finish(&mut self, out: &mut dyn FindingSink) {
         let Some(latest) = self.clock.latest else { return };
         self.reorder.advance_watermark(latest.saturating_add(1));
         self.advance(out);
@@ -596,7 +600,7 @@ impl Engine {
 
     /// Releases every photon behind the watermark, group by group of equal time, assessing candidates whose
     /// persistence window ended before each group, then those that ended before the watermark.
-    fn advance(&mut self, out: &mut Vec<Finding>) {
+    fn advance(&mut self, out: &mut dyn FindingSink) {
         let Some(w) = self.reorder.watermark() else { return };
         while let Some(t) = self.reorder.next_time().filter(|&t| t < w) {
             self.assess_due(t, out);
@@ -616,7 +620,7 @@ impl Engine {
         self.clock.processed_to = Some(processed);
     }
 
-    fn release_group(&mut self, t: i64, out: &mut Vec<Finding>) {
+    fn release_group(&mut self, t: i64, out: &mut dyn FindingSink) {
         self.stats.released += self.group.len() as u64;
         self.clock.processed_to = Some(self.clock.processed_to.map_or(t, |p| p.max(t)));
         if !self.cfg.search_enabled {
@@ -725,7 +729,7 @@ impl Engine {
     }
 
     /// The seeded test of one released photon on every timescale (SCIENCE.md section 4).
-    fn seed(&mut self, i: usize, out: &mut Vec<Finding>) {
+    fn seed(&mut self, i: usize, out: &mut dyn FindingSink) {
         let g = self.group[i];
         let k_all = self.p.k;
         let Some(bin) = g.bin else {
@@ -814,7 +818,7 @@ impl Engine {
         }
     }
 
-    fn on_crossing(&mut self, x: Crossing, out: &mut Vec<Finding>) {
+    fn on_crossing(&mut self, x: Crossing, out: &mut dyn FindingSink) {
         let Crossing {
             i,
             k,
@@ -924,7 +928,7 @@ impl Engine {
         }
         self.stats.candidates += 1;
         self.stats.flashes += 1;
-        out.push(Finding::Flash(flash.clone()));
+        out.emit(Finding::Flash(flash.clone()));
         self.cands.push(Candidate {
             id,
             pos0,
@@ -1131,7 +1135,7 @@ impl Engine {
     }
 
     /// Assesses every candidate whose persistence window closed before `t` (all its photons are released).
-    fn assess_due(&mut self, t: i64, out: &mut Vec<Finding>) {
+    fn assess_due(&mut self, t: i64, out: &mut dyn FindingSink) {
         if self.cands.is_empty() {
             return;
         }
@@ -1147,7 +1151,7 @@ impl Engine {
         }
     }
 
-    fn emit_assessment(&mut self, c: Candidate, close: i64, cut_short: bool, out: &mut Vec<Finding>) {
+    fn emit_assessment(&mut self, c: Candidate, close: i64, cut_short: bool, out: &mut dyn FindingSink) {
         let dens = self.model.as_ref().map_or(0.0, |m| m.dens[usize::from(c.bin0)]);
         let rate = self.model.as_ref().map_or(0.0, |m| m.rate_hz);
         // The post-flash window runs from the end of the best trigger's window (see assess.rs).
@@ -1177,10 +1181,10 @@ impl Engine {
             }
         }
         self.stats.assessments += 1;
-        out.push(Finding::Assessment(assessment));
+        out.emit(Finding::Assessment(assessment));
         if let Some(w) = withdrawal {
             self.stats.withdrawals += 1;
-            out.push(Finding::Withdrawal(w));
+            out.emit(Finding::Withdrawal(w));
         }
     }
 }

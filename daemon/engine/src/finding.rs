@@ -7,6 +7,20 @@ use serde::{Deserialize, Serialize};
 use crate::assess::FitJob;
 use crate::fit::FitResult;
 
+/// Where the engine puts its findings, in its order, the moment it decides each: a `Vec<Finding>` collects
+/// them (replay, tests); the live daemon issues a flash at once instead of after the rest of its frame has
+/// been searched, which would add a whole frame's search time to the alert's latency.
+pub trait FindingSink {
+    /// Takes the next finding.
+    fn emit(&mut self, finding: Finding);
+}
+
+impl FindingSink for Vec<Finding> {
+    fn emit(&mut self, finding: Finding) {
+        self.push(finding);
+    }
+}
+
 /// One photon of a flash, as it arrived (GPS ns, ICRS degrees, GeV, instrument-frame degrees).
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
 pub struct PhotonRec {

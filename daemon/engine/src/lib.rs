@@ -1,5 +1,5 @@
 //! glint's trigger engine: a synchronous state machine driven by event time. Frames go in through
-//! [`Engine::push_batch`] and [`Engine::push_status`], findings come out into a caller's buffer. No I/O, no
+//! [`Engine::push_batch`] and [`Engine::push_status`], findings go to a caller's [`FindingSink`] as they are decided. No I/O, no
 //! clock, no random numbers, no hash-map order in the outputs: live runs and replays give the same findings.
 //!
 //! Pipeline: reorder (watermark) -> sky index + background model -> seeded multi-timescale test
@@ -20,5 +20,5 @@ pub use assess::FitJob;
 pub use config::{AssessConfig, EngineConfig};
 pub use engine::{Engine, EngineStats, SECONDS_PER_YEAR};
 pub use error::EngineError;
-pub use finding::{Assessment, Finding, Flash, PhotonRec, Verdict, Withdrawal};
+pub use finding::{Assessment, Finding, FindingSink, Flash, PhotonRec, Verdict, Withdrawal};
 pub use fit::{FitInput, FitResult};

@@ -3,7 +3,7 @@
 # subscribers, measured in-process by the hidden `glint bench-live` subcommand. Run from the repository root:
 #   bash daemon/glint/benches/live.sh
 # 1. stress-20khz at max speed: sustained photons per second through ingest and the engine.
-# 2. stress-bursts (20 kHz background, 24 bursts) at 5x real time (100k photons/s): latency from the read of
+# 2. stress-bursts (20 kHz background, 109 bursts over 20 minutes) at 5x real time (100k photons/s): latency from the read of
 #    the frame that completes a trigger to the alert frame written to each subscriber's socket.
 set -euo pipefail
 cd "$(dirname "$0")/../../.."

@@ -14,7 +14,6 @@ use std::sync::Arc;
 use std::time::{Duration, Instant};
 
 use anyhow::{Context, anyhow, bail};
-use glint_engine::Finding;
 use glint_wire::pb;
 use glint_wire::recording::{Compression, RotatingWriter, RotationPolicy};
 use tokio::net::TcpListener;
@@ -22,13 +21,12 @@ use tokio_util::sync::CancellationToken;
 use tokio_util::task::TaskTracker;
 
 use crate::config::{Config, InstrumentConfig};
-use crate::desk::{Desk, Stamps};
+use crate::desk::Desk;
 use crate::driver::InstrumentDriver;
 use crate::ingest::{self, EngineMsg, IngestShared, Slot};
-use crate::issuing::{self, Arrivals, FitTask};
+use crate::issuing::{self, Issuer};
 use crate::metrics::Metrics;
 use crate::subscribers::{self, Hub, Watermarks};
-use crate::timefmt::now_unix_ns;
 
 /// Arguments of `glint run`.
 #[derive(Debug, clap::Args)]
@@ -264,18 +262,20 @@ impl Daemon {
             let ctx = EngineThread {
                 index,
                 id: inst.id.clone(),
-                tolerance_ns: driver.reorder_tolerance_ns(),
-                arrivals: Arrivals::default(),
+                issuer: Issuer::new(
+                    &inst.id,
+                    driver.reorder_tolerance_ns(),
+                    desk.clone(),
+                    fit_tx.clone(),
+                    fatal.clone(),
+                ),
                 driver,
                 rx,
-                desk: desk.clone(),
-                fits: fit_tx.clone(),
                 watermarks: watermarks.clone(),
                 state_file: sp,
                 save_every: cfg.daemon.state_save_interval,
                 recorder: recorder(&cfg, inst)?,
                 hello: None,
-                fatal: fatal.clone(),
             };
             let done = done_tx.clone();
             let handle = std::thread::Builder::new()
@@ -451,29 +451,24 @@ fn recorder(cfg: &Config, inst: &InstrumentConfig) -> anyhow::Result<Option<Rota
 struct EngineThread {
     index: usize,
     id: String,
-    tolerance_ns: i64,
-    arrivals: Arrivals,
+    issuer: Issuer,
     driver: InstrumentDriver,
     rx: async_channel::Receiver<EngineMsg>,
-    desk: Arc<Desk>,
-    fits: std::sync::mpsc::SyncSender<FitTask>,
     watermarks: Arc<Watermarks>,
     state_file: PathBuf,
     save_every: Duration,
     recorder: Option<RotatingWriter>,
     /// The producer's Hello, until the first frame after it is recorded.
     hello: Option<pb::Hello>,
-    fatal: CancellationToken,
 }
 
 impl EngineThread {
     fn run(mut self) {
-        let mut out = Vec::new();
         let mut last_save = Instant::now();
         let mut event_ns = 0;
         // Takes messages until ingest closes the channel (shutdown); then drains.
         while let Ok(msg) = self.rx.recv_blocking() {
-            let received = match msg {
+            match msg {
                 EngineMsg::Hello(h) => {
                     // Recorded with the first frame after it, at that frame's event time: a file opened at
                     // time 0 would rotate at its first frame, splitting the stream with a spurious reconnect.
@@ -486,38 +481,42 @@ impl EngineThread {
                     continue;
                 }
                 EngineMsg::Batch(b, received) => {
-                    self.arrivals.note(&b.time_gps_ns, received);
+                    self.issuer.note_batch(&b.time_gps_ns, received);
                     event_ns = event_ns.max(b.time_gps_ns.iter().copied().max().unwrap_or(0));
-                    let b = self.record_batch(b, event_ns);
-                    if let Err(r) = self.driver.on_batch(&b, &mut out) {
+                    let mut step = self.issuer.step(received);
+                    let taken = self.driver.on_batch(&b, &mut step);
+                    step.end();
+                    if let Err(r) = taken {
                         tracing::warn!(instrument = %self.id, seq = r.seq, code = r.code.as_str_name(), "engine refused a batch: {}", r.detail);
                     }
-                    received
+                    // Recorded after the search, so compressing it never delays an alert.
+                    self.record(pb::producer_frame::Body::Batch(b), event_ns);
                 }
                 EngineMsg::Status(s, received) => {
                     event_ns = event_ns.max(s.now_gps_ns);
-                    let s = self.record_status(s, event_ns);
-                    if let Err(r) = self.driver.on_status(&s, &mut out) {
+                    let mut step = self.issuer.step(received);
+                    let taken = self.driver.on_status(&s, &mut step);
+                    step.end();
+                    if let Err(r) = taken {
                         tracing::warn!(instrument = %self.id, seq = r.seq, code = r.code.as_str_name(), "engine refused a status frame: {}", r.detail);
                     }
-                    received
+                    self.record(pb::producer_frame::Body::Status(s), event_ns);
                 }
-            };
-            if let Some(w) = self.driver.watermark_ns() {
+            }
+            let watermark = self.driver.watermark_ns();
+            if let Some(w) = watermark {
                 event_ns = event_ns.max(w);
                 self.watermarks.set(self.index, w);
             }
-            self.issue(&mut out, received);
-            if let Some(w) = self.driver.watermark_ns() {
-                self.arrivals.forget_before(w.saturating_sub(self.tolerance_ns));
-            }
+            self.issuer.after_step(watermark);
             if last_save.elapsed() >= self.save_every {
                 self.save();
                 last_save = Instant::now();
             }
         }
-        self.driver.finish(&mut out);
-        self.issue(&mut out, 0);
+        let mut step = self.issuer.step(0);
+        self.driver.finish(&mut step);
+        step.end();
         self.save();
         let st = self.driver.engine_stats();
         tracing::info!(
@@ -537,49 +536,6 @@ impl EngineThread {
         }
     }
 
-    /// Issues one engine step's findings: flashes first, stamped with the arrival of the photon that completed
-    /// them (the earliest such arrival when a step gives several), so an assessment never precedes its own
-    /// flash; then the rest that need no fit, stamped with the receipt of the frame that decided them; and
-    /// the assessments whose fit is pending go to the fit worker.
-    fn issue(&mut self, out: &mut Vec<Finding>, received: i64) {
-        if out.is_empty() {
-            return;
-        }
-        let (now, later) = issuing::split_deferred(out);
-        let decided = now_unix_ns();
-        let (flashes, rest): (Vec<Finding>, Vec<Finding>) =
-            now.into_iter().partition(|f| matches!(f, Finding::Flash(_)));
-        let completed = flashes
-            .iter()
-            .filter_map(|f| match f {
-                Finding::Flash(x) if received != 0 => {
-                    Some(self.arrivals.completed(x, self.tolerance_ns).unwrap_or(received))
-                }
-                _ => None,
-            })
-            .min();
-        let stamps = |received_unix_ns| Stamps {
-            received_unix_ns,
-            decided_unix_ns: decided,
-        };
-        issuing::issue(
-            &self.desk,
-            &self.id,
-            &flashes,
-            stamps(completed.unwrap_or(received)),
-            &self.fatal,
-        );
-        issuing::issue(&self.desk, &self.id, &rest, stamps(received), &self.fatal);
-        if !later.is_empty() {
-            let task = FitTask {
-                instrument: Arc::from(self.id.as_str()),
-                findings: later,
-                received_unix_ns: received,
-            };
-            issuing::defer(&self.fits, task, &self.desk, &self.fatal);
-        }
-    }
-
     fn save(&self) {
         let blob = self.driver.save_state();
         match write_atomic(&self.state_file, &blob) {
@@ -590,9 +546,9 @@ impl EngineThread {
         }
     }
 
-    fn record(&mut self, body: pb::producer_frame::Body, event_ns: i64) -> pb::producer_frame::Body {
+    fn record(&mut self, body: pb::producer_frame::Body, event_ns: i64) {
         let Some(w) = self.recorder.as_mut() else {
-            return body;
+            return;
         };
         let header = self.hello.take().map(|h| pb::ProducerFrame {
             body: Some(pb::producer_frame::Body::Hello(h)),
@@ -604,30 +560,6 @@ impl EngineThread {
         if let Err(e) = result {
             tracing::error!(instrument = %self.id, "recording stopped: {e}");
             self.recorder = None;
-        }
-        // Cannot be None: it was set just above.
-        frame
-            .body
-            .unwrap_or(pb::producer_frame::Body::Status(pb::StreamStatus::default()))
-    }
-
-    fn record_batch(&mut self, b: pb::PhotonBatch, event_ns: i64) -> pb::PhotonBatch {
-        if self.recorder.is_none() {
-            return b;
-        }
-        match self.record(pb::producer_frame::Body::Batch(b), event_ns) {
-            pb::producer_frame::Body::Batch(b) => b,
-            _ => pb::PhotonBatch::default(),
-        }
-    }
-
-    fn record_status(&mut self, s: pb::StreamStatus, event_ns: i64) -> pb::StreamStatus {
-        if self.recorder.is_none() {
-            return s;
-        }
-        match self.record(pb::producer_frame::Body::Status(s), event_ns) {
-            pb::producer_frame::Body::Status(s) => s,
-            _ => pb::StreamStatus::default(),
         }
     }
 }

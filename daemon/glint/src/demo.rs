@@ -34,18 +34,13 @@ pub(crate) struct DemoArgs {
     json: bool,
 }
 
-/// `glint demo`.
-pub(crate) fn run(args: DemoArgs) -> anyhow::Result<ExitCode> {
-    if !(args.seconds.is_finite() && args.seconds > 0.0) {
-        return Err(anyhow!("--seconds {} must be a number > 0", args.seconds));
-    }
-    let tmp = tempfile::Builder::new()
-        .prefix("glint-demo-")
-        .tempdir()
-        .context("cannot make a temporary state directory")?;
+/// The built-in demo scenario and its simulator, with the instrument block it names laid out under `tmp`.
+pub(crate) fn demo_simulator(
+    tmp: &std::path::Path,
+) -> anyhow::Result<(glint_sim::Scenario, glint_sim::Simulator)> {
     // The scenario names its instrument block relative to itself; lay the built-in block out beside it.
-    let scen_dir = tmp.path().join("scenarios");
-    let inst_dir = tmp.path().join("instruments");
+    let scen_dir = tmp.join("scenarios");
+    let inst_dir = tmp.join("instruments");
     std::fs::create_dir_all(&scen_dir)
         .and_then(|()| std::fs::create_dir_all(&inst_dir))
         .context("cannot lay out the demo files")?;
@@ -55,6 +50,19 @@ pub(crate) fn run(args: DemoArgs) -> anyhow::Result<ExitCode> {
         .context("cannot write the demo instrument")?;
     let scenario = glint_sim::parse_scenario(DEMO_SCENARIO, &scen_dir, "demo")?;
     let sim = glint_sim::Simulator::new(&scenario, scenario.seed)?;
+    Ok((scenario, sim))
+}
+
+/// `glint demo`.
+pub(crate) fn run(args: DemoArgs) -> anyhow::Result<ExitCode> {
+    if !(args.seconds.is_finite() && args.seconds > 0.0) {
+        return Err(anyhow!("--seconds {} must be a number > 0", args.seconds));
+    }
+    let tmp = tempfile::Builder::new()
+        .prefix("glint-demo-")
+        .tempdir()
+        .context("cannot make a temporary state directory")?;
+    let (scenario, sim) = demo_simulator(tmp.path())?;
 
     let (mut cfg, producer_token, sub_token) = loopback_config(tmp.path(), &scenario.instrument.id)?;
     cfg.subscribers.heartbeat = Duration::from_secs(1);

@@ -2,7 +2,7 @@
 //! per-stream counters, and feeds the synchronous engine. The daemon's engine thread and `glint replay` both
 //! call exactly this code, so the same photons give the same findings either way.
 
-use glint_engine::{AssessConfig, Engine, EngineConfig, EngineError, EngineStats, Finding};
+use glint_engine::{AssessConfig, Engine, EngineConfig, EngineError, EngineStats, FindingSink};
 use glint_wire::pb::{self, producer_frame::Body};
 use glint_wire::validate;
 
@@ -123,7 +123,7 @@ impl InstrumentDriver {
     pub(crate) fn on_batch(
         &mut self,
         batch: &pb::PhotonBatch,
-        out: &mut Vec<Finding>,
+        out: &mut dyn FindingSink,
     ) -> Result<(), Refused> {
         let n = batch.time_gps_ns.len() as u64;
         let checked = Self::check_batch(batch, self.reorder_tolerance_ns).and_then(|()| {
@@ -149,7 +149,7 @@ impl InstrumentDriver {
     pub(crate) fn on_status(
         &mut self,
         status: &pb::StreamStatus,
-        out: &mut Vec<Finding>,
+        out: &mut dyn FindingSink,
     ) -> Result<(), Refused> {
         let checked = validate::validate_status(status)
             .map_err(|e| Refused {
@@ -179,7 +179,7 @@ impl InstrumentDriver {
     pub(crate) fn on_frame(
         &mut self,
         frame: &pb::ProducerFrame,
-        out: &mut Vec<Finding>,
+        out: &mut dyn FindingSink,
     ) -> Result<(), Refused> {
         match &frame.body {
             Some(Body::Batch(b)) => self.on_batch(b, out),
@@ -219,7 +219,7 @@ impl InstrumentDriver {
     }
 
     /// End of input: flushes the reorder stage and assesses open candidates (as cut short).
-    pub(crate) fn finish(&mut self, out: &mut Vec<Finding>) {
+    pub(crate) fn finish(&mut self, out: &mut dyn FindingSink) {
         self.engine.finish(out);
     }
 

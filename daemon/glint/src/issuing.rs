@@ -1,13 +1,14 @@
-//! From an engine's findings to the alert desk in a live run. Flashes go to the desk at once, stamped with the
-//! arrival of the photon that completed them; assessments whose evaporation fit the engine deferred go to
-//! the fit worker (one thread per daemon, behind a bounded queue), which runs the fit and then issues them,
-//! so a slow fit never holds up an engine thread nor the flashes arriving meanwhile.
+//! From an engine's findings to the alert desk in a live run. Each finding goes to the desk the moment the
+//! engine decides it, a flash stamped with the arrival of the photon that completed it; assessments whose
+//! evaporation fit the engine deferred go to the fit worker (one thread per daemon, behind a bounded queue),
+//! which runs the fit and then issues them, so a slow fit never holds up an engine thread nor the flashes
+//! arriving meanwhile.
 
 use std::collections::VecDeque;
 use std::sync::Arc;
 use std::sync::mpsc;
 
-use glint_engine::{Finding, Flash};
+use glint_engine::{Finding, FindingSink, Flash};
 use tokio_util::sync::CancellationToken;
 
 use crate::desk::{Desk, Stamps};
@@ -119,6 +120,128 @@ impl Arrivals {
     }
 }
 
+/// One engine thread's way to the desk: issues each finding the moment the engine decides it (a flash
+/// stamped with the arrival of its last photon), hands assessments whose fit is pending to the fit worker.
+#[derive(Debug)]
+pub(crate) struct Issuer {
+    instrument: Arc<str>,
+    tolerance_ns: i64,
+    arrivals: Arrivals,
+    desk: Arc<Desk>,
+    fits: mpsc::SyncSender<FitTask>,
+    fatal: CancellationToken,
+}
+
+impl Issuer {
+    /// An issuer for one instrument whose engine holds photons up to `tolerance_ns` for reordering.
+    pub(crate) fn new(
+        instrument: &str,
+        tolerance_ns: i64,
+        desk: Arc<Desk>,
+        fits: mpsc::SyncSender<FitTask>,
+        fatal: CancellationToken,
+    ) -> Self {
+        Self {
+            instrument: Arc::from(instrument),
+            tolerance_ns,
+            arrivals: Arrivals::default(),
+            desk,
+            fits,
+            fatal,
+        }
+    }
+
+    /// Notes a batch read at `received_unix_ns`, before the engine takes it.
+    pub(crate) fn note_batch(&mut self, times: &[i64], received_unix_ns: i64) {
+        self.arrivals.note(times, received_unix_ns);
+    }
+
+    /// Forgets arrivals older than any flash still to come can need (see [`Arrivals::forget_before`]).
+    pub(crate) fn after_step(&mut self, watermark_ns: Option<i64>) {
+        if let Some(w) = watermark_ns {
+            self.arrivals.forget_before(w.saturating_sub(self.tolerance_ns));
+        }
+    }
+
+    /// The sink for one engine step on a frame read at `received_unix_ns` (0 for the final flush). Call
+    /// [`Step::end`] once the engine returns.
+    pub(crate) fn step(&mut self, received_unix_ns: i64) -> Step<'_> {
+        Step {
+            issuer: self,
+            received_unix_ns,
+            deferred: None,
+        }
+    }
+}
+
+/// The findings of one engine step, issued as they come.
+#[derive(Debug)]
+pub(crate) struct Step<'a> {
+    issuer: &'a mut Issuer,
+    received_unix_ns: i64,
+    /// An assessment whose fit is pending, held until the next finding shows whether the withdrawal of the
+    /// same candidate follows it (the two must reach the desk together: a withdrawal links to its flash and
+    /// must never overtake the assessment).
+    deferred: Option<FitTask>,
+}
+
+impl Step<'_> {
+    /// Sends the held assessment, if any, to the fit worker.
+    fn hand_over(&mut self) {
+        if let Some(task) = self.deferred.take() {
+            let i = &*self.issuer;
+            defer(&i.fits, task, &i.desk, &i.fatal);
+        }
+    }
+
+    /// The step is over: the held assessment goes to the fit worker.
+    pub(crate) fn end(mut self) {
+        self.hand_over();
+    }
+}
+
+impl FindingSink for Step<'_> {
+    fn emit(&mut self, finding: Finding) {
+        let received = self.received_unix_ns;
+        match finding {
+            Finding::Assessment(a) if a.fit_job.is_some() => {
+                self.hand_over();
+                self.deferred = Some(FitTask {
+                    instrument: self.issuer.instrument.clone(),
+                    findings: vec![Finding::Assessment(a)],
+                    received_unix_ns: received,
+                });
+            }
+            Finding::Withdrawal(w)
+                if self.deferred.as_ref().is_some_and(|t| {
+                    matches!(t.findings.last(), Some(Finding::Assessment(a)) if a.candidate == w.candidate)
+                }) =>
+            {
+                if let Some(t) = self.deferred.as_mut() {
+                    t.findings.push(Finding::Withdrawal(w));
+                }
+                self.hand_over();
+            }
+            f => {
+                self.hand_over();
+                let decided = now_unix_ns();
+                let i = &*self.issuer;
+                // A flash is stamped with the arrival of the photon that completed it, which may have waited
+                // in the reorder stage for a later frame: that wait is part of the latency a subscriber sees.
+                let received = match &f {
+                    Finding::Flash(x) if received != 0 => i.arrivals.completed(x, i.tolerance_ns).unwrap_or(received),
+                    _ => received,
+                };
+                let stamps = Stamps {
+                    received_unix_ns: received,
+                    decided_unix_ns: decided,
+                };
+                issue(&i.desk, &i.instrument, std::slice::from_ref(&f), stamps, &i.fatal);
+            }
+        }
+    }
+}
+
 /// Assessments of one engine step whose fit is still to run, each with the withdrawal that follows it when
 /// instrumental (a withdrawal must not overtake its assessment: the desk links both to the flash).
 #[derive(Debug)]
@@ -147,25 +270,6 @@ impl FitTask {
         };
         issue(desk, &self.instrument, &self.findings, stamps, fatal);
     }
-}
-
-/// Splits one engine step's findings: those that can go out now, in order, and those waiting on a fit (an
-/// assessment with a pending fit and the withdrawal of the same candidate right after it).
-pub(crate) fn split_deferred(findings: &mut Vec<Finding>) -> (Vec<Finding>, Vec<Finding>) {
-    let mut now = Vec::new();
-    let mut later: Vec<Finding> = Vec::new();
-    for f in findings.drain(..) {
-        let follows_deferred = match (&f, later.last()) {
-            (Finding::Withdrawal(w), Some(Finding::Assessment(a))) => a.candidate == w.candidate,
-            _ => false,
-        };
-        match &f {
-            Finding::Assessment(a) if a.fit_job.is_some() => later.push(f),
-            Finding::Withdrawal(_) if follows_deferred => later.push(f),
-            _ => now.push(f),
-        }
-    }
-    (now, later)
 }
 
 /// The daemon's fit worker: runs the evaporation fits the engines deferred, one at a time, and issues the
