@@ -878,6 +878,9 @@ impl Engine {
         let id = self.next_id;
         self.next_id += 1;
         let flash = self.build_flash(i, k, n, b, ln_p, id);
+        // Out first: what follows (the all-sky count, the candidate's photons back through the pre-window) is
+        // for the assessment, and walking it would delay the alert.
+        out.emit(Finding::Flash(flash.clone()));
         let pos0 = unit_vector(flash.ra_deg, flash.dec_deg);
         // The seeds scatter by the PSF at their own energies, the widest at the lowest: with the flash's
         // median energy instead, a bright soft source's low-energy seeds cross outside the radius and split
@@ -928,7 +931,6 @@ impl Engine {
         }
         self.stats.candidates += 1;
         self.stats.flashes += 1;
-        out.emit(Finding::Flash(flash.clone()));
         self.cands.push(Candidate {
             id,
             pos0,
