@@ -15,7 +15,7 @@ use crate::dead::DeadTime;
 use crate::error::EngineError;
 use crate::finding::{Finding, FindingSink, Flash, PhotonRec};
 use crate::reorder::{Photon, Reorder};
-use crate::sky::{SkyIndex, radec_of, unit_vector};
+use crate::sky::{Disc, SkyIndex, Step, radec_of, unit_vector};
 
 /// Seconds in a Julian year (365.25 days): the unit of every false-alarm rate.
 pub const SECONDS_PER_YEAR: f64 = 31_557_600.0;
@@ -111,6 +111,8 @@ pub struct EngineStats {
 #[derive(Debug)]
 struct Params {
     ladder_ns: Vec<i64>,
+    /// The ladder as the sky index's walk compares ages with it.
+    steps: Vec<Step>,
     k: usize,
     longest_ns: i64,
     cos_r: f64,
@@ -137,6 +139,7 @@ impl Params {
         let rate_window_ns = secs_to_ns(cfg.rate_window_s).max(1);
         Self {
             k: ladder_ns.len(),
+            steps: ladder_ns.iter().map(|&dt| Step::new(dt)).collect(),
             cos_r: r.to_radians().cos(),
             omega_r: disc_solid_angle_sr(r),
             far_per_s: cfg.far_per_year / SECONDS_PER_YEAR,
@@ -765,13 +768,11 @@ impl Engine {
         }
         self.stats.seeds_tested += 1;
         self.hist.iter_mut().for_each(|h| *h = 0);
-        count_disc(
-            &self.sky,
+        self.sky.count_disc(
             g.slot,
-            g.v,
+            &Disc::new(g.v, self.p.cos_r),
             t,
-            self.p.cos_r,
-            &self.p.ladder_ns[..kmax],
+            &self.p.steps[..kmax],
             &mut self.hist,
         );
         let Some(model) = self.model.as_mut() else { return };
@@ -1009,12 +1010,14 @@ impl Engine {
         let mut slots = [0u32; 9];
         let ns = self.sky.neighbourhood(g.slot, g.v, &mut slots);
         for &s in &slots[..ns] {
-            for h in self.sky.bucket(s).hot.iter().rev() {
+            for h in self.sky.bucket(s).held.iter().rev() {
                 if t - h.t >= dt {
                     break;
                 }
                 if dot(h.v, g.v) >= self.p.cos_r {
-                    let Some(c) = self.sky.cold_of(s, h) else { continue };
+                    let Some(c) = self.sky.cold_of(s, &h) else {
+                        continue;
+                    };
                     let p = c.photon(h.t);
                     buf.push((
                         PhotonRec {
@@ -1187,30 +1190,6 @@ impl Engine {
         if let Some(w) = withdrawal {
             self.stats.withdrawals += 1;
             out.emit(Finding::Withdrawal(w));
-        }
-    }
-}
-
-/// Counts the photons within the search radius of a seed for each timescale, in one walk back over the
-/// seed's pixel and its neighbours: `hist[k]` gets the photons whose age falls in [dt_(k-1), dt_k).
-fn count_disc(sky: &SkyIndex, slot: u32, v: [f64; 3], t: i64, cos_r: f64, ladder: &[i64], hist: &mut [u32]) {
-    let Some(&limit) = ladder.last() else { return };
-    let mut slots = [0u32; 9];
-    let ns = sky.neighbourhood(slot, v, &mut slots);
-    for &s in &slots[..ns] {
-        let hot = &sky.bucket(s).hot;
-        let mut k = 0;
-        for h in hot.iter().rev() {
-            let age = t - h.t;
-            if age >= limit {
-                break;
-            }
-            if h.v[0] * v[0] + h.v[1] * v[1] + h.v[2] * v[2] >= cos_r {
-                while age >= ladder[k] {
-                    k += 1;
-                }
-                hist[k] += 1;
-            }
         }
     }
 }

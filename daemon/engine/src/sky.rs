@@ -1,8 +1,9 @@
 //! Sky index: the photons of the last (longest timescale + pre-window), bucketed by HEALPix nested pixel at a
 //! depth whose pixels are at least as wide as the search radius, so a seed's disc lies inside its own pixel
-//! and the 8 (or 7) neighbours. Only active pixels exist, each with its photons in time order, so a seed walks
-//! back from the newest and stops at the longest timescale. Memory: 72 bytes per held photon plus about 280 per
-//! active pixel (about 220 per held photon at 500 Hz): it grows with event rate x retention, never with uptime.
+//! and the 8 (or 7) neighbours. Each active pixel is a ring of 8-photon blocks in time order that a seed walks
+//! back from the newest, f32 screen first, exact f64 test near the edge. Memory: 88 bytes per held photon
+//! (48 in its pixel's ring, 40 in the release-order ring) plus about 270 per active pixel (engine `held_bytes`
+//! about 275 per held photon at 500 Hz, 170 at 20 kHz): it grows with event rate x retention, never uptime.
 
 use std::collections::{HashMap, VecDeque};
 use std::hash::{BuildHasherDefault, Hasher};
@@ -11,7 +12,7 @@ use cdshealpix::nested::{self, Layer};
 
 use crate::reorder::Photon;
 
-/// Position and time of a held photon: what the seeded test reads.
+/// Time and exact direction of a held photon, as the rare paths (flash photons, cones) read it.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub(crate) struct Hot {
     pub(crate) t: i64,
@@ -44,21 +45,352 @@ impl Cold {
 /// Slack on the neighbour-reach test for the f32 rounding of centres and cosines (each below 1e-7).
 const GEO_MARGIN: f64 = 1e-6;
 
+// The disc test reads a photon's stored f32 direction x' (each component within u |x_i| of the exact one,
+// u = 2^-24, round to nearest) and defers to the exact f64 test only in a band around cos r. Against the f64
+// product d of the exact vectors (whose own rounding is below 1e-15):
+// - in f32 (seed rounded too, products summed in f32): |d32 - d| <= 5u (1 + O(u)) < 2.99e-7 for unit vectors,
+//   and rounding cos r +- the band to f32 moves it by at most 6e-8;
+// - in f64 on x' and the exact seed: |d64' - d| <= u sum |x_i s_i| + 1e-15 <= 6e-8.
+// A product at or above cos r + band is then in the disc by the exact test too, one at or below cos r - band
+// is out. [calc] from the standard bound on floating-point dot products (Higham 2002, section 3.1).
+
+/// Half-width of the band of the f32 screen.
+const BAND32: f64 = 4e-7;
+/// Half-width of the band of the f64 product on the stored direction.
+const BAND64: f64 = 1e-7;
+
+/// Photons per block.
+const LANES: usize = 8;
+
+/// Coarse times are the times shifted right by this (units of 65.5 us), kept in 32 bits: ages up to
+/// 2^48 ns (78 hours; the index holds at most the longest timescale plus the pre-window, 25 hours) stay
+/// unambiguous modulo 2^32.
+const COARSE_SHIFT: u32 = 16;
+
 /// Marks an inactive neighbour in a bucket's neighbour cache.
 const NONE: u32 = u32::MAX;
 
-/// What a seed reads of one active pixel, kept in one cache line: its photons' times and directions and the
-/// buckets of its active neighbours.
+/// Coarse time of a time.
+#[inline]
+fn coarse(t: i64) -> u32 {
+    (t >> COARSE_SHIFT) as u32
+}
+
+/// One timescale as the walk compares ages with it. With coarse times c = t >> s, the age A of a photon
+/// whose coarse age is D lies in ((D - 1) 2^s, (D + 1) 2^s): D >= `old_min` proves A >= dt, D <= `young_max`
+/// proves A < dt, and only the one or two coarse ages between need the exact time.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub(crate) struct Step {
+    dt: i64,
+    young_max: i64,
+    old_min: i64,
+}
+
+impl Step {
+    /// The step for a timescale of `dt` ns (>= 1).
+    pub(crate) fn new(dt: i64) -> Self {
+        let unit = 1i64 << COARSE_SHIFT;
+        Self {
+            dt,
+            young_max: dt.div_euclid(unit) - 1,
+            old_min: 1 + (dt - 1 + unit - 1).div_euclid(unit),
+        }
+    }
+
+    /// True when a photon of coarse age `d` is certainly younger than `dt`.
+    #[inline]
+    fn young(&self, d: u32) -> bool {
+        i64::from(d) <= self.young_max
+    }
+
+    /// True when the photon of coarse age `d` (exact time from `exact` when needed) is at least `dt` old at `t`.
+    #[inline]
+    fn older(&self, d: u32, t: i64, exact: impl FnOnce() -> i64) -> bool {
+        let d = i64::from(d);
+        d >= self.old_min || (d > self.young_max && t - exact() >= self.dt)
+    }
+}
+
+/// A seed as the disc test reads it.
+#[derive(Debug, Clone, Copy)]
+pub(crate) struct Disc {
+    v: [f64; 3],
+    cos_r: f64,
+    s: [f32; 3],
+    /// f32 product >= `sure32`: in the disc; <= `out32`: out; in between, the f64 product on the stored
+    /// direction decides against `sure64` and `out64` the same way, and between those the exact test.
+    sure32: f32,
+    out32: f32,
+    sure64: f64,
+    out64: f64,
+}
+
+impl Disc {
+    pub(crate) fn new(v: [f64; 3], cos_r: f64) -> Self {
+        Self {
+            v,
+            cos_r,
+            s: [v[0] as f32, v[1] as f32, v[2] as f32],
+            sure32: (cos_r + BAND32) as f32,
+            out32: (cos_r - BAND32) as f32,
+            sure64: cos_r + BAND64,
+            out64: cos_r - BAND64,
+        }
+    }
+
+    /// The lanes of a block clearly inside the disc and those not clearly outside, as bit masks (equal unless
+    /// a photon lies in the band between), in one f32 pass with no branch per lane.
+    #[inline]
+    fn screen(&self, b: &Block) -> (u32, u32) {
+        let (mut sure, mut maybe) = (0u32, 0u32);
+        for j in 0..LANES {
+            let d = b.x[j] * self.s[0] + b.y[j] * self.s[1] + b.z[j] * self.s[2];
+            sure |= u32::from(d >= self.sure32) << j;
+            maybe |= u32::from(d > self.out32) << j;
+        }
+        (sure, maybe)
+    }
+
+    /// The test itself, `v . seed >= cos r` in f64, decided on the stored direction when that is clear of
+    /// the band.
+    #[inline]
+    fn contains(&self, x: f32, y: f32, z: f32, v: &[f64; 3]) -> bool {
+        let d = f64::from(x) * self.v[0] + f64::from(y) * self.v[1] + f64::from(z) * self.v[2];
+        if (d > self.out64) & (d < self.sure64) {
+            v[0] * self.v[0] + v[1] * self.v[1] + v[2] * self.v[2] >= self.cos_r
+        } else {
+            d >= self.sure64
+        }
+    }
+}
+
+/// LANES consecutive photons of a pixel: their coarse times and single-precision directions, all the seeded
+/// test reads of them, in the first two cache lines; then their exact records.
+#[derive(Debug, Clone, Copy, Default)]
+#[repr(C, align(128))]
+struct Block {
+    tc: [u32; LANES],
+    x: [f32; LANES],
+    y: [f32; LANES],
+    z: [f32; LANES],
+    ex: [Exact; LANES],
+}
+
+/// Exact time and direction of a held photon: read by the seeded test only near the disc's edge or a
+/// timescale's cut-off, and by the rare paths.
+#[derive(Debug, Clone, Copy, Default)]
+struct Exact {
+    t: i64,
+    v: [f64; 3],
+}
+
+/// A pixel's photons, oldest first, in a ring of blocks whose capacity (in photons) is 0 or a power of two at
+/// least LANES, so a block never wraps.
+#[derive(Debug, Default)]
+#[repr(C)]
+pub(crate) struct Held {
+    head: usize,
+    len: usize,
+    blocks: Box<[Block]>,
+}
+
+impl Held {
+    /// Bytes of one held photon.
+    const BYTES: usize = size_of::<Block>() / LANES;
+
+    pub(crate) fn len(&self) -> usize {
+        self.len
+    }
+
+    fn capacity(&self) -> usize {
+        self.blocks.len() * LANES
+    }
+
+    /// Physical position of logical position `i` (< capacity).
+    #[inline]
+    fn at(&self, i: usize) -> usize {
+        (self.head + i) & (self.capacity() - 1)
+    }
+
+    /// The photon at logical position `i` (0 = oldest; `i` < len).
+    pub(crate) fn get(&self, i: usize) -> Hot {
+        let p = self.at(i);
+        let e = self.blocks[p / LANES].ex[p % LANES];
+        Hot { t: e.t, v: e.v }
+    }
+
+    /// The photons, oldest first.
+    pub(crate) fn iter(&self) -> impl DoubleEndedIterator<Item = Hot> + '_ {
+        (0..self.len).map(|i| self.get(i))
+    }
+
+    /// Logical position of the first photon with time >= `t_from`.
+    pub(crate) fn first_from(&self, t_from: i64) -> usize {
+        let (mut lo, mut hi) = (0, self.len);
+        while lo < hi {
+            let mid = lo + (hi - lo) / 2;
+            if self.get(mid).t < t_from {
+                lo = mid + 1;
+            } else {
+                hi = mid;
+            }
+        }
+        lo
+    }
+
+    fn push_back(&mut self, t: i64, v: [f64; 3]) {
+        if self.len == self.capacity() {
+            self.reallocate((2 * self.capacity()).max(LANES));
+        }
+        let p = self.at(self.len);
+        let b = &mut self.blocks[p / LANES];
+        let j = p % LANES;
+        b.tc[j] = coarse(t);
+        b.x[j] = v[0] as f32;
+        b.y[j] = v[1] as f32;
+        b.z[j] = v[2] as f32;
+        b.ex[j] = Exact { t, v };
+        self.len += 1;
+    }
+
+    fn pop_front(&mut self) {
+        if self.len > 0 {
+            self.head = self.at(1);
+            self.len -= 1;
+        }
+    }
+
+    /// Moves the photons, oldest first, into a ring of capacity `cap` (a power of two >= max(len, LANES)).
+    fn reallocate(&mut self, cap: usize) {
+        let mut next = Self {
+            head: 0,
+            len: self.len,
+            blocks: vec![Block::default(); cap / LANES].into_boxed_slice(),
+        };
+        for i in 0..self.len {
+            let p = self.at(i);
+            let (src, j) = (&self.blocks[p / LANES], p % LANES);
+            let (dst, k) = (&mut next.blocks[i / LANES], i % LANES);
+            dst.tc[k] = src.tc[j];
+            dst.x[k] = src.x[j];
+            dst.y[k] = src.y[j];
+            dst.z[k] = src.z[j];
+            dst.ex[k] = src.ex[j];
+        }
+        *self = next;
+    }
+
+    /// Shrinks the capacity to the power of two at or above max(`keep`, len, LANES), when that is smaller.
+    fn shrink_to(&mut self, keep: usize) {
+        let cap = keep.max(self.len).max(LANES).next_power_of_two();
+        if cap < self.capacity() {
+            self.reallocate(cap);
+        }
+    }
+
+    /// Reads both lines of every block that a walk back from the newest photon to coarse age `old_min` reads,
+    /// in a loop with little else in it, so that their cache misses overlap; returns a value made from them
+    /// (the caller hides it from the optimiser, so the reads stay).
+    fn touch(&self, tc: u32, old_min: i64) -> u32 {
+        let Some(i) = self.len.checked_sub(1) else {
+            return 0;
+        };
+        let nb = self.blocks.len();
+        let mut b = self.at(i) / LANES;
+        let mut acc = 0u32;
+        for _ in 0..=i / LANES + 1 {
+            let blk = &self.blocks[b];
+            acc ^= blk.tc[0] ^ blk.y[0].to_bits();
+            if i64::from(tc.wrapping_sub(blk.tc[0])) >= old_min {
+                break;
+            }
+            b = b.checked_sub(1).unwrap_or(nb - 1);
+        }
+        acc
+    }
+
+    /// Adds to `hist[k]` the photons inside the disc `q` whose age at `t` (coarse time `tc`) lies in
+    /// [steps[k-1].dt, steps[k].dt) (below steps[0].dt for k = 0), walking back from the newest block by
+    /// block until the last step: the photons, and the counts, of a walk photon by photon. A full block
+    /// whose photons all fall in the current step and none in the band is added at once from its screen.
+    fn count_disc(&self, q: &Disc, t: i64, tc: u32, steps: &[Step], hist: &mut [u32]) {
+        let Some(last) = steps.last() else { return };
+        if self.len <= 2 * LANES {
+            // A pixel of a few photons: the plain walk over the exact records reads no more lines.
+            let mut k = 0;
+            for i in (0..self.len).rev() {
+                let p = self.at(i);
+                let e = &self.blocks[p / LANES].ex[p % LANES];
+                let age = t - e.t;
+                if age >= last.dt {
+                    return;
+                }
+                if e.v[0] * q.v[0] + e.v[1] * q.v[1] + e.v[2] * q.v[2] >= q.cos_r {
+                    while age >= steps[k].dt {
+                        k += 1;
+                    }
+                    hist[k] += 1;
+                }
+            }
+            return;
+        }
+        let mut i = self.len;
+        // The step of the last photon walked: older photons fall in it or a later one.
+        let mut k = 0;
+        while i > 0 {
+            let p = self.at(i - 1);
+            let b = &self.blocks[p / LANES];
+            // Lanes [lo, hi) of this block hold logical positions [i - (hi - lo), i).
+            let hi = p % LANES + 1;
+            let lo = hi.saturating_sub(i);
+            i -= hi - lo;
+            // A partial block (an end of the ring) is tested photon by photon, all lanes as if in the band.
+            let (sure, maybe) = if hi - lo == LANES {
+                q.screen(b)
+            } else {
+                (0, u32::MAX)
+            };
+            if sure == maybe && steps[k].young(tc.wrapping_sub(b.tc[0])) {
+                // A full block with no photon in the band, the oldest younger than this step's cut-off.
+                hist[k] += sure.count_ones();
+                continue;
+            }
+            // Photon by photon: the ends of the walk, a block straddling a cut-off, a photon in the band.
+            let ex = &b.ex;
+            let band = maybe & !sure;
+            for j in (lo..hi).rev() {
+                let d = tc.wrapping_sub(b.tc[j]);
+                if !steps[k].young(d) {
+                    if last.older(d, t, || ex[j].t) {
+                        return;
+                    }
+                    while steps[k].older(d, t, || ex[j].t) {
+                        k += 1;
+                    }
+                }
+                let inside = if band >> j & 1 == 1 {
+                    q.contains(b.x[j], b.y[j], b.z[j], &ex[j].v)
+                } else {
+                    sure >> j & 1 == 1
+                };
+                hist[k] += u32::from(inside);
+            }
+        }
+    }
+}
+
+/// What a seed reads of one active pixel: its photons and the buckets of its active neighbours (the ring's
+/// header and the neighbours' buckets in the first cache line).
 #[derive(Debug)]
-#[repr(align(64))]
+#[repr(C, align(64))]
 pub(crate) struct Bucket {
-    pub(crate) hot: VecDeque<Hot>,
+    pub(crate) held: Held,
     /// Bucket of each neighbouring pixel (same order as `Meta::neigh`), NONE when that pixel is inactive.
     nslots: [u32; 8],
     /// Per neighbour: its centre (unit vector) and the cosine of (search radius + its bounding radius) less
     /// a margin covering f32 rounding; a seed whose dot product with the centre is below that cannot reach
     /// into the neighbour. (For tiny radii the margin keeps every neighbour: safe, just slower.) Read only
-    /// for the seed's own bucket, right after its first line.
+    /// for the seed's own bucket.
     geo: [[f32; 4]; 8],
 }
 
@@ -252,16 +584,12 @@ impl SkyIndex {
 
     /// Heap bytes of the index, from capacities.
     pub(crate) fn heap_bytes(&self) -> usize {
-        let hot: usize = self
-            .buckets
-            .iter()
-            .map(|b| b.hot.capacity() * size_of::<Hot>())
-            .sum();
+        let held: usize = self.buckets.iter().map(|b| b.held.capacity() * Held::BYTES).sum();
         let map = match &self.map {
             PixMap::Dense { slots, .. } => slots.capacity() * size_of::<u32>(),
             PixMap::Hashed(m) => m.capacity() * (size_of::<u64>() + size_of::<u32>() + 1),
         };
-        hot + self.buckets.capacity() * size_of::<Bucket>()
+        held + self.buckets.capacity() * size_of::<Bucket>()
             + self.meta.capacity() * size_of::<Meta>()
             + self.fifo.capacity() * size_of::<Entry>()
             + map
@@ -294,7 +622,7 @@ impl SkyIndex {
             Some(s) => s,
             None => self.open(pix),
         };
-        self.buckets[slot as usize].hot.push_back(Hot { t: p.t, v });
+        self.buckets[slot as usize].held.push_back(p.t, v);
         let cold = Cold {
             ra: p.ra,
             dec: p.dec,
@@ -316,7 +644,7 @@ impl SkyIndex {
             Some(s) => s,
             None => {
                 self.buckets.push(Bucket {
-                    hot: VecDeque::new(),
+                    held: Held::default(),
                     nslots: [NONE; 8],
                     geo: [[0.0; 4]; 8],
                 });
@@ -368,8 +696,8 @@ impl SkyIndex {
 
     fn close(&mut self, slot: u32) {
         let pix = self.meta[slot as usize].pix;
-        if self.buckets[slot as usize].hot.capacity() > 8 {
-            self.buckets[slot as usize].hot.shrink_to(8);
+        if self.buckets[slot as usize].held.capacity() > 8 {
+            self.buckets[slot as usize].held.shrink_to(8);
         }
         let nslots = self.buckets[slot as usize].nslots;
         for qs in nslots {
@@ -391,14 +719,15 @@ impl SkyIndex {
             let slot = e.slot;
             self.fifo.pop_front();
             let b = &mut self.buckets[slot as usize];
-            b.hot.pop_front();
-            if b.hot.is_empty() {
+            b.held.pop_front();
+            if b.held.len() == 0 {
                 self.close(slot);
-            } else if b.hot.capacity() > 8 && b.hot.len() * 4 < b.hot.capacity() {
+            } else if b.held.capacity() > 2 * LANES && b.held.len() * 8 < b.held.capacity() {
                 // A reused bucket keeps the capacity of its busiest past; give most of it back so memory
-                // follows the current occupancy, not the peak of the whole uptime.
-                let keep = b.hot.len() * 2;
-                b.hot.shrink_to(keep);
+                // follows the current occupancy, not the peak of the whole uptime (at 8x, not sooner: a
+                // pixel's count swings by a few around its mean, and each resize copies its photons).
+                let keep = b.held.len() * 2;
+                b.held.shrink_to(keep);
             }
         }
     }
@@ -424,6 +753,29 @@ impl SkyIndex {
 
     pub(crate) fn bucket(&self, slot: u32) -> &Bucket {
         &self.buckets[slot as usize]
+    }
+
+    /// Counts the held photons within the disc `q` of a seed in bucket `slot` at time `t` for each timescale:
+    /// `hist[k]` gets those whose age t - t_i falls in [ladder[k-1], ladder[k]) (any age below ladder[0] for
+    /// k = 0), from the seed's pixel and the neighbours its disc can reach.
+    pub(crate) fn count_disc(&self, slot: u32, q: &Disc, t: i64, steps: &[Step], hist: &mut [u32]) {
+        let Some(last) = steps.last() else { return };
+        let tc = coarse(t);
+        let mut slots = [0u32; 9];
+        let ns = self.neighbourhood(slot, q.v, &mut slots);
+        // The pixels lie far apart in memory: read the blocks of the longer walks first, in a loop with little
+        // else in it, so that their cache misses overlap (a pixel of two blocks or less is left to its walk).
+        let mut acc = 0u32;
+        for &s in &slots[..ns] {
+            let held = &self.buckets[s as usize].held;
+            if held.len() > 2 * LANES {
+                acc ^= held.touch(tc, last.old_min);
+            }
+        }
+        std::hint::black_box(acc);
+        for &s in &slots[..ns] {
+            self.buckets[s as usize].held.count_disc(q, t, tc, steps, hist);
+        }
     }
 
     /// The columns of a held photon the test does not read, found by its time in the release-order ring
@@ -455,9 +807,8 @@ impl SkyIndex {
         let cover = self.layer.cone_coverage_approx(ra_deg.to_radians(), lat, radius);
         for pix in cover.flat_iter() {
             if let Some(s) = self.map.get(pix) {
-                let hot = &self.buckets[s as usize].hot;
-                let start = hot.partition_point(|h| h.t < t_from);
-                hot.range(start..).for_each(&mut f);
+                let held = &self.buckets[s as usize].held;
+                (held.first_from(t_from)..held.len()).for_each(|i| f(&held.get(i)));
             }
         }
     }
@@ -482,9 +833,9 @@ impl SkyIndex {
         let (centre, cos_r) = (unit_vector(ra_deg, dec_deg), radius.cos());
         for pix in cover.flat_iter() {
             if let Some(s) = self.map.get(pix) {
-                let hot = &self.buckets[s as usize].hot;
-                let start = hot.partition_point(|h| h.t < t_from);
-                for h in hot.range(start..) {
+                let held = &self.buckets[s as usize].held;
+                for i in held.first_from(t_from)..held.len() {
+                    let h = &held.get(i);
                     let d = h.v[0] * centre[0] + h.v[1] * centre[1] + h.v[2] * centre[2];
                     if d < cos_r {
                         continue;
@@ -560,7 +911,7 @@ mod tests {
             let n = idx.neighbourhood(slot, *seed, &mut slots);
             let mut found = 0;
             for &s in &slots[..n] {
-                for h in &idx.bucket(s).hot {
+                for h in idx.bucket(s).held.iter() {
                     if dot(h.v, *seed) >= cos_r {
                         found += 1;
                     }
@@ -653,5 +1004,224 @@ mod tests {
         assert!((angle_deg(a, b) - 0.001).abs() < 1e-9);
         let (ra, dec) = radec_of(a);
         assert!((ra - 10.0).abs() < 1e-12 && (dec - 20.0).abs() < 1e-12);
+    }
+
+    /// A unit vector at angle `theta` (radians) from unit vector `s`, in direction `phi` about it.
+    fn at_angle(s: [f64; 3], theta: f64, phi: f64) -> [f64; 3] {
+        let a = if s[2].abs() < 0.9 {
+            [0.0, 0.0, 1.0]
+        } else {
+            [1.0, 0.0, 0.0]
+        };
+        let e1 = {
+            let c = [
+                s[1] * a[2] - s[2] * a[1],
+                s[2] * a[0] - s[0] * a[2],
+                s[0] * a[1] - s[1] * a[0],
+            ];
+            let n = dot(c, c).sqrt();
+            [c[0] / n, c[1] / n, c[2] / n]
+        };
+        let e2 = [
+            s[1] * e1[2] - s[2] * e1[1],
+            s[2] * e1[0] - s[0] * e1[2],
+            s[0] * e1[1] - s[1] * e1[0],
+        ];
+        let (st, ct) = theta.sin_cos();
+        let (sp, cp) = phi.sin_cos();
+        let p = [
+            ct * s[0] + st * (cp * e1[0] + sp * e2[0]),
+            ct * s[1] + st * (cp * e1[1] + sp * e2[1]),
+            ct * s[2] + st * (cp * e1[2] + sp * e2[2]),
+        ];
+        // Stored directions come from right ascension and declination, as the engine's do.
+        let (ra, dec) = radec_of(p);
+        unit_vector(ra, dec)
+    }
+
+    #[test]
+    fn disc_test_equals_the_f64_test_at_the_edge() {
+        // Photons within 1e-9..1e-2 relative of the radius, either side: the f32 and f64-on-f32 screens
+        // must agree with the exact f64 product every time, including inside their bands.
+        use rand::{RngExt, SeedableRng};
+        let mut rng = rand_pcg::Pcg64::seed_from_u64(7);
+        for r_deg in [0.01, 0.05, 0.5, 3.0, 10.0] {
+            let cos_r = f64::to_radians(r_deg).cos();
+            let (mut inside, mut outside, mut band32, mut band64, mut screened) = (0, 0, 0, 0, 0);
+            for n in 0..300 {
+                let s = unit_vector(
+                    360.0 * rng.random::<f64>(),
+                    (2.0 * rng.random::<f64>() - 1.0).asin().to_degrees(),
+                );
+                let q = Disc::new(s, cos_r);
+                let mut block = Block::default();
+                let mut want = 0;
+                for j in 0..LANES {
+                    // Every other block well clear of the edge (2% to 100% of the radius), for the screen.
+                    let rel = if n % 2 == 0 {
+                        10f64.powf(-9.0 + 7.0 * rng.random::<f64>())
+                    } else {
+                        0.02 + 0.98 * rng.random::<f64>()
+                    };
+                    let sign = if rng.random::<bool>() { 1.0 } else { -1.0 };
+                    let v = at_angle(
+                        s,
+                        r_deg.to_radians() * (1.0 + sign * rel),
+                        6.3 * rng.random::<f64>(),
+                    );
+                    let d = dot(v, s);
+                    let exact = d >= cos_r;
+                    let (x, y, z) = (v[0] as f32, v[1] as f32, v[2] as f32);
+                    assert_eq!(
+                        q.contains(x, y, z, &v),
+                        exact,
+                        "r {r_deg}: d - cos r = {:e}",
+                        d - cos_r
+                    );
+                    (block.x[j], block.y[j], block.z[j]) = (x, y, z);
+                    want += u32::from(exact);
+                    if exact {
+                        inside += 1;
+                    } else {
+                        outside += 1;
+                    }
+                    band32 += usize::from((d - cos_r).abs() < BAND32);
+                    band64 += usize::from((d - cos_r).abs() < BAND64);
+                }
+                // The block screen brackets the count, and gives it when nothing lies in the f32 band.
+                let (sure, maybe) = q.screen(&block);
+                let (sure, maybe) = (sure.count_ones(), maybe.count_ones());
+                assert!(
+                    sure <= want && want <= maybe,
+                    "r {r_deg}: {sure} <= {want} <= {maybe}"
+                );
+                if sure == maybe {
+                    screened += 1;
+                }
+            }
+            // Both outcomes, and both bands, were exercised (at 0.01 deg the f32 band holds every photon).
+            assert!(
+                inside > 500 && outside > 500,
+                "r {r_deg}: {inside} in, {outside} out"
+            );
+            assert!(
+                band64 > 100 && band32 >= band64,
+                "r {r_deg}: {band32} in the f32 band, {band64} in the f64"
+            );
+            assert!(
+                r_deg < 0.5 || screened > 100,
+                "r {r_deg}: {screened} blocks cleared the screen"
+            );
+        }
+    }
+
+    /// The walk the seeded test replaced: every photon of the neighbourhood newest first, exact times and
+    /// directions, each in the disc binned by age.
+    fn plain_walk(idx: &SkyIndex, slot: u32, v: [f64; 3], t: i64, cos_r: f64, ladder: &[i64]) -> Vec<u32> {
+        let mut hist = vec![0; ladder.len()];
+        let limit = ladder[ladder.len() - 1];
+        let mut slots = [0u32; 9];
+        let ns = idx.neighbourhood(slot, v, &mut slots);
+        for &s in &slots[..ns] {
+            let mut k = 0;
+            for h in idx.bucket(s).held.iter().rev() {
+                let age = t - h.t;
+                if age >= limit {
+                    break;
+                }
+                if dot(h.v, v) >= cos_r {
+                    while age >= ladder[k] {
+                        k += 1;
+                    }
+                    hist[k] += 1;
+                }
+            }
+        }
+        hist
+    }
+
+    #[test]
+    fn disc_counts_equal_a_plain_walk() {
+        // A stream into a 4 x 4 degree patch, dense enough for pixels of hundreds of photons (many blocks,
+        // rings wrapping as photons are evicted), then into a 60 x 40 degree one, where pixels hold a few
+        // (rings of one block whose newest and oldest photons share it); times on a 1 us grid with ties, so
+        // that ages meet the timescales' cut-offs exactly and the coarse times' 65.536 us steps every which
+        // way. Every photon seeds a test on three ladders; the counts must equal the plain walk's.
+        use rand::{RngExt, SeedableRng};
+        let mut rng = rand_pcg::Pcg64::seed_from_u64(11);
+        let r = 0.5;
+        let cos_r = f64::to_radians(r).cos();
+        let ladders: [Vec<i64>; 3] = [
+            vec![10_000_000, 30_000_000, 100_000_000, 300_000_000, 1_000_000_000],
+            vec![
+                1, 65_000, 65_536, 131_072, 200_000, 1_000_000, 5_000_000, 20_000_000,
+            ],
+            vec![3_000_000, 7_000_000],
+        ];
+        let steps: Vec<Vec<Step>> = ladders
+            .iter()
+            .map(|l| l.iter().map(|&d| Step::new(d)).collect())
+            .collect();
+        let mut idx = SkyIndex::new(r);
+        let mut t = 1_420_000_000_000_000_000i64;
+        let (mut seeds, mut counted, mut band) = (0u64, 0u64, 0u64);
+        let (mut small_rings, mut blocks) = (0, 0);
+        for i in 0..60_000 {
+            let (w, h, gap) = if i < 30_000 {
+                (4.0, 4.0, 80.0)
+            } else {
+                (60.0, 40.0, 400.0)
+            };
+            if rng.random::<f64>() > 0.1 {
+                t += 1000 * (1 + (rng.random::<f64>() * gap) as i64);
+            }
+            let p = ph(t, 40.0 + w * rng.random::<f64>(), 10.0 + h * rng.random::<f64>());
+            let v = unit_vector(p.ra, p.dec);
+            let slot = idx.insert(&p, v);
+            idx.evict_before(t - 1_500_000_000);
+            if i == 29_999 {
+                blocks = idx
+                    .buckets
+                    .iter()
+                    .map(|b| b.held.len().div_ceil(LANES))
+                    .max()
+                    .unwrap_or(0);
+            }
+            if i < 2000 {
+                continue;
+            }
+            let q = Disc::new(v, cos_r);
+            for (ladder, steps) in ladders.iter().zip(&steps) {
+                let mut hist = vec![0u32; ladder.len() + 2];
+                idx.count_disc(slot, &q, t, steps, &mut hist);
+                let want = plain_walk(&idx, slot, v, t, cos_r, ladder);
+                assert_eq!(
+                    &hist[..ladder.len()],
+                    &want[..],
+                    "photon {i} at {t}, ladder {ladder:?}"
+                );
+                assert_eq!(&hist[ladder.len()..], &[0, 0]);
+                counted += u64::from(want.iter().sum::<u32>());
+            }
+            seeds += 1;
+            small_rings +=
+                usize::from(idx.bucket(slot).held.capacity() == LANES && idx.bucket(slot).held.len() > 1);
+            let mut slots = [0u32; 9];
+            let ns = idx.neighbourhood(slot, v, &mut slots);
+            for &s in &slots[..ns] {
+                band += idx
+                    .bucket(s)
+                    .held
+                    .iter()
+                    .filter(|h| (dot(h.v, v) - cos_r).abs() < BAND64)
+                    .count() as u64;
+            }
+        }
+        assert!(blocks >= 8, "largest pixel held only {blocks} blocks");
+        assert!(small_rings > 1000, "{small_rings} seeds in pixels of one block");
+        assert!(
+            counted > 1_000_000 && band > 100,
+            "{seeds} seeds counted {counted} photons, {band} in the band"
+        );
     }
 }
