@@ -1,9 +1,10 @@
 //! Sky index: the photons of the last (longest timescale + pre-window), bucketed by HEALPix nested pixel at a
 //! depth whose pixels are at least as wide as the search radius, so a seed's disc lies inside its own pixel
-//! and the 8 (or 7) neighbours. Each active pixel is a ring of 8-photon blocks in time order that a seed walks
-//! back from the newest, f32 screen first, exact f64 test near the edge. Memory: 88 bytes per held photon
-//! (48 in its pixel's ring, 40 in the release-order ring) plus about 270 per active pixel (engine `held_bytes`
-//! about 275 per held photon at 500 Hz, 170 at 20 kHz): it grows with event rate x retention, never uptime.
+//! and the 8 (or 7) neighbours. Each active pixel is a ring of 8-photon blocks in time order that a seed
+//! walks back from the newest, f32 screen first, exact f64 test near the edge. Memory: 88 bytes per held
+//! photon (48 in its pixel's ring, 40 in the release-order ring) plus about 270 per active pixel (engine
+//! `held_bytes` about 275 per held photon at 500 Hz, 170 at 20 kHz): it grows with event rate x retention,
+//! never with uptime.
 
 use std::collections::{HashMap, VecDeque};
 use std::hash::{BuildHasherDefault, Hasher};
@@ -103,7 +104,7 @@ impl Step {
         i64::from(d) <= self.young_max
     }
 
-    /// True when the photon of coarse age `d` (exact time from `exact` when needed) is at least `dt` old at `t`.
+    /// True when the photon of coarse age `d` (exact time from `exact` if needed) is `dt` or more old at `t`.
     #[inline]
     fn older(&self, d: u32, t: i64, exact: impl FnOnce() -> i64) -> bool {
         let d = i64::from(d);
@@ -126,6 +127,7 @@ pub(crate) struct Disc {
 }
 
 impl Disc {
+    /// The disc of cosine `cos_r` about unit vector `v`.
     pub(crate) fn new(v: [f64; 3], cos_r: f64) -> Self {
         Self {
             v,
@@ -310,13 +312,14 @@ impl Held {
     }
 
     /// Adds to `hist[k]` the photons inside the disc `q` whose age at `t` (coarse time `tc`) lies in
-    /// [steps[k-1].dt, steps[k].dt) (below steps[0].dt for k = 0), walking back from the newest block by
-    /// block until the last step: the photons, and the counts, of a walk photon by photon. A full block
-    /// whose photons all fall in the current step and none in the band is added at once from its screen.
+    /// [steps[k-1].dt, steps[k].dt) (below steps[0].dt for k = 0), walking back from the newest until the
+    /// last step: the counts of the plain walk over the exact records, which is what a ring of two blocks or
+    /// less gets. A longer one is walked block by block: a full block whose photons all fall in the current
+    /// step and none in the band is added at once from its screen, any other photon by photon.
     fn count_disc(&self, q: &Disc, t: i64, tc: u32, steps: &[Step], hist: &mut [u32]) {
         let Some(last) = steps.last() else { return };
         if self.len <= 2 * LANES {
-            // A pixel of a few photons: the plain walk over the exact records reads no more lines.
+            // A pixel of a few photons: the screen saves nothing, the exact records are as near.
             let mut k = 0;
             for i in (0..self.len).rev() {
                 let p = self.at(i);
@@ -763,8 +766,9 @@ impl SkyIndex {
         let tc = coarse(t);
         let mut slots = [0u32; 9];
         let ns = self.neighbourhood(slot, q.v, &mut slots);
-        // The pixels lie far apart in memory: read the blocks of the longer walks first, in a loop with little
-        // else in it, so that their cache misses overlap (a pixel of two blocks or less is left to its walk).
+        // The pixels lie far apart in memory: read the blocks of the longer walks first, in a loop with
+        // little else in it, so that their cache misses overlap (a pixel of two blocks or less is walked
+        // plainly).
         let mut acc = 0u32;
         for &s in &slots[..ns] {
             let held = &self.buckets[s as usize].held;
@@ -1143,10 +1147,11 @@ mod tests {
     #[test]
     fn disc_counts_equal_a_plain_walk() {
         // A stream into a 4 x 4 degree patch, dense enough for pixels of hundreds of photons (many blocks,
-        // rings wrapping as photons are evicted), then into a 60 x 40 degree one, where pixels hold a few
-        // (rings of one block whose newest and oldest photons share it); times on a 1 us grid with ties, so
-        // that ages meet the timescales' cut-offs exactly and the coarse times' 65.536 us steps every which
-        // way. Every photon seeds a test on three ladders; the counts must equal the plain walk's.
+        // rings wrapping as photons are evicted), then into a 16 x 16 degree one (pixels of tens of photons,
+        // rings of a few blocks, the newest and oldest photons sometimes in one block), then into a 60 x 40
+        // degree one (pixels of a few photons, walked plainly); times on a 1 us grid with ties, so that ages
+        // meet the timescales' cut-offs exactly and the coarse times' 65.536 us steps every which way. Every
+        // photon seeds a test on three ladders; the counts must equal the plain walk's.
         use rand::{RngExt, SeedableRng};
         let mut rng = rand_pcg::Pcg64::seed_from_u64(11);
         let r = 0.5;
@@ -1165,12 +1170,12 @@ mod tests {
         let mut idx = SkyIndex::new(r);
         let mut t = 1_420_000_000_000_000_000i64;
         let (mut seeds, mut counted, mut band) = (0u64, 0u64, 0u64);
-        let (mut small_rings, mut blocks) = (0, 0);
-        for i in 0..60_000 {
-            let (w, h, gap) = if i < 30_000 {
-                (4.0, 4.0, 80.0)
-            } else {
-                (60.0, 40.0, 400.0)
+        let (mut small, mut shared, mut blocks) = (0, 0, 0);
+        for i in 0..75_000 {
+            let (w, h, gap) = match i {
+                0..30_000 => (4.0, 4.0, 80.0),
+                30_000..55_000 => (16.0, 16.0, 400.0),
+                _ => (60.0, 40.0, 400.0),
             };
             if rng.random::<f64>() > 0.1 {
                 t += 1000 * (1 + (rng.random::<f64>() * gap) as i64);
@@ -1204,8 +1209,10 @@ mod tests {
                 counted += u64::from(want.iter().sum::<u32>());
             }
             seeds += 1;
-            small_rings +=
-                usize::from(idx.bucket(slot).held.capacity() == LANES && idx.bucket(slot).held.len() > 1);
+            let held = &idx.bucket(slot).held;
+            small += usize::from(held.len() > 1 && held.len() <= 2 * LANES);
+            // A ring past two blocks whose oldest photon shares the newest's block.
+            shared += usize::from(held.len() > 2 * LANES && held.len() + held.head % LANES > held.capacity());
             let mut slots = [0u32; 9];
             let ns = idx.neighbourhood(slot, v, &mut slots);
             for &s in &slots[..ns] {
@@ -1218,7 +1225,10 @@ mod tests {
             }
         }
         assert!(blocks >= 8, "largest pixel held only {blocks} blocks");
-        assert!(small_rings > 1000, "{small_rings} seeds in pixels of one block");
+        assert!(
+            small > 1000 && shared > 100,
+            "{small} seeds in pixels walked plainly, {shared} in rings whose ends share a block"
+        );
         assert!(
             counted > 1_000_000 && band > 100,
             "{seeds} seeds counted {counted} photons, {band} in the band"
