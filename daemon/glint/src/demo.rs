@@ -168,7 +168,10 @@ pub(crate) fn run(args: DemoArgs) -> anyhow::Result<ExitCode> {
 
 /// The embedded default configuration moved onto free loopback ports and a state directory under `tmp`, with
 /// the producer token of `instrument` and the first subscriber token: what the demo and the benchmark run on.
-fn loopback_config(tmp: &std::path::Path, instrument: &str) -> anyhow::Result<(Config, String, String)> {
+pub(crate) fn loopback_config(
+    tmp: &std::path::Path,
+    instrument: &str,
+) -> anyhow::Result<(Config, String, String)> {
     let mut cfg = Config::embedded_default().map_err(crate::cli::BadConfig)?;
     crate::logging::init("warn", cfg.daemon.log_format);
     let loopback = SocketAddr::from(([127, 0, 0, 1], 0));

@@ -461,13 +461,8 @@ mod tests {
     /// A loopback configuration whose journal already holds `PREFILLED` alerts, so a subscriber replaying it
     /// from the start has far more to read than any socket buffer holds.
     fn prefilled(tmp: &std::path::Path, unwritable: Duration) -> (Config, String) {
-        let mut cfg = Config::embedded_default().unwrap();
-        let loopback = SocketAddr::from(([127, 0, 0, 1], 0));
-        cfg.daemon.state_dir = tmp.join("state");
-        cfg.ingest.listen = loopback;
-        cfg.subscribers.listen = loopback;
+        let (mut cfg, _, token) = crate::demo::loopback_config(tmp, "ventisca-array").unwrap();
         cfg.subscribers.unwritable_timeout = unwritable;
-        cfg.metrics_listen = None;
         let (desk, _) = Desk::open(
             &cfg.daemon.state_dir.join("journal"),
             &cfg.journal,
@@ -475,7 +470,6 @@ mod tests {
         )
         .unwrap();
         crate::desk::tests::issue_test_flashes(&desk, PREFILLED, 0);
-        let token = cfg.subscribers.tokens[0].expose().to_string();
         (cfg, token)
     }
 
