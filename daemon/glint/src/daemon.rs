@@ -170,13 +170,20 @@ impl Daemon {
             .with_context(|| format!("cannot create state_dir {}", state_dir.display()))?;
         let lock = PidLock::take(&state_dir.join("glint.pid"))?;
         let metrics = Arc::new(Metrics::new());
-        let (desk, report) = Desk::open(&state_dir.join("journal"), &cfg.journal, metrics.clone())
-            .with_context(|| {
-                format!(
-                    "cannot open the journal in {}",
-                    state_dir.join("journal").display()
-                )
-            })?;
+        // Cancelled by anything that must stop the daemon, a journal failure first among them.
+        let fatal = CancellationToken::new();
+        let (desk, report) = Desk::open(
+            &state_dir.join("journal"),
+            &cfg.journal,
+            metrics.clone(),
+            fatal.clone(),
+        )
+        .with_context(|| {
+            format!(
+                "cannot open the journal in {}",
+                state_dir.join("journal").display()
+            )
+        })?;
         if let Some(t) = &report.torn {
             tracing::warn!(
                 segment = %t.path.display(),
@@ -226,7 +233,6 @@ impl Daemon {
             .transpose()
             .context("subscriber TLS")?;
 
-        let fatal = CancellationToken::new();
         let (done_tx, engines_done) = tokio::sync::mpsc::channel(cfg.instruments.len().max(1));
         let mut slots = Vec::new();
         let mut engines = Vec::new();

@@ -209,6 +209,11 @@ pub(crate) struct BenchArgs {
     /// Keep the simulated recording here (it is made once and reused when present).
     #[arg(long, value_name = "FILE")]
     recording: Option<std::path::PathBuf>,
+    /// Niceness of the producer and subscriber processes (0 runs them at the daemon's priority). On a
+    /// machine with few cores they stand in for producers and subscribers on other hosts; a positive value
+    /// lets the daemon's threads run first when both want a core.
+    #[arg(long, default_value_t = 0, value_name = "N")]
+    clients_nice: u8,
 }
 
 fn print_latency(metrics: &Metrics) {
@@ -229,9 +234,26 @@ fn print_latency(metrics: &Metrics) {
     }
 }
 
-/// `glint bench-live`: simulates a scenario into a recording, starts the daemon in-process with `N`
-/// subscribers, feeds the recording at the given speed, and prints throughput and latency percentiles
-/// (receipt of the frame that completes a trigger to the alert frame written to each subscriber's socket).
+/// A client process of the benchmark: this same executable running `glint feed` or `glint listen`, under
+/// `nice` when asked.
+fn client(nice: u8, args: &[&std::ffi::OsStr]) -> anyhow::Result<tokio::process::Command> {
+    let exe = std::env::current_exe().context("cannot find the glint executable")?;
+    let mut c = if nice > 0 {
+        let mut c = tokio::process::Command::new("nice");
+        c.arg("-n").arg(nice.to_string()).arg(exe);
+        c
+    } else {
+        tokio::process::Command::new(exe)
+    };
+    c.args(args).kill_on_drop(true);
+    Ok(c)
+}
+
+/// `glint bench-live`: simulates a scenario into a recording, starts the daemon in-process, then `N`
+/// subscriber processes (`glint listen --json`) and one producer process (`glint feed`) playing the
+/// recording at the given speed, as on an operations host. Prints the producer's report and the daemon's
+/// latency percentiles, from the receipt of the frame that completes a trigger to the alert frame written
+/// to each subscriber's socket.
 pub(crate) fn bench(args: BenchArgs) -> anyhow::Result<ExitCode> {
     let tmp = tempfile::Builder::new()
         .prefix("glint-bench-")
@@ -259,65 +281,86 @@ pub(crate) fn bench(args: BenchArgs) -> anyhow::Result<ExitCode> {
         );
     }
     let (cfg, producer_token, sub_token) = loopback_config(tmp.path(), &scenario.instrument.id)?;
+    let (producer_file, sub_file) = (tmp.path().join("producer.token"), tmp.path().join("sub.token"));
+    std::fs::write(&producer_file, &producer_token).context("cannot write a token file")?;
+    std::fs::write(&sub_file, &sub_token).context("cannot write a token file")?;
+    let speed = match args.speed {
+        Speed::Max => "max".to_string(),
+        Speed::Times(x) => x.to_string(),
+    };
     let rt = tokio::runtime::Builder::new_multi_thread()
         .enable_all()
         .build()
         .context("cannot start the runtime")?;
-    let (fed, metrics, alerts) = rt.block_on(async {
+    let (metrics, alerts, photons) = rt.block_on(async {
         let daemon = Daemon::start(cfg).await?;
+        let (ingest, subs) = (
+            daemon.ingest_addr.to_string(),
+            daemon.subscribers_addr.to_string(),
+        );
         let mut listeners = Vec::new();
         for i in 0..args.subscribers {
-            let opts = ListenOptions {
-                addr: daemon.subscribers_addr.to_string(),
-                token: sub_token.clone(),
-                kinds: Vec::new(),
-                min_sigma: 0.0,
-                resume_after: 0,
-                replay_all: true,
-                client: format!("bench-{i}"),
-                tls: None,
-                max_frame: 64 << 20,
-            };
-            listeners.push(tokio::spawn(async move {
-                let mut n = 0u64;
-                let mut on_alert = |_: &pb::Alert| -> anyhow::Result<bool> {
-                    n += 1;
-                    Ok(true)
-                };
-                listen_loop(&opts, false, &mut on_alert).await.map(|_| n)
-            }));
+            let out = tmp.path().join(format!("sub-{i}.jsonl"));
+            let file = std::fs::File::create(&out).context("cannot create a subscriber's output")?;
+            let name = format!("bench-{i}");
+            let child = client(
+                args.clients_nice,
+                &[
+                    "listen".as_ref(),
+                    "--from".as_ref(),
+                    subs.as_ref(),
+                    "--token-file".as_ref(),
+                    sub_file.as_os_str(),
+                    "--replay-all".as_ref(),
+                    "--json".as_ref(),
+                    "--client".as_ref(),
+                    name.as_ref(),
+                ],
+            )?
+            .stdout(file)
+            // Reconnection notices once the daemon has gone are expected; the count below tells the rest.
+            .stderr(std::process::Stdio::null())
+            .spawn()
+            .context("cannot start a subscriber")?;
+            listeners.push((child, out));
         }
-        tokio::time::sleep(Duration::from_millis(200)).await;
-        let target = FeedTarget {
-            addr: daemon.ingest_addr.to_string(),
-            token: producer_token,
-            instrument: None,
-            producer: "glint-bench".into(),
-            tls: None,
-            max_frame: 64 << 20,
-        };
-        let mut reader = glint_wire::RecordingReader::open(&rec, 64 << 20)?;
-        let source = std::iter::from_fn(move || reader.read_frame().map_err(anyhow::Error::from).transpose());
-        let fed = feed::feed(source, &target, args.speed).await?;
+        tokio::time::sleep(Duration::from_millis(500)).await;
+        let fed = client(
+            args.clients_nice,
+            &[
+                "feed".as_ref(),
+                rec.as_os_str(),
+                "--to".as_ref(),
+                ingest.as_ref(),
+                "--token-file".as_ref(),
+                producer_file.as_os_str(),
+                "--speed".as_ref(),
+                speed.as_ref(),
+                "--producer".as_ref(),
+                "glint-bench".as_ref(),
+            ],
+        )?
+        .status()
+        .await
+        .context("cannot run the producer")?;
+        if !fed.success() {
+            anyhow::bail!("the producer failed ({fed})");
+        }
         let metrics = daemon.metrics.clone();
         daemon.shutdown().await?;
+        // The daemon has sent its last alert and closed every connection: what each subscriber printed
+        // by now is all it will get.
+        tokio::time::sleep(Duration::from_millis(300)).await;
         let mut alerts = Vec::new();
-        for l in listeners {
-            alerts.push(tokio::time::timeout(Duration::from_secs(30), l).await???);
+        for (mut child, out) in listeners {
+            let _ = child.kill().await;
+            let text = std::fs::read_to_string(&out).context("cannot read a subscriber's output")?;
+            alerts.push(text.lines().filter(|l| !l.trim().is_empty()).count());
         }
-        Ok::<_, anyhow::Error>((fed, metrics, alerts))
+        let photons = metrics.photons.load(std::sync::atomic::Ordering::Relaxed);
+        Ok::<_, anyhow::Error>((metrics, alerts, photons))
     })?;
-    println!(
-        "fed {} photons in {} frames in {:.2} s: {:.0} photons/s (speed {:?}); daemon took {}, refused {}",
-        fed.photons,
-        fed.frames,
-        fed.wall_s,
-        fed.photons_per_s(),
-        args.speed,
-        fed.acked_photons,
-        fed.refused_photons
-    );
-    println!("alerts received per subscriber: {alerts:?}");
+    println!("daemon took {photons} photons; alerts received per subscriber: {alerts:?}");
     print_latency(&metrics);
     Ok(ExitCode::SUCCESS)
 }

@@ -1,16 +1,18 @@
-//! The alert desk: the one place findings become alerts. It numbers them (global, gap-free sequence), links
-//! assessments and withdrawals to their flash, appends them to the journal and fsyncs before anyone sees them,
-//! then publishes the new sequence number. Subscribers never get a queue from here: each keeps its own cursor
-//! and reads from the desk's in-memory tail of recent alerts or, when further behind, from the journal on disk,
-//! so a slow or absent subscriber cannot hold up ingest or the other subscribers.
+//! The alert desk: the one place findings become alerts. It numbers them (global, gap-free sequence) and links
+//! assessments and withdrawals to their flash on the issuing thread; its own journal thread appends them to the
+//! journal and fsyncs (one fsync for all that queued meanwhile) before anyone sees them, then publishes the new
+//! sequence number. Subscribers never get a queue from here: each keeps its own cursor and reads from the
+//! desk's in-memory tail of recent alerts or, when further behind, from the journal on disk, so a slow or
+//! absent subscriber cannot hold up ingest or the other subscribers.
 
 use std::collections::{BTreeSet, VecDeque};
 use std::path::{Path, PathBuf};
-use std::sync::{Arc, Mutex, RwLock};
+use std::sync::{Arc, Condvar, Mutex, RwLock};
 
 use glint_engine::Finding;
 use glint_wire::pb;
 use tokio::sync::watch;
+use tokio_util::sync::CancellationToken;
 
 use crate::alerts::{self, Sequencer};
 use crate::config::JournalConfig;
@@ -36,6 +38,9 @@ pub(crate) enum DeskError {
     /// The journal failed; the desk stops issuing (a daemon that cannot journal must not send).
     #[error("{0}")]
     Journal(#[from] JournalError),
+    /// The journal failed while writing these alerts; the desk has stopped.
+    #[error("the journal failed: {0}")]
+    Failed(String),
     /// An earlier journal failure stopped the desk.
     #[error("the alert desk stopped after a journal failure")]
     Stopped,
@@ -61,21 +66,66 @@ pub(crate) enum WithdrawError {
     Desk(#[from] DeskError),
 }
 
-struct Inner {
-    journal: Journal,
-    sequencer: Sequencer,
-    /// Ids of withdrawn alerts within the journal kept (grows with withdrawals, bounded by retention).
-    withdrawn: BTreeSet<String>,
-    stopped: bool,
+/// Alerts numbered and waiting for the committer. When this many wait, whoever issues the next one waits too
+/// (the same policy as everywhere else: nothing is dropped, ingest slows down). A batch larger than this is
+/// still taken whole when nothing else waits.
+pub(crate) const COMMIT_QUEUE: usize = 4096;
+
+/// What a caller waiting on its alerts (an operator's withdrawal, a test) gets back once they are journalled.
+type Reply = std::sync::mpsc::SyncSender<Result<Vec<Arc<pb::Alert>>, DeskError>>;
+
+/// Alerts of one issuing call, numbered, on their way to the journal.
+struct Pending {
+    alerts: Vec<pb::Alert>,
+    stamps: Stamps,
+    reply: Option<Reply>,
 }
 
-/// Numbers, journals and publishes alerts. Shared (`Arc`) by engine threads, subscriber tasks and operators.
-pub(crate) struct Desk {
-    inner: Mutex<Inner>,
+/// The numbering side of the desk: cheap, taken by engine threads, the fit worker and operators.
+struct Numbering {
+    sequencer: Sequencer,
+    /// Ids of withdrawn alerts within the journal kept (grows with withdrawals, bounded by retention). Noted
+    /// when the withdrawal is numbered, so a second one of the same alert is refused even before the first is
+    /// on disk.
+    withdrawn: BTreeSet<String>,
+    queue: Vec<Pending>,
+    queued_alerts: usize,
+    /// Newest sequence number handed out, and newest one journalled and published.
+    assigned: u64,
+    committed: u64,
+    /// The journal failed: nothing more is numbered.
+    stopped: bool,
+    /// The desk is being dropped: the committer drains the queue and ends.
+    closing: bool,
+}
+
+/// State shared by the desk's handle and its committer thread.
+struct Shared {
+    numbering: Mutex<Numbering>,
+    /// Wakes the committer when alerts are queued.
+    queued: Condvar,
+    /// Wakes issuers waiting for room and flushes waiting for the queue to drain.
+    settled: Condvar,
+    /// Only the committer appends; `sync` at shutdown and nothing else also takes it.
+    journal: Mutex<Journal>,
     tail: RwLock<VecDeque<Arc<pb::Alert>>>,
     published: watch::Sender<u64>,
-    journal_dir: PathBuf,
     metrics: Arc<Metrics>,
+    /// Cancelled when the journal fails, which stops the daemon: one that cannot journal must not send.
+    failure: CancellationToken,
+}
+
+/// Numbers, journals and publishes alerts. Shared (`Arc`) by engine threads, the fit worker, subscriber
+/// tasks and operators.
+///
+/// Numbering happens on the caller's thread, under a lock held for microseconds. Writing and fsyncing happen
+/// on the desk's own committer thread, which takes every alert queued while the previous fsync ran and
+/// writes them with one fsync (group commit). So an engine thread never waits on the disk: a slow fsync
+/// delays the alerts in it, not the photons behind them, and one fsync covers alerts that arrive together.
+pub(crate) struct Desk {
+    shared: Arc<Shared>,
+    committer: Option<std::thread::JoinHandle<()>>,
+    journal_dir: PathBuf,
 }
 
 impl std::fmt::Debug for Desk {
@@ -92,13 +142,18 @@ fn lock<T>(m: &Mutex<T>) -> std::sync::MutexGuard<'_, T> {
     m.lock().unwrap_or_else(std::sync::PoisonError::into_inner)
 }
 
+fn wait<'a, T>(c: &Condvar, g: std::sync::MutexGuard<'a, T>) -> std::sync::MutexGuard<'a, T> {
+    c.wait(g).unwrap_or_else(std::sync::PoisonError::into_inner)
+}
+
 impl Desk {
-    /// Opens the journal in `dir` (cutting a torn tail, applying retention) and loads its newest alerts into
-    /// the in-memory tail.
+    /// Opens the journal in `dir` (cutting a torn tail, applying retention), loads its newest alerts into
+    /// the in-memory tail and starts the committer thread. `failure` is cancelled if the journal ever fails.
     pub(crate) fn open(
         dir: &Path,
         cfg: &JournalConfig,
         metrics: Arc<Metrics>,
+        failure: CancellationToken,
     ) -> Result<(Self, OpenReport), DeskError> {
         let mut tail = VecDeque::with_capacity(TAIL_CAPACITY);
         let mut withdrawn = BTreeSet::new();
@@ -121,55 +176,105 @@ impl Desk {
         let last = journal.last_seq();
         tail.retain(|a: &Arc<pb::Alert>| a.seq <= last && a.seq >= journal.first_seq());
         let (published, _) = watch::channel(last);
-        let desk = Self {
-            inner: Mutex::new(Inner {
+        let shared = Arc::new(Shared {
+            numbering: Mutex::new(Numbering {
                 sequencer: Sequencer::starting_at(last + 1),
-                journal,
                 withdrawn,
+                queue: Vec::new(),
+                queued_alerts: 0,
+                assigned: last,
+                committed: last,
                 stopped: false,
+                closing: false,
             }),
+            queued: Condvar::new(),
+            settled: Condvar::new(),
+            journal: Mutex::new(journal),
             tail: RwLock::new(tail),
             published,
-            journal_dir: dir.to_path_buf(),
             metrics,
+            failure,
+        });
+        let s = shared.clone();
+        let committer = std::thread::Builder::new()
+            .name("journal".into())
+            .spawn(move || s.run_committer())
+            .map_err(|e| {
+                DeskError::Journal(JournalError::Io {
+                    path: dir.to_path_buf(),
+                    action: "start the thread for",
+                    source: e,
+                })
+            })?;
+        let desk = Self {
+            shared,
+            committer: Some(committer),
+            journal_dir: dir.to_path_buf(),
         };
         Ok((desk, report))
     }
 
     /// Newest published (journalled and fsynced) sequence number.
     pub(crate) fn last_seq(&self) -> u64 {
-        *self.published.borrow()
+        *self.shared.published.borrow()
     }
 
     /// Watches the newest published sequence number.
     pub(crate) fn watch(&self) -> watch::Receiver<u64> {
-        self.published.subscribe()
+        self.shared.published.subscribe()
     }
 
-    /// Issues the findings of one engine step as alerts: numbered in order, journalled, fsynced once, then
-    /// published. Returns the alerts issued (with their latency stamps up to the journal).
+    /// Numbers the findings of one engine step and queues them for the journal; returns at once. They are
+    /// published, and reach subscribers, once the committer has fsynced them. An error means the journal
+    /// failed earlier and the desk issues nothing more.
     pub(crate) fn issue(
         &self,
         instrument: &str,
         findings: &[Finding],
         stamps: Stamps,
-    ) -> Result<Vec<Arc<pb::Alert>>, DeskError> {
+    ) -> Result<(), DeskError> {
         if findings.is_empty() {
-            return Ok(Vec::new());
+            return Ok(());
         }
-        let mut g = lock(&self.inner);
-        let now = now_unix_ns();
-        let issued_gps = unix_ns_to_gps_ns(now);
-        let mut alerts = Vec::with_capacity(findings.len());
-        for f in findings {
-            let a = g.sequencer.assign(instrument, f, issued_gps);
-            alerts.push(a);
-        }
-        self.commit(&mut g, alerts, stamps, now)
+        let mut g = self.room_for(findings.len())?;
+        let issued_gps = unix_ns_to_gps_ns(now_unix_ns());
+        let alerts = findings
+            .iter()
+            .map(|f| g.sequencer.assign(instrument, f, issued_gps))
+            .collect();
+        self.shared.enqueue(&mut g, alerts, stamps, None);
+        Ok(())
     }
 
-    /// An operator's withdrawal of the alert `alert_id`: journalled and published like any alert. Runs file
-    /// I/O: call it from a blocking thread.
+    /// Waits until the queue has room for `n` alerts (or is empty) and returns the numbering lock.
+    fn room_for(&self, n: usize) -> Result<std::sync::MutexGuard<'_, Numbering>, DeskError> {
+        let mut g = lock(&self.shared.numbering);
+        loop {
+            if g.stopped {
+                return Err(DeskError::Stopped);
+            }
+            if g.queued_alerts == 0 || g.queued_alerts + n <= COMMIT_QUEUE {
+                return Ok(g);
+            }
+            g = wait(&self.shared.settled, g);
+        }
+    }
+
+    /// Queues alerts already numbered under `g` and waits until they are journalled and published.
+    fn issue_and_wait(
+        &self,
+        mut g: std::sync::MutexGuard<'_, Numbering>,
+        alerts: Vec<pb::Alert>,
+        stamps: Stamps,
+    ) -> Result<Vec<Arc<pb::Alert>>, DeskError> {
+        let (tx, rx) = std::sync::mpsc::sync_channel(1);
+        self.shared.enqueue(&mut g, alerts, stamps, Some(tx));
+        drop(g);
+        rx.recv().map_err(|_| DeskError::Stopped)?
+    }
+
+    /// An operator's withdrawal of the alert `alert_id`: journalled and published like any alert; returns once
+    /// it is on disk. Runs file I/O and waits: call it from a blocking thread.
     pub(crate) fn withdraw(
         &self,
         alert_id: &str,
@@ -186,12 +291,11 @@ impl Desk {
         if target.kind == pb::AlertKind::Withdrawal as i32 {
             return Err(WithdrawError::IsWithdrawal(alert_id.to_string()));
         }
-        let mut g = lock(&self.inner);
+        let mut g = self.room_for(1)?;
         if g.withdrawn.contains(alert_id) {
             return Err(WithdrawError::AlreadyWithdrawn(alert_id.to_string()));
         }
-        let now = now_unix_ns();
-        let issued_gps = unix_ns_to_gps_ns(now);
+        let issued_gps = unix_ns_to_gps_ns(now_unix_ns());
         let mut a = g.sequencer.operator_withdrawal(alert_id, reason, issued_gps);
         // The withdrawal names the instrument and carries the trigger of what it withdraws, so a subscriber
         // filtering by place can match it; the id is stamped again from those.
@@ -200,74 +304,161 @@ impl Desk {
         let seq = a.seq;
         alerts::stamp(&mut a, seq, issued_gps);
         tracing::warn!(alert = alert_id, withdrawal = %a.id, operator, reason, "operator withdrawal");
-        let mut out = self.commit(&mut g, vec![a], Stamps::default(), now)?;
+        let mut out = self.issue_and_wait(g, vec![a], Stamps::default())?;
         out.pop().ok_or(WithdrawError::Desk(DeskError::Stopped))
     }
 
-    fn commit(
-        &self,
-        g: &mut Inner,
-        mut alerts: Vec<pb::Alert>,
-        stamps: Stamps,
-        now: i64,
-    ) -> Result<Vec<Arc<pb::Alert>>, DeskError> {
+    /// Waits until every alert numbered so far is journalled, then makes sure the journal is on disk (every
+    /// commit already fsyncs; this is the shutdown stage). Blocking.
+    pub(crate) fn sync(&self) -> Result<(), DeskError> {
+        let mut g = lock(&self.shared.numbering);
+        while g.committed < g.assigned && !g.stopped {
+            g = wait(&self.shared.settled, g);
+        }
         if g.stopped {
             return Err(DeskError::Stopped);
         }
-        let written = alerts
-            .iter()
-            .try_for_each(|a| g.journal.append(a, now))
-            .and_then(|()| g.journal.sync());
-        if let Err(e) = written {
-            g.stopped = true;
-            return Err(e.into());
+        drop(g);
+        Ok(lock(&self.shared.journal).sync()?)
+    }
+}
+
+impl Drop for Desk {
+    /// The committer drains what is queued, then ends.
+    fn drop(&mut self) {
+        lock(&self.shared.numbering).closing = true;
+        self.shared.queued.notify_all();
+        if let Some(h) = self.committer.take() {
+            let _ = h.join();
         }
-        let journaled = now_unix_ns();
-        let mut out = Vec::with_capacity(alerts.len());
-        let mut tail = self
-            .tail
-            .write()
-            .unwrap_or_else(std::sync::PoisonError::into_inner);
-        for a in alerts.iter_mut() {
+    }
+}
+
+impl Shared {
+    fn enqueue(&self, g: &mut Numbering, alerts: Vec<pb::Alert>, stamps: Stamps, reply: Option<Reply>) {
+        for a in &alerts {
             if !a.withdrawn_id.is_empty() {
                 g.withdrawn.insert(a.withdrawn_id.clone());
             }
-            if stamps.received_unix_ns != 0 {
-                a.latency = Some(pb::Latency {
-                    received_unix_ns: stamps.received_unix_ns,
-                    decided_unix_ns: stamps.decided_unix_ns,
-                    journaled_unix_ns: journaled,
-                    ..Default::default()
-                });
-                self.metrics
-                    .record(Stage::Decide, stamps.received_unix_ns, stamps.decided_unix_ns);
-                self.metrics
-                    .record(Stage::Journal, stamps.decided_unix_ns, journaled);
-                if a.kind == pb::AlertKind::Flash as i32 {
-                    let (r, d) = (stamps.received_unix_ns, stamps.decided_unix_ns);
-                    self.metrics.record(Stage::FlashDecide, r, d);
+        }
+        if let Some(last) = alerts.last() {
+            g.assigned = g.assigned.max(last.seq);
+        }
+        g.queued_alerts += alerts.len();
+        g.queue.push(Pending {
+            alerts,
+            stamps,
+            reply,
+        });
+        self.queued.notify_one();
+    }
+
+    /// The committer thread: takes everything queued, appends it, fsyncs once, publishes, and again.
+    fn run_committer(&self) {
+        loop {
+            let mut g = lock(&self.numbering);
+            while g.queue.is_empty() && !g.closing {
+                g = wait(&self.queued, g);
+            }
+            if g.queue.is_empty() {
+                return;
+            }
+            let batch = std::mem::take(&mut g.queue);
+            g.queued_alerts = 0;
+            drop(g);
+            self.settled.notify_all();
+            self.commit(batch);
+        }
+    }
+
+    fn commit(&self, batch: Vec<Pending>) {
+        let now = now_unix_ns();
+        let written = {
+            let mut j = lock(&self.journal);
+            batch
+                .iter()
+                .flat_map(|p| &p.alerts)
+                .try_for_each(|a| j.append(a, now))
+                .and_then(|()| j.sync())
+        };
+        if let Err(e) = written {
+            let n: usize = batch.iter().map(|p| p.alerts.len()).sum();
+            tracing::error!("cannot journal {n} alert(s), the desk stops: {e}");
+            let mut g = lock(&self.numbering);
+            g.stopped = true;
+            // Whatever was queued behind them is not journalled either.
+            g.queue.clear();
+            g.queued_alerts = 0;
+            drop(g);
+            self.failure.cancel();
+            self.settled.notify_all();
+            for p in batch {
+                if let Some(r) = p.reply {
+                    let _ = r.send(Err(DeskError::Failed(e.to_string())));
                 }
             }
-            self.metrics.count_alert(a.kind);
-            let a = Arc::new(std::mem::take(a));
-            if tail.len() == TAIL_CAPACITY {
-                tail.pop_front();
+            return;
+        }
+        let journaled = now_unix_ns();
+        self.metrics
+            .journal_fsyncs
+            .fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+        let mut replies = Vec::new();
+        let mut last = None;
+        {
+            let mut tail = self
+                .tail
+                .write()
+                .unwrap_or_else(std::sync::PoisonError::into_inner);
+            for p in batch {
+                let mut out = Vec::with_capacity(p.alerts.len());
+                for mut a in p.alerts {
+                    self.stamp_latency(&mut a, p.stamps, journaled);
+                    self.metrics.count_alert(a.kind);
+                    tracing::info!(instrument = %a.instrument, seq = a.seq, id = %a.id, kind = alerts::kind_name(a.kind), "alert issued");
+                    let a = Arc::new(a);
+                    if tail.len() == TAIL_CAPACITY {
+                        tail.pop_front();
+                    }
+                    tail.push_back(a.clone());
+                    last = Some(a.seq);
+                    out.push(a);
+                }
+                if let Some(r) = p.reply {
+                    replies.push((r, out));
+                }
             }
-            tail.push_back(a.clone());
-            out.push(a);
         }
-        drop(tail);
-        if let Some(last) = out.last() {
-            self.published.send_replace(last.seq);
+        if let Some(last) = last {
+            self.published.send_replace(last);
+            lock(&self.numbering).committed = last;
+            self.settled.notify_all();
         }
-        Ok(out)
+        for (r, out) in replies {
+            let _ = r.send(Ok(out));
+        }
     }
 
-    /// Makes sure everything appended is on disk (every commit already fsyncs; this is the shutdown stage).
-    pub(crate) fn sync(&self) -> Result<(), DeskError> {
-        Ok(lock(&self.inner).journal.sync()?)
+    fn stamp_latency(&self, a: &mut pb::Alert, stamps: Stamps, journaled: i64) {
+        if stamps.received_unix_ns == 0 {
+            return;
+        }
+        a.latency = Some(pb::Latency {
+            received_unix_ns: stamps.received_unix_ns,
+            decided_unix_ns: stamps.decided_unix_ns,
+            journaled_unix_ns: journaled,
+            ..Default::default()
+        });
+        let (r, d) = (stamps.received_unix_ns, stamps.decided_unix_ns);
+        self.metrics.record(Stage::Decide, r, d);
+        self.metrics.record(Stage::Journal, d, journaled);
+        if a.kind == pb::AlertKind::Flash as i32 {
+            self.metrics.record(Stage::FlashDecide, r, d);
+        }
     }
+}
 
+impl Desk {
     /// Up to `max` published alerts with seq > `after`, oldest first, from memory when the tail holds them;
     /// `None` when they must be read from disk (see [`read_from_disk`](Self::read_from_disk)).
     pub(crate) fn read_cached(&self, after: u64, max: usize) -> Option<Vec<Arc<pb::Alert>>> {
@@ -276,6 +467,7 @@ impl Desk {
             return Some(Vec::new());
         }
         let tail = self
+            .shared
             .tail
             .read()
             .unwrap_or_else(std::sync::PoisonError::into_inner);
@@ -334,7 +526,7 @@ pub(crate) mod tests {
 
     /// Issues `n` made-up flash alerts straight through the commit path (no engine needed).
     pub(crate) fn issue_test_flashes(desk: &Desk, n: usize, received_unix_ns: i64) -> Vec<Arc<pb::Alert>> {
-        let mut g = lock(&desk.inner);
+        let mut g = desk.room_for(n).unwrap();
         let now = now_unix_ns();
         let mut alerts = Vec::new();
         for _ in 0..n {
@@ -356,14 +548,14 @@ pub(crate) mod tests {
             received_unix_ns,
             decided_unix_ns: received_unix_ns,
         };
-        desk.commit(&mut g, alerts, stamps, now).unwrap()
+        desk.issue_and_wait(g, alerts, stamps).unwrap()
     }
 
     #[test]
     fn alerts_are_numbered_journalled_published_and_read_back() {
         let tmp = tempfile::tempdir().unwrap();
         let m = Arc::new(Metrics::new());
-        let (desk, _) = Desk::open(tmp.path(), &journal_cfg(), m.clone()).unwrap();
+        let (desk, _) = Desk::open(tmp.path(), &journal_cfg(), m.clone(), CancellationToken::new()).unwrap();
         let mut w = desk.watch();
         assert_eq!(desk.last_seq(), 0);
         let got = issue_test_flashes(&desk, 3, now_unix_ns());
@@ -409,7 +601,7 @@ pub(crate) mod tests {
         ));
         drop(desk);
         // Reopened: numbering continues, the tail is reloaded, the withdrawal is remembered.
-        let (desk, rep) = Desk::open(tmp.path(), &journal_cfg(), m).unwrap();
+        let (desk, rep) = Desk::open(tmp.path(), &journal_cfg(), m, CancellationToken::new()).unwrap();
         assert_eq!((desk.last_seq(), rep.records), (4, 4));
         assert_eq!(desk.read_cached(0, 10).unwrap().len(), 4);
         assert!(matches!(
@@ -422,7 +614,13 @@ pub(crate) mod tests {
     #[test]
     fn old_alerts_come_from_disk_once_the_tail_has_moved_on() {
         let tmp = tempfile::tempdir().unwrap();
-        let (desk, _) = Desk::open(tmp.path(), &journal_cfg(), Arc::new(Metrics::new())).unwrap();
+        let (desk, _) = Desk::open(
+            tmp.path(),
+            &journal_cfg(),
+            Arc::new(Metrics::new()),
+            CancellationToken::new(),
+        )
+        .unwrap();
         let n = TAIL_CAPACITY + 10;
         issue_test_flashes(&desk, n, 0);
         assert!(desk.read_cached(0, 5).is_none());
@@ -436,5 +634,99 @@ pub(crate) mod tests {
             recent.iter().map(|a| a.seq).collect::<Vec<_>>(),
             vec![n as u64 - 2, n as u64 - 1, n as u64]
         );
+    }
+
+    /// Flashes of `candidates` from one instrument, as an engine would hand them over.
+    fn flashes(candidates: std::ops::Range<u64>) -> Vec<Finding> {
+        candidates
+            .map(|c| {
+                let mut f = crate::issuing::tests::flash(&[1_000, 2_000]);
+                f.candidate = c;
+                // Tells the flashes apart in the journal (alerts do not carry the engine's candidate).
+                f.end_ns = 10_000 + c as i64;
+                Finding::Flash(f)
+            })
+            .collect()
+    }
+
+    #[test]
+    fn issuing_does_not_wait_for_the_disk_and_one_fsync_covers_what_queued_meanwhile() {
+        let tmp = tempfile::tempdir().unwrap();
+        let m = Arc::new(Metrics::new());
+        let (desk, _) = Desk::open(tmp.path(), &journal_cfg(), m.clone(), CancellationToken::new()).unwrap();
+        let desk = Arc::new(desk);
+        let fsyncs = || m.journal_fsyncs.load(std::sync::atomic::Ordering::Relaxed);
+        // A disk that does not answer: hold the journal while an engine issues 100 flashes one by one.
+        let held = lock(&desk.shared.journal);
+        let (done_tx, done) = std::sync::mpsc::channel();
+        let d = desk.clone();
+        let engine = std::thread::spawn(move || {
+            for f in flashes(0..100) {
+                d.issue("ventisca-array", std::slice::from_ref(&f), Stamps::default())
+                    .unwrap();
+            }
+            done_tx.send(()).unwrap();
+        });
+        // Had issuing waited on the journal, this would time out.
+        done.recv_timeout(Duration::from_secs(10))
+            .expect("issuing waited for the journal");
+        engine.join().unwrap();
+        assert_eq!(desk.last_seq(), 0, "nothing is published before it is journalled");
+        drop(held);
+        desk.sync().unwrap();
+        assert_eq!(desk.last_seq(), 100);
+        // The committer took at most the first flash before it blocked; the other 99 went in one fsync.
+        assert!(fsyncs() <= 2, "{} fsyncs for 100 alerts", fsyncs());
+        let disk = desk.read_from_disk(0, 200).unwrap();
+        assert_eq!(
+            disk.iter().map(|a| a.seq).collect::<Vec<_>>(),
+            (1..=100).collect::<Vec<_>>()
+        );
+    }
+
+    #[test]
+    fn issuers_on_several_threads_get_one_gap_free_order_each_keeping_its_own() {
+        let tmp = tempfile::tempdir().unwrap();
+        let (desk, _) = Desk::open(
+            tmp.path(),
+            &journal_cfg(),
+            Arc::new(Metrics::new()),
+            CancellationToken::new(),
+        )
+        .unwrap();
+        let desk = Arc::new(desk);
+        let threads: Vec<_> = (0..4)
+            .map(|i| {
+                let d = desk.clone();
+                std::thread::spawn(move || {
+                    let inst = format!("inst-{i}");
+                    // Singly and in small groups, as engine steps and the fit worker do.
+                    let all = flashes(0..300);
+                    for chunk in all.chunks(1 + i) {
+                        d.issue(&inst, chunk, Stamps::default()).unwrap();
+                    }
+                })
+            })
+            .collect();
+        for t in threads {
+            t.join().unwrap();
+        }
+        desk.sync().unwrap();
+        assert_eq!(desk.last_seq(), 1200);
+        let disk = desk.read_from_disk(0, 2000).unwrap();
+        assert_eq!(
+            disk.iter().map(|a| a.seq).collect::<Vec<_>>(),
+            (1..=1200).collect::<Vec<_>>()
+        );
+        // Each issuer's alerts are in the order it issued them (candidate order here).
+        for i in 0..4 {
+            let inst = format!("inst-{i}");
+            let mine: Vec<i64> = disk
+                .iter()
+                .filter(|a| a.instrument == inst)
+                .map(|a| a.trigger.as_ref().unwrap().end_gps_ns - 10_000)
+                .collect();
+            assert_eq!(mine, (0..300).collect::<Vec<_>>(), "{inst}");
+        }
     }
 }

@@ -20,8 +20,8 @@ pub(crate) const FIT_QUEUE: usize = 64;
 /// Photon-time buffers kept for reuse by [`Arrivals`].
 const SPARE_BUFFERS: usize = 16;
 
-/// Issues findings through the desk and logs each alert. A desk failure (the journal cannot be written)
-/// stops the daemon: one that cannot journal must not send.
+/// Hands findings to the desk, which numbers them at once and journals them on its own thread. A desk that
+/// has stopped (the journal failed) stops the daemon: one that cannot journal must not send.
 pub(crate) fn issue(
     desk: &Desk,
     instrument: &str,
@@ -29,19 +29,9 @@ pub(crate) fn issue(
     stamps: Stamps,
     fatal: &CancellationToken,
 ) {
-    if findings.is_empty() {
-        return;
-    }
-    match desk.issue(instrument, findings, stamps) {
-        Ok(alerts) => {
-            for a in alerts {
-                tracing::info!(instrument, seq = a.seq, id = %a.id, kind = crate::alerts::kind_name(a.kind), "alert issued");
-            }
-        }
-        Err(e) => {
-            tracing::error!(instrument, "cannot issue {} alert(s): {e}", findings.len());
-            fatal.cancel();
-        }
+    if let Err(e) = desk.issue(instrument, findings, stamps) {
+        tracing::error!(instrument, "cannot issue {} alert(s): {e}", findings.len());
+        fatal.cancel();
     }
 }
 
@@ -301,11 +291,12 @@ pub(crate) fn defer(tx: &mpsc::SyncSender<FitTask>, task: FitTask, desk: &Desk, 
 
 #[cfg(test)]
 #[allow(clippy::unwrap_used)] // tests may unwrap
-mod tests {
+pub(crate) mod tests {
     use super::*;
     use glint_engine::PhotonRec;
 
-    fn flash(times: &[i64]) -> Flash {
+    /// A flash made of photons at `times`, for tests here and in the desk.
+    pub(crate) fn flash(times: &[i64]) -> Flash {
         Flash {
             candidate: 1,
             start_ns: times[0] - 1,

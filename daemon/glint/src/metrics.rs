@@ -99,6 +99,8 @@ pub(crate) struct Metrics {
     pub(crate) subscribers: AtomicI64,
     /// Subscribers dropped for an unwritable socket.
     pub(crate) subscribers_dropped: AtomicU64,
+    /// Journal fsyncs by the desk's committer; alerts over fsyncs is how much group commit saves.
+    pub(crate) journal_fsyncs: AtomicU64,
 }
 
 /// Longest latency the histograms track: one hour in nanoseconds (longer values are clamped).
@@ -129,6 +131,7 @@ impl Metrics {
             producers: AtomicI64::new(0),
             subscribers: AtomicI64::new(0),
             subscribers_dropped: AtomicU64::new(0),
+            journal_fsyncs: AtomicU64::new(0),
         }
     }
 
@@ -211,6 +214,11 @@ impl Metrics {
                 "glint_subscribers_dropped_total",
                 "Subscribers dropped for an unwritable socket.",
                 get(&self.subscribers_dropped),
+            ),
+            (
+                "glint_journal_fsyncs_total",
+                "Journal fsyncs (each covers every alert queued while the previous one ran).",
+                get(&self.journal_fsyncs),
             ),
         ];
         for (name, help, v) in counters {

@@ -467,6 +467,7 @@ mod tests {
             &cfg.daemon.state_dir.join("journal"),
             &cfg.journal,
             Arc::new(Metrics::new()),
+            tokio_util::sync::CancellationToken::new(),
         )
         .unwrap();
         crate::desk::tests::issue_test_flashes(&desk, PREFILLED, 0);
