@@ -234,6 +234,17 @@ fn print_latency(metrics: &Metrics) {
     }
 }
 
+/// CPU time the hypervisor gave to other guests (the `steal` column of /proc/stat, all cores), seconds;
+/// None where that is not available. On a virtual machine it is the first thing to look at when latency
+/// tails differ between runs of the same binary.
+fn stolen_cpu_s() -> Option<f64> {
+    let stat = std::fs::read_to_string("/proc/stat").ok()?;
+    let cpu = stat.lines().next()?.strip_prefix("cpu ")?;
+    let steal: f64 = cpu.split_whitespace().nth(7)?.parse().ok()?;
+    // USER_HZ is 100 on every Linux build glint targets.
+    Some(steal / 100.0)
+}
+
 /// A client process of the benchmark: this same executable running `glint feed` or `glint listen`, under
 /// `nice` when asked.
 fn client(nice: u8, args: &[&std::ffi::OsStr]) -> anyhow::Result<tokio::process::Command> {
@@ -325,6 +336,7 @@ pub(crate) fn bench(args: BenchArgs) -> anyhow::Result<ExitCode> {
             listeners.push((child, out));
         }
         tokio::time::sleep(Duration::from_millis(500)).await;
+        let (stolen_before, fed_from) = (stolen_cpu_s(), Instant::now());
         let fed = client(
             args.clients_nice,
             &[
@@ -345,6 +357,14 @@ pub(crate) fn bench(args: BenchArgs) -> anyhow::Result<ExitCode> {
         .context("cannot run the producer")?;
         if !fed.success() {
             anyhow::bail!("the producer failed ({fed})");
+        }
+        if let (Some(a), Some(b)) = (stolen_before, stolen_cpu_s()) {
+            let wall = fed_from.elapsed().as_secs_f64();
+            println!(
+                "CPU stolen by the hypervisor while feeding: {:.1} s over {wall:.0} s ({:.1}% of the machine's cores)",
+                b - a,
+                100.0 * (b - a) / (wall * std::thread::available_parallelism().map_or(1.0, |n| n.get() as f64))
+            );
         }
         let metrics = daemon.metrics.clone();
         daemon.shutdown().await?;
