@@ -1,6 +1,8 @@
 #!/usr/bin/env bash
 # The live daemon's benchmark (not a test): throughput and alert latency of `glint run` with three
-# subscribers, measured in-process by the hidden `glint bench-live` subcommand. Run from the repository root:
+# subscribers, measured by the hidden `glint bench-live` subcommand (the daemon in-process, the producer and the
+# subscribers as `glint feed` / `glint listen` child processes; it also prints the CPU the hypervisor stole).
+# Run from the repository root:
 #   bash daemon/glint/benches/live.sh
 # 1. stress-20khz at max speed: sustained photons per second through ingest and the engine.
 # 2. stress-bursts (20 kHz background, 109 bursts over 20 minutes) at 5x real time (100k photons/s): latency from the read of

@@ -214,6 +214,9 @@ pub(crate) struct BenchArgs {
     /// lets the daemon's threads run first when both want a core.
     #[arg(long, default_value_t = 0, value_name = "N")]
     clients_nice: u8,
+    /// Keep each subscriber's alerts (JSON lines, with their latency stamps) in this directory.
+    #[arg(long, value_name = "DIR")]
+    keep_alerts: Option<std::path::PathBuf>,
 }
 
 fn print_latency(metrics: &Metrics) {
@@ -375,6 +378,11 @@ pub(crate) fn bench(args: BenchArgs) -> anyhow::Result<ExitCode> {
         for (mut child, out) in listeners {
             let _ = child.kill().await;
             let text = std::fs::read_to_string(&out).context("cannot read a subscriber's output")?;
+            if let (Some(dir), Some(name)) = (&args.keep_alerts, out.file_name()) {
+                std::fs::create_dir_all(dir).with_context(|| format!("cannot create {}", dir.display()))?;
+                std::fs::write(dir.join(name), &text)
+                    .with_context(|| format!("cannot write into {}", dir.display()))?;
+            }
             alerts.push(text.lines().filter(|l| !l.trim().is_empty()).count());
         }
         let photons = metrics.photons.load(std::sync::atomic::Ordering::Relaxed);
