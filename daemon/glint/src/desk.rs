@@ -524,6 +524,11 @@ pub(crate) mod tests {
         }
     }
 
+    /// A desk on a fresh journal in `dir`.
+    fn open_desk(dir: &Path, metrics: Arc<Metrics>) -> (Desk, OpenReport) {
+        Desk::open(dir, &journal_cfg(), metrics, CancellationToken::new()).unwrap()
+    }
+
     /// Issues `n` made-up flash alerts straight through the commit path (no engine needed).
     pub(crate) fn issue_test_flashes(desk: &Desk, n: usize, received_unix_ns: i64) -> Vec<Arc<pb::Alert>> {
         let mut g = desk.room_for(n).unwrap();
@@ -555,7 +560,7 @@ pub(crate) mod tests {
     fn alerts_are_numbered_journalled_published_and_read_back() {
         let tmp = tempfile::tempdir().unwrap();
         let m = Arc::new(Metrics::new());
-        let (desk, _) = Desk::open(tmp.path(), &journal_cfg(), m.clone(), CancellationToken::new()).unwrap();
+        let (desk, _) = open_desk(tmp.path(), m.clone());
         let mut w = desk.watch();
         assert_eq!(desk.last_seq(), 0);
         let got = issue_test_flashes(&desk, 3, now_unix_ns());
@@ -601,7 +606,7 @@ pub(crate) mod tests {
         ));
         drop(desk);
         // Reopened: numbering continues, the tail is reloaded, the withdrawal is remembered.
-        let (desk, rep) = Desk::open(tmp.path(), &journal_cfg(), m, CancellationToken::new()).unwrap();
+        let (desk, rep) = open_desk(tmp.path(), m);
         assert_eq!((desk.last_seq(), rep.records), (4, 4));
         assert_eq!(desk.read_cached(0, 10).unwrap().len(), 4);
         assert!(matches!(
@@ -614,13 +619,7 @@ pub(crate) mod tests {
     #[test]
     fn old_alerts_come_from_disk_once_the_tail_has_moved_on() {
         let tmp = tempfile::tempdir().unwrap();
-        let (desk, _) = Desk::open(
-            tmp.path(),
-            &journal_cfg(),
-            Arc::new(Metrics::new()),
-            CancellationToken::new(),
-        )
-        .unwrap();
+        let (desk, _) = open_desk(tmp.path(), Arc::new(Metrics::new()));
         let n = TAIL_CAPACITY + 10;
         issue_test_flashes(&desk, n, 0);
         assert!(desk.read_cached(0, 5).is_none());
@@ -653,7 +652,7 @@ pub(crate) mod tests {
     fn issuing_does_not_wait_for_the_disk_and_one_fsync_covers_what_queued_meanwhile() {
         let tmp = tempfile::tempdir().unwrap();
         let m = Arc::new(Metrics::new());
-        let (desk, _) = Desk::open(tmp.path(), &journal_cfg(), m.clone(), CancellationToken::new()).unwrap();
+        let (desk, _) = open_desk(tmp.path(), m.clone());
         let desk = Arc::new(desk);
         let fsyncs = || m.journal_fsyncs.load(std::sync::atomic::Ordering::Relaxed);
         // A disk that does not answer: hold the journal while an engine issues 100 flashes one by one.
@@ -687,13 +686,7 @@ pub(crate) mod tests {
     #[test]
     fn issuers_on_several_threads_get_one_gap_free_order_each_keeping_its_own() {
         let tmp = tempfile::tempdir().unwrap();
-        let (desk, _) = Desk::open(
-            tmp.path(),
-            &journal_cfg(),
-            Arc::new(Metrics::new()),
-            CancellationToken::new(),
-        )
-        .unwrap();
+        let (desk, _) = open_desk(tmp.path(), Arc::new(Metrics::new()));
         let desk = Arc::new(desk);
         let threads: Vec<_> = (0..4)
             .map(|i| {
