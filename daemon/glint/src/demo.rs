@@ -298,10 +298,7 @@ pub(crate) fn bench(args: BenchArgs) -> anyhow::Result<ExitCode> {
     let (producer_file, sub_file) = (tmp.path().join("producer.token"), tmp.path().join("sub.token"));
     std::fs::write(&producer_file, &producer_token).context("cannot write a token file")?;
     std::fs::write(&sub_file, &sub_token).context("cannot write a token file")?;
-    let speed = match args.speed {
-        Speed::Max => "max".to_string(),
-        Speed::Times(x) => x.to_string(),
-    };
+    let speed = args.speed.to_string();
     let rt = tokio::runtime::Builder::new_multi_thread()
         .enable_all()
         .build()

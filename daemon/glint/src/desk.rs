@@ -403,36 +403,41 @@ impl Shared {
         self.metrics
             .journal_fsyncs
             .fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+        // Stamped, counted and logged outside the tail's lock: subscriber tasks read the tail meanwhile.
         let mut replies = Vec::new();
-        let mut last = None;
+        let mut done = Vec::new();
+        for p in batch {
+            let mut out = Vec::with_capacity(p.alerts.len());
+            for mut a in p.alerts {
+                self.stamp_latency(&mut a, p.stamps, journaled);
+                self.metrics.count_alert(a.kind);
+                out.push(Arc::new(a));
+            }
+            done.extend(out.iter().cloned());
+            if let Some(r) = p.reply {
+                replies.push((r, out));
+            }
+        }
+        let last = done.last().map(|a| a.seq);
         {
             let mut tail = self
                 .tail
                 .write()
                 .unwrap_or_else(std::sync::PoisonError::into_inner);
-            for p in batch {
-                let mut out = Vec::with_capacity(p.alerts.len());
-                for mut a in p.alerts {
-                    self.stamp_latency(&mut a, p.stamps, journaled);
-                    self.metrics.count_alert(a.kind);
-                    tracing::info!(instrument = %a.instrument, seq = a.seq, id = %a.id, kind = alerts::kind_name(a.kind), "alert issued");
-                    let a = Arc::new(a);
-                    if tail.len() == TAIL_CAPACITY {
-                        tail.pop_front();
-                    }
-                    tail.push_back(a.clone());
-                    last = Some(a.seq);
-                    out.push(a);
+            for a in &done {
+                if tail.len() == TAIL_CAPACITY {
+                    tail.pop_front();
                 }
-                if let Some(r) = p.reply {
-                    replies.push((r, out));
-                }
+                tail.push_back(a.clone());
             }
         }
         if let Some(last) = last {
             self.published.send_replace(last);
             lock(&self.numbering).committed = last;
             self.settled.notify_all();
+        }
+        for a in &done {
+            tracing::info!(instrument = %a.instrument, seq = a.seq, id = %a.id, kind = alerts::kind_name(a.kind), "alert issued");
         }
         for (r, out) in replies {
             let _ = r.send(Ok(out));

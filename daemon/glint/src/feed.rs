@@ -43,6 +43,16 @@ impl FromStr for Speed {
     }
 }
 
+impl std::fmt::Display for Speed {
+    /// What [`FromStr`] reads back.
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            Self::Max => f.write_str("max"),
+            Self::Times(x) => write!(f, "{x}"),
+        }
+    }
+}
+
 /// Arguments of `glint feed`.
 #[derive(Debug, clap::Args)]
 pub(crate) struct FeedArgs {
