@@ -4,6 +4,8 @@
 # subscribers as `glint feed` / `glint listen` child processes; it also prints the CPU the hypervisor stole).
 # Run from the repository root:
 #   bash daemon/glint/benches/live.sh
+# 0. the host's own floor at rest (probe threads only: a channel hand-off, a 2 ms sleep, append+fdatasync);
+#    every run below prints the same probe measured while the producer feeds, beside the daemon's figures.
 # 1. stress-20khz at max speed: sustained photons per second through ingest and the engine.
 # 2. stress-bursts (20 kHz background, 109 bursts over 20 minutes) at 5x real time (100k photons/s): latency from the read of
 #    the frame that completes a trigger to the alert frame written to each subscriber's socket.
@@ -13,6 +15,9 @@ cargo build --release -q -p glint
 bin="${CARGO_TARGET_DIR:-target}/release/glint"
 work="$(mktemp -d)"
 trap 'rm -rf "$work"' EXIT
+echo "== host floor at rest, 60 s"
+"$bin" bench-live --probe-only 60
+echo
 echo "== throughput: stress-20khz at max speed, 3 subscribers"
 "$bin" bench-live deploy/scenarios/stress-20khz.toml --speed max --subscribers 3 --recording "$work/stress.glrec.zst"
 echo

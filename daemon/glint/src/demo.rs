@@ -199,7 +199,8 @@ pub(crate) fn loopback_config(
 #[derive(Debug, clap::Args)]
 pub(crate) struct BenchArgs {
     /// Scenario to simulate, record and feed (e.g. deploy/scenarios/stress-20khz.toml).
-    scenario: std::path::PathBuf,
+    #[arg(required_unless_present = "probe_only")]
+    scenario: Option<std::path::PathBuf>,
     /// Feed speed: a multiple of real time, or "max".
     #[arg(long, default_value = "max")]
     speed: Speed,
@@ -217,6 +218,10 @@ pub(crate) struct BenchArgs {
     /// Keep each subscriber's alerts (JSON lines, with their latency stamps) in this directory.
     #[arg(long, value_name = "DIR")]
     keep_alerts: Option<std::path::PathBuf>,
+    /// Run only the host probe for this many seconds, without the daemon or any client: the machine's own
+    /// floor at rest, to set beside the one measured under load.
+    #[arg(long, value_name = "SECONDS")]
+    probe_only: Option<u64>,
 }
 
 fn print_latency(metrics: &Metrics) {
@@ -267,13 +272,22 @@ fn client(nice: u8, args: &[&std::ffi::OsStr]) -> anyhow::Result<tokio::process:
 /// subscriber processes (`glint listen --json`) and one producer process (`glint feed`) playing the
 /// recording at the given speed, as on an operations host. Prints the producer's report and the daemon's
 /// latency percentiles, from the receipt of the frame that completes a trigger to the alert frame written
-/// to each subscriber's socket.
+/// to each subscriber's socket, then the host's own floor measured meanwhile (see [`crate::hostprobe`]).
 pub(crate) fn bench(args: BenchArgs) -> anyhow::Result<ExitCode> {
     let tmp = tempfile::Builder::new()
         .prefix("glint-bench-")
         .tempdir()
         .context("cannot make a temporary directory")?;
-    let scenario = glint_sim::load_scenario(&args.scenario)?;
+    if let Some(secs) = args.probe_only {
+        let probe = crate::hostprobe::HostProbe::start(tmp.path()).context("cannot start the host probe")?;
+        std::thread::sleep(Duration::from_secs(secs));
+        print!("{}", probe.stop().table());
+        return Ok(ExitCode::SUCCESS);
+    }
+    let Some(scenario) = &args.scenario else {
+        anyhow::bail!("bench-live needs a scenario unless --probe-only is given");
+    };
+    let scenario = glint_sim::load_scenario(scenario)?;
     let rec = args
         .recording
         .clone()
@@ -303,7 +317,7 @@ pub(crate) fn bench(args: BenchArgs) -> anyhow::Result<ExitCode> {
         .enable_all()
         .build()
         .context("cannot start the runtime")?;
-    let (metrics, alerts, photons) = rt.block_on(async {
+    let (metrics, alerts, photons, floor) = rt.block_on(async {
         let daemon = Daemon::start(cfg).await?;
         let (ingest, subs) = (
             daemon.ingest_addr.to_string(),
@@ -336,6 +350,7 @@ pub(crate) fn bench(args: BenchArgs) -> anyhow::Result<ExitCode> {
             listeners.push((child, out));
         }
         tokio::time::sleep(Duration::from_millis(500)).await;
+        let probe = crate::hostprobe::HostProbe::start(tmp.path()).context("cannot start the host probe")?;
         let (stolen_before, fed_from) = (stolen_cpu_s(), Instant::now());
         let fed = client(
             args.clients_nice,
@@ -355,6 +370,9 @@ pub(crate) fn bench(args: BenchArgs) -> anyhow::Result<ExitCode> {
         .status()
         .await
         .context("cannot run the producer")?;
+        let floor = tokio::task::spawn_blocking(move || probe.stop())
+            .await
+            .context("the host probe failed")?;
         if !fed.success() {
             anyhow::bail!("the producer failed ({fed})");
         }
@@ -383,10 +401,11 @@ pub(crate) fn bench(args: BenchArgs) -> anyhow::Result<ExitCode> {
             alerts.push(text.lines().filter(|l| !l.trim().is_empty()).count());
         }
         let photons = metrics.photons.load(std::sync::atomic::Ordering::Relaxed);
-        Ok::<_, anyhow::Error>((metrics, alerts, photons))
+        Ok::<_, anyhow::Error>((metrics, alerts, photons, floor))
     })?;
     println!("daemon took {photons} photons; alerts received per subscriber: {alerts:?}");
     print_latency(&metrics);
+    print!("{}", floor.table());
     Ok(ExitCode::SUCCESS)
 }
 

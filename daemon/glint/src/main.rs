@@ -14,6 +14,7 @@ mod demo;
 mod desk;
 mod driver;
 mod feed;
+mod hostprobe;
 mod ingest;
 mod issuing;
 mod journal;
