@@ -17,8 +17,7 @@ use crate::config::Config;
 use crate::daemon::Daemon;
 use crate::feed::{self, FeedTarget, Speed};
 use crate::listen::{ListenOptions, listen_loop};
-use crate::metrics::Metrics;
-use crate::metrics::Stage;
+use crate::metrics::{Metrics, Percentiles, Stage};
 
 /// The demo scenario, built in so the demo needs no files.
 const DEMO_SCENARIO: &str = include_str!("../../../deploy/scenarios/demo.toml");
@@ -225,20 +224,16 @@ pub(crate) struct BenchArgs {
 }
 
 fn print_latency(metrics: &Metrics) {
-    println!("latency (ms)              n      p50      p99    p99.9      max");
+    println!("{}", Percentiles::header("latency (ms)"));
     for (label, stage) in [
         ("receipt -> decided", Stage::Decide),
         ("decided -> fsynced", Stage::Journal),
-        ("fsynced -> socket ", Stage::Send),
-        ("receipt -> socket ", Stage::EndToEnd),
+        ("fsynced -> socket", Stage::Send),
+        ("receipt -> socket", Stage::EndToEnd),
         ("flashes: -> decided", Stage::FlashDecide),
-        ("flashes: -> socket ", Stage::FlashEndToEnd),
+        ("flashes: -> socket", Stage::FlashEndToEnd),
     ] {
-        let p = metrics.percentiles(stage);
-        println!(
-            "  {label}  {:>6} {:>8.3} {:>8.3} {:>8.3} {:>8.3}",
-            p.count, p.p50_ms, p.p99_ms, p.p999_ms, p.max_ms
-        );
+        println!("{}", metrics.percentiles(stage).row(label));
     }
 }
 

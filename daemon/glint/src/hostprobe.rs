@@ -17,14 +17,14 @@ use std::time::{Duration, Instant};
 
 use hdrhistogram::Histogram;
 
+use crate::metrics::{MAX_TRACKED_NS, Percentiles, latency_histogram as histogram};
+
 /// Pause between hand-offs: about the frame period of a 100,000 photons/s feed.
 const HANDOFF_PERIOD: Duration = Duration::from_millis(2);
 /// Pause between fdatasyncs: a light load beside the journal's, which the probe must not crowd out.
 const FSYNC_PERIOD: Duration = Duration::from_millis(50);
 /// Bytes appended before each fdatasync: about one journal record.
 const FSYNC_BYTES: usize = 512;
-/// Longest wait tracked, nanoseconds (longer ones are clamped): ten seconds.
-const MAX_TRACKED_NS: u64 = 10_000_000_000;
 
 /// What the probes measured, nanoseconds.
 #[derive(Debug)]
@@ -48,28 +48,17 @@ impl HostFloor {
 
     /// A table in the shape of the daemon's latency table (milliseconds).
     pub(crate) fn table(&self) -> String {
-        let mut s = String::from("host floor (ms)           n      p50      p99    p99.9      max\n");
+        let mut s = Percentiles::header("host floor (ms)") + "\n";
         for (label, h) in [
-            ("  thread hand-off   ", &self.handoff),
-            ("  2 ms sleep, late  ", &self.oversleep),
-            ("  append+fdatasync  ", &self.fdatasync),
+            ("thread hand-off", &self.handoff),
+            ("2 ms sleep, late", &self.oversleep),
+            ("append+fdatasync", &self.fdatasync),
         ] {
-            let ms = |q: f64| h.value_at_quantile(q) as f64 / 1e6;
-            s.push_str(&format!(
-                "{label} {:>6} {:>8.3} {:>8.3} {:>8.3} {:>8.3}\n",
-                h.len(),
-                ms(0.5),
-                ms(0.99),
-                ms(0.999),
-                h.max() as f64 / 1e6
-            ));
+            s.push_str(&Percentiles::of(h).row(label));
+            s.push('\n');
         }
         s
     }
-}
-
-fn histogram() -> Histogram<u64> {
-    Histogram::new_with_bounds(1, MAX_TRACKED_NS, 3).expect("constant histogram bounds are valid")
 }
 
 fn nanos(d: Duration) -> u64 {

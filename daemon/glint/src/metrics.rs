@@ -64,8 +64,8 @@ impl Stage {
     }
 }
 
-/// Percentiles of one stage, milliseconds.
-#[derive(Debug, Clone, Copy, PartialEq)]
+/// Percentiles of one latency histogram, milliseconds.
+#[derive(Debug, Clone, Copy, PartialEq, Default)]
 pub(crate) struct Percentiles {
     /// Values recorded.
     pub(crate) count: u64,
@@ -77,6 +77,38 @@ pub(crate) struct Percentiles {
     pub(crate) p999_ms: f64,
     /// Largest.
     pub(crate) max_ms: f64,
+}
+
+impl Percentiles {
+    /// Of a histogram of nanoseconds.
+    pub(crate) fn of(h: &Histogram<u64>) -> Self {
+        let ms = |ns: u64| ns as f64 / 1e6;
+        Self {
+            count: h.len(),
+            p50_ms: ms(h.value_at_quantile(0.5)),
+            p99_ms: ms(h.value_at_quantile(0.99)),
+            p999_ms: ms(h.value_at_quantile(0.999)),
+            max_ms: ms(h.max()),
+        }
+    }
+
+    /// The heading of a table of [`row`](Self::row)s.
+    pub(crate) fn header(title: &str) -> String {
+        format!("{title:<27}n      p50      p99    p99.9      max")
+    }
+
+    /// One line of a latency table: label, count, p50, p99, p99.9, max.
+    pub(crate) fn row(&self, label: &str) -> String {
+        format!(
+            "  {label:<19}{:>7} {:>8.3} {:>8.3} {:>8.3} {:>8.3}",
+            self.count, self.p50_ms, self.p99_ms, self.p999_ms, self.max_ms
+        )
+    }
+}
+
+/// An empty latency histogram: nanoseconds, 3 significant digits, up to [`MAX_TRACKED_NS`].
+pub(crate) fn latency_histogram() -> Histogram<u64> {
+    Histogram::new_with_bounds(1, MAX_TRACKED_NS, 3).expect("constant histogram bounds are valid")
 }
 
 /// Counters and histograms shared by every part of the daemon.
@@ -104,7 +136,7 @@ pub(crate) struct Metrics {
 }
 
 /// Longest latency the histograms track: one hour in nanoseconds (longer values are clamped).
-const MAX_TRACKED_NS: u64 = 3_600_000_000_000;
+pub(crate) const MAX_TRACKED_NS: u64 = 3_600_000_000_000;
 
 impl Default for Metrics {
     fn default() -> Self {
@@ -115,12 +147,7 @@ impl Default for Metrics {
 impl Metrics {
     /// Empty counters and histograms.
     pub(crate) fn new() -> Self {
-        let hists = Stage::ALL
-            .iter()
-            .map(|_| {
-                Histogram::new_with_bounds(1, MAX_TRACKED_NS, 3).expect("constant histogram bounds are valid")
-            })
-            .collect();
+        let hists = Stage::ALL.iter().map(|_| latency_histogram()).collect();
         Self {
             hists: Mutex::new(hists),
             photons: AtomicU64::new(0),
@@ -152,26 +179,10 @@ impl Metrics {
 
     /// Percentiles of one stage so far.
     pub(crate) fn percentiles(&self, stage: Stage) -> Percentiles {
-        let ms = |ns: u64| ns as f64 / 1e6;
-        match self.hists.lock() {
-            Ok(h) => {
-                let h = &h[stage.index()];
-                Percentiles {
-                    count: h.len(),
-                    p50_ms: ms(h.value_at_quantile(0.5)),
-                    p99_ms: ms(h.value_at_quantile(0.99)),
-                    p999_ms: ms(h.value_at_quantile(0.999)),
-                    max_ms: ms(h.max()),
-                }
-            }
-            Err(_) => Percentiles {
-                count: 0,
-                p50_ms: 0.0,
-                p99_ms: 0.0,
-                p999_ms: 0.0,
-                max_ms: 0.0,
-            },
-        }
+        self.hists
+            .lock()
+            .map(|h| Percentiles::of(&h[stage.index()]))
+            .unwrap_or_default()
     }
 
     /// Counts an issued alert by its kind.
