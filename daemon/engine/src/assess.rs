@@ -7,11 +7,12 @@ use glint_science::geometry::gaussian_containment;
 use glint_science::instrument::InstrumentResponse;
 use glint_science::poisson::{ln_sf, sigma_from_ln_p};
 
+use crate::candidate::Candidate;
 use crate::config::AssessConfig;
-use crate::engine::{Candidate, clamp_sigma, median_sorted};
 use crate::finding::{Assessment, Flash, Verdict, Withdrawal};
-use crate::fit::{FitInput, fit_evaporation};
+use crate::fit::FitJob;
 use crate::sky::{angle_deg, unit_vector};
+use crate::stats::{clamp_sigma, median_sorted};
 
 /// What the engine hands over for one candidate.
 pub(crate) struct AssessInput<'a> {
@@ -252,44 +253,6 @@ fn fit(inp: &AssessInput<'_>, frac: f64) -> FitJob {
         window_start_ns: start,
         window_end_ns: end,
         psf_containment: containment,
-    }
-}
-
-/// An evaporation fit still to run, owning its data (the photons' times and energies, a copy of the
-/// instrument's response) so it can run on another thread. [`run`](Self::run) is a pure function of the
-/// job: the same result whether the engine calls it at once or its caller does later.
-#[derive(Debug, Clone, PartialEq)]
-pub struct FitJob {
-    times_ns: Vec<i64>,
-    energies_gev: Vec<f64>,
-    zenith_deg: f64,
-    response: InstrumentResponse,
-    background_rate_hz: f64,
-    background_spectral_index: f64,
-    window_start_ns: i64,
-    window_end_ns: i64,
-    psf_containment: f64,
-}
-
-impl FitJob {
-    /// Runs the fit: up to a few hundred milliseconds with many photons (see [`fit_evaporation`]).
-    pub fn run(&self) -> crate::fit::FitResult {
-        fit_evaporation(&FitInput {
-            times_ns: &self.times_ns,
-            energies_gev: &self.energies_gev,
-            zenith_deg: self.zenith_deg,
-            response: &self.response,
-            background_rate_hz: self.background_rate_hz,
-            background_spectral_index: self.background_spectral_index,
-            window_start_ns: self.window_start_ns,
-            window_end_ns: self.window_end_ns,
-            psf_containment: self.psf_containment,
-        })
-    }
-
-    /// Photons the fit takes.
-    pub fn photons(&self) -> usize {
-        self.times_ns.len()
     }
 }
 

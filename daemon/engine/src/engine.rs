@@ -10,12 +10,14 @@ use glint_wire::pb::{PhotonBatch, StreamStatus};
 
 use crate::assess::{self, AssessInput};
 use crate::background::{AcceptanceMap, AllSky, N_BINS};
+use crate::candidate::{CandPhoton, Candidate};
 use crate::config::EngineConfig;
 use crate::dead::DeadTime;
 use crate::error::EngineError;
 use crate::finding::{Finding, FindingSink, Flash, PhotonRec};
 use crate::reorder::{Photon, Reorder};
 use crate::sky::{Disc, SkyIndex, Step, radec_of, unit_vector};
+use crate::stats::{clamp_sigma, median_sorted};
 
 /// Seconds in a Julian year (365.25 days): the unit of every false-alarm rate.
 pub const SECONDS_PER_YEAR: f64 = 31_557_600.0;
@@ -170,49 +172,6 @@ struct Model {
     b: Vec<f64>,
     pfalse: Vec<f64>,
     taken_at: i64,
-}
-
-/// A photon of a candidate's disc, kept for the assessment and the fit.
-#[derive(Debug, Clone, Copy)]
-pub(crate) struct CandPhoton {
-    pub(crate) t: i64,
-    pub(crate) energy: f32,
-}
-
-/// An open candidate: a flash and the crossings merged into it, waiting for its persistence window.
-#[derive(Debug)]
-pub(crate) struct Candidate {
-    pub(crate) id: u64,
-    /// Centre of the candidate's disc (the first flash's position) and its acceptance bin.
-    pub(crate) pos0: [f64; 3],
-    /// Crossings whose seed lies within max(3 r, r + 3 sigma_PSF) of `pos0` (sigma at the instrument's
-    /// lowest energy) belong to this candidate: a burst's photons, hence its seeds, scatter by the PSF around
-    /// the source.
-    pub(crate) cos_merge: f64,
-    pub(crate) bin0: u16,
-    pub(crate) zenith0: f64,
-    /// Crossings with seed time up to here update the candidate; later ones within the persistence window
-    /// are only counted, unless more significant than `best` and no later than `extend_limit`.
-    pub(crate) span_limit: i64,
-    /// A more significant crossing up to here still moves the best trigger and the last crossing: the first
-    /// crossing plus the persistence window of the longest timescale.
-    pub(crate) extend_limit: i64,
-    /// Earliest window start and latest seed time over the merged crossings: the flash span.
-    pub(crate) span_start: i64,
-    pub(crate) t_last: i64,
-    pub(crate) mask: u64,
-    pub(crate) best: Flash,
-    pub(crate) best_all_sky: u64,
-    pub(crate) best_all_sky_expected: f64,
-    /// All-sky photons in the pre-window (span_start - pre, span_start].
-    pub(crate) pre_all_sky: u64,
-    /// Photons released when the best crossing was processed (all those with time <= best.end_ns): the
-    /// post-flash window starts there.
-    pub(crate) released_at_best: u64,
-    /// Photons in the disc from (first window start - longest - pre) on, in time order.
-    pub(crate) photons: Vec<CandPhoton>,
-    pub(crate) capped: bool,
-    pub(crate) late_crossings: u64,
 }
 
 /// A seed's lowest-p crossing: group index, timescale, counts, background, ln p, and the mask of every
@@ -1205,17 +1164,4 @@ fn normalise(v: [f64; 3]) -> [f64; 3] {
 
 pub(crate) fn dot(a: [f64; 3], b: [f64; 3]) -> f64 {
     a[0] * b[0] + a[1] * b[1] + a[2] * b[2]
-}
-
-pub(crate) fn median_sorted(x: &[f64]) -> f64 {
-    match x.len() {
-        0 => 0.0,
-        n if n % 2 == 1 => x[n / 2],
-        n => 0.5 * (x[n / 2 - 1] + x[n / 2]),
-    }
-}
-
-/// Significances stay finite in outputs: p = 1 would be -inf and p = 0 +inf.
-pub(crate) fn clamp_sigma(z: f64) -> f64 {
-    if z.is_nan() { 0.0 } else { z.clamp(-40.0, 1000.0) }
 }

@@ -4,8 +4,7 @@
 
 use serde::{Deserialize, Serialize};
 
-use crate::assess::FitJob;
-use crate::fit::FitResult;
+use crate::fit::{FitJob, FitResult};
 
 /// Where the engine puts its findings, in its order, the moment it decides each: a `Vec<Finding>` collects
 /// them (replay, tests); the live daemon issues a flash at once instead of after the rest of its frame has

@@ -1031,6 +1031,44 @@ fn kolmogorov_sf(lambda: f64) -> f64 {
     }
 }
 
+/// An evaporation fit still to run, owning its data (the photons' times and energies, a copy of the
+/// instrument's response) so it can run on another thread. [`run`](Self::run) is a pure function of the
+/// job: the same result whether the engine calls it at once or its caller does later.
+#[derive(Debug, Clone, PartialEq)]
+pub struct FitJob {
+    pub(crate) times_ns: Vec<i64>,
+    pub(crate) energies_gev: Vec<f64>,
+    pub(crate) zenith_deg: f64,
+    pub(crate) response: InstrumentResponse,
+    pub(crate) background_rate_hz: f64,
+    pub(crate) background_spectral_index: f64,
+    pub(crate) window_start_ns: i64,
+    pub(crate) window_end_ns: i64,
+    pub(crate) psf_containment: f64,
+}
+
+impl FitJob {
+    /// Runs the fit: up to a few hundred milliseconds with many photons (see [`fit_evaporation`]).
+    pub fn run(&self) -> FitResult {
+        fit_evaporation(&FitInput {
+            times_ns: &self.times_ns,
+            energies_gev: &self.energies_gev,
+            zenith_deg: self.zenith_deg,
+            response: &self.response,
+            background_rate_hz: self.background_rate_hz,
+            background_spectral_index: self.background_spectral_index,
+            window_start_ns: self.window_start_ns,
+            window_end_ns: self.window_end_ns,
+            psf_containment: self.psf_containment,
+        })
+    }
+
+    /// Photons the fit takes.
+    pub fn photons(&self) -> usize {
+        self.times_ns.len()
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

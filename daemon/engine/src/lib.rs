@@ -7,6 +7,7 @@
 
 mod assess;
 mod background;
+mod candidate;
 mod config;
 mod dead;
 mod engine;
@@ -15,10 +16,10 @@ mod finding;
 pub mod fit;
 mod reorder;
 mod sky;
+mod stats;
 
-pub use assess::FitJob;
 pub use config::{AssessConfig, EngineConfig};
 pub use engine::{Engine, EngineStats, SECONDS_PER_YEAR};
 pub use error::EngineError;
 pub use finding::{Assessment, Finding, FindingSink, Flash, PhotonRec, Verdict, Withdrawal};
-pub use fit::{FitInput, FitResult};
+pub use fit::{FitInput, FitJob, FitResult};

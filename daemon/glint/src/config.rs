@@ -12,6 +12,7 @@ use std::time::Duration;
 
 use glint_science::instrument::{InstrumentResponse, InstrumentSpec};
 use serde::de::DeserializeOwned;
+use subtle::ConstantTimeEq;
 use toml::{Table, Value};
 
 /// The configuration used when no file is given: loopback addresses, a state directory under the system's
@@ -890,8 +891,41 @@ fn expand_tmp(p: &str) -> String {
     p.replace("$TMPDIR", &std::env::temp_dir().display().to_string())
 }
 
+/// Loads the configuration named on the command line, or the embedded default. A configuration that does not
+/// compile is printed with every problem and turned into exit code 2 by the caller.
+pub(crate) fn load_config(path: Option<&PathBuf>) -> Result<Config, ConfigError> {
+    match path {
+        Some(p) => Config::load(p),
+        None => Config::embedded_default(),
+    }
+}
+
+/// Error type that carries the exit code for a configuration that does not compile.
+#[derive(Debug, thiserror::Error)]
+#[error("{0}")]
+pub(crate) struct BadConfig(pub(crate) ConfigError);
+
+/// Loads the configuration or returns a `BadConfig` error (exit code 2).
+pub(crate) fn config_or_exit(path: Option<&PathBuf>) -> anyhow::Result<Config> {
+    load_config(path).map_err(|e| BadConfig(e).into())
+}
+
+/// Compares a token in constant time (for equal lengths; the length itself is not secret).
+pub(crate) fn token_matches(given: &str, expected: &Secret) -> bool {
+    given.as_bytes().ct_eq(expected.expose().as_bytes()).into()
+}
+
 #[cfg(test)]
 mod tests {
+    #[test]
+    fn tokens_compare_exactly() {
+        let t = Secret::new("demo-subscriber-token");
+        assert!(token_matches("demo-subscriber-token", &t));
+        assert!(!token_matches("demo-subscriber-tokeN", &t));
+        assert!(!token_matches("demo-subscriber-token ", &t));
+        assert!(!token_matches("", &t));
+    }
+
     use super::*;
 
     #[test]

@@ -5,30 +5,27 @@ use std::process::ExitCode;
 
 use clap::Parser;
 
+// Plumbing every layer may use: configuration, framing, sockets, TLS, time formats, logs, alert rendering,
+// the daemon's own measurements.
 mod alerts;
-mod cli;
 mod codec;
 mod config;
-mod daemon;
-mod demo;
-mod desk;
-mod driver;
-mod feed;
-mod hostprobe;
-mod ingest;
-mod issuing;
-mod journal;
-mod listen;
 mod logging;
 mod metrics;
 mod net;
-mod reach;
-mod replay;
-mod simulate;
-mod subscribers;
 mod timefmt;
 mod tls;
-mod withdraw;
+
+// The live service, from the photon's arrival to the alert's departure (see DEVELOPERS.md).
+mod desk;
+mod http;
+mod serve;
+mod sinks;
+
+// Clients of a running daemon, then the subcommands on top of everything.
+mod cli;
+mod client;
+mod commands;
 
 fn main() -> ExitCode {
     let args = cli::Cli::parse();

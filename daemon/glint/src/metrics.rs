@@ -5,11 +5,8 @@
 use std::fmt::Write as _;
 use std::sync::Mutex;
 use std::sync::atomic::{AtomicI64, AtomicU64, Ordering};
-use std::time::Duration;
 
 use hdrhistogram::Histogram;
-use tokio::io::{AsyncReadExt, AsyncWriteExt};
-use tokio::net::TcpListener;
 
 /// A stage of the path from a producer's frame to a subscriber's socket.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -196,6 +193,21 @@ impl Metrics {
         self.alerts[i].fetch_add(1, Ordering::Relaxed);
     }
 
+    /// Prints the latency table of every stage of the flash's path (demo and bench).
+    pub(crate) fn print_latency(&self) {
+        println!("{}", Percentiles::header("latency (ms)"));
+        for (label, stage) in [
+            ("receipt -> decided", Stage::Decide),
+            ("decided -> fsynced", Stage::Journal),
+            ("fsynced -> socket", Stage::Send),
+            ("receipt -> socket", Stage::EndToEnd),
+            ("flashes: -> decided", Stage::FlashDecide),
+            ("flashes: -> socket", Stage::FlashEndToEnd),
+        ] {
+            println!("{}", self.percentiles(stage).row(label));
+        }
+    }
+
     /// Everything in the Prometheus text exposition format.
     pub(crate) fn prometheus_text(&self) -> String {
         let mut s = String::new();
@@ -285,31 +297,32 @@ impl Metrics {
     }
 }
 
-/// Serves `GET /metrics` (any path, in fact) over plain HTTP/1.1 until the task is dropped. One request per
-/// connection; a request is read for at most two seconds.
-pub(crate) async fn serve(listener: TcpListener, metrics: std::sync::Arc<Metrics>) {
-    loop {
-        let (mut sock, _) = match listener.accept().await {
-            Ok(s) => s,
-            Err(e) => {
-                tracing::warn!(error = %e, "metrics: accept failed");
-                tokio::time::sleep(Duration::from_millis(100)).await;
-                continue;
-            }
-        };
-        let m = metrics.clone();
-        tokio::spawn(async move {
-            let mut buf = [0u8; 1024];
-            let _ = tokio::time::timeout(Duration::from_secs(2), sock.read(&mut buf)).await;
-            let body = m.prometheus_text();
-            let head = format!(
-                "HTTP/1.1 200 OK\r\nContent-Type: text/plain; version=0.0.4\r\nContent-Length: {}\r\nConnection: close\r\n\r\n",
-                body.len()
-            );
-            let _ = sock.write_all(head.as_bytes()).await;
-            let _ = sock.write_all(body.as_bytes()).await;
-            let _ = sock.shutdown().await;
-        });
+/// Each instrument's event time (engine watermark), published by the engine threads for heartbeats.
+#[derive(Debug)]
+pub(crate) struct Watermarks {
+    names: Vec<String>,
+    values: Vec<AtomicI64>,
+}
+
+impl Watermarks {
+    /// One zeroed watermark per instrument, in configuration order.
+    pub(crate) fn new(names: Vec<String>) -> Self {
+        let values = names.iter().map(|_| AtomicI64::new(0)).collect();
+        Self { names, values }
+    }
+
+    /// Sets instrument `i`'s watermark, GPS ns.
+    pub(crate) fn set(&self, i: usize, gps_ns: i64) {
+        if let Some(v) = self.values.get(i) {
+            v.store(gps_ns, Ordering::Relaxed);
+        }
+    }
+
+    pub(crate) fn snapshot(&self) -> (Vec<String>, Vec<i64>) {
+        (
+            self.names.clone(),
+            self.values.iter().map(|v| v.load(Ordering::Relaxed)).collect(),
+        )
     }
 }
 

@@ -16,8 +16,8 @@ use glint_wire::recording::RecordingReader;
 use serde::Serialize;
 
 use crate::alerts::{self, Sequencer};
-use crate::cli::config_or_exit;
-use crate::driver::InstrumentDriver;
+use crate::config::config_or_exit;
+use crate::serve::driver::InstrumentDriver;
 
 /// Arguments of `glint replay`.
 #[derive(Debug, clap::Args)]

@@ -9,7 +9,7 @@ use std::process::ExitCode;
 use anyhow::Context;
 use glint_science::reach::{ReachParams, reach_report};
 
-use crate::cli::config_or_exit;
+use crate::config::config_or_exit;
 
 /// Arguments of `glint reach`.
 #[derive(Debug, clap::Args)]

@@ -5,6 +5,9 @@
 //! desk's in-memory tail of recent alerts or, when further behind, from the journal on disk, so a slow or
 //! absent subscriber cannot hold up ingest or the other subscribers.
 
+pub(crate) mod issuing;
+pub(crate) mod journal;
+
 use std::collections::{BTreeSet, VecDeque};
 use std::path::{Path, PathBuf};
 use std::sync::{Arc, Condvar, Mutex, RwLock};
@@ -16,9 +19,9 @@ use tokio_util::sync::CancellationToken;
 
 use crate::alerts::{self, Sequencer};
 use crate::config::JournalConfig;
-use crate::journal::{self, Journal, JournalError, OpenReport};
 use crate::metrics::{Metrics, Stage};
 use crate::timefmt::{now_unix_ns, unix_ns_to_gps_ns};
+use journal::{Journal, JournalError, OpenReport};
 
 /// Alerts kept in memory for subscribers that are nearly caught up (older ones are read from disk).
 pub(crate) const TAIL_CAPACITY: usize = 1024;
@@ -644,7 +647,7 @@ pub(crate) mod tests {
     fn flashes(candidates: std::ops::Range<u64>) -> Vec<Finding> {
         candidates
             .map(|c| {
-                let mut f = crate::issuing::tests::flash(&[1_000, 2_000]);
+                let mut f = crate::desk::issuing::tests::flash(&[1_000, 2_000]);
                 f.candidate = c;
                 // Tells the flashes apart in the journal (alerts do not carry the engine's candidate).
                 f.end_ns = 10_000 + c as i64;

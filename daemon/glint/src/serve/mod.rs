@@ -5,11 +5,15 @@
 //! goodbye to subscribers. A second signal exits at once.
 //! Bound addresses are logged and written to `state_dir/ports.json` (useful with port 0).
 
+pub(crate) mod driver;
+pub(crate) mod hostprobe;
+pub(crate) mod ingest;
+pub(crate) mod loopback;
+
 use std::fs::File;
 use std::future::Future;
 use std::net::SocketAddr;
 use std::path::{Path, PathBuf};
-use std::process::ExitCode;
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
@@ -22,54 +26,11 @@ use tokio_util::task::TaskTracker;
 
 use crate::config::{Config, InstrumentConfig};
 use crate::desk::Desk;
-use crate::driver::InstrumentDriver;
-use crate::ingest::{self, EngineMsg, IngestShared, Slot};
-use crate::issuing::{self, Issuer};
-use crate::metrics::Metrics;
-use crate::subscribers::{self, Hub, Watermarks};
-
-/// Arguments of `glint run`.
-#[derive(Debug, clap::Args)]
-pub(crate) struct RunArgs {
-    /// Configuration file; the embedded default when omitted.
-    #[arg(long, short, value_name = "FILE")]
-    config: Option<PathBuf>,
-}
-
-/// `glint run`: runs until SIGTERM or SIGINT.
-pub(crate) fn run_command(args: RunArgs) -> anyhow::Result<ExitCode> {
-    let cfg = crate::cli::config_or_exit(args.config.as_ref())?;
-    crate::logging::init(&cfg.daemon.log_level, cfg.daemon.log_format);
-    let rt = tokio::runtime::Builder::new_multi_thread()
-        .enable_all()
-        .build()
-        .context("cannot start the runtime")?;
-    rt.block_on(async {
-        let first = shutdown_signals()?;
-        run(cfg, first).await
-    })?;
-    Ok(ExitCode::SUCCESS)
-}
-
-/// A future that resolves on the first SIGTERM or SIGINT; a second one exits the process at once.
-fn shutdown_signals() -> anyhow::Result<impl Future<Output = ()>> {
-    use tokio::signal::unix::{SignalKind, signal};
-    let mut term = signal(SignalKind::terminate()).context("cannot install the SIGTERM handler")?;
-    let mut int = signal(SignalKind::interrupt()).context("cannot install the SIGINT handler")?;
-    let (tx, rx) = tokio::sync::oneshot::channel::<&'static str>();
-    tokio::spawn(async move {
-        let name = tokio::select! { _ = term.recv() => "SIGTERM", _ = int.recv() => "SIGINT" };
-        let _ = tx.send(name);
-        let again = tokio::select! { _ = term.recv() => "SIGTERM", _ = int.recv() => "SIGINT" };
-        tracing::error!("second signal ({again}): exiting at once");
-        std::process::exit(130);
-    });
-    Ok(async move {
-        if let Ok(name) = rx.await {
-            tracing::info!("{name} received: shutting down (a second signal exits at once)");
-        }
-    })
-}
+use crate::desk::issuing::{self, Issuer};
+use crate::metrics::{Metrics, Watermarks};
+use crate::serve::driver::InstrumentDriver;
+use crate::sinks::subscribers::{self, Hub};
+use ingest::{EngineMsg, IngestShared, Slot};
 
 /// Runs the daemon until `shutdown` resolves (or a fatal error), then stops in stages.
 pub(crate) async fn run(cfg: Config, shutdown: impl Future<Output = ()>) -> anyhow::Result<()> {
@@ -337,7 +298,7 @@ impl Daemon {
             let m = metrics.clone();
             let stop = stop_accept.clone();
             tokio::spawn(async move {
-                tokio::select! { () = crate::metrics::serve(l, m) => {}, () = stop.cancelled() => {} }
+                tokio::select! { () = crate::http::serve(l, m) => {}, () = stop.cancelled() => {} }
             });
         }
         tracing::info!("ingest listening on {ingest_addr}");

@@ -5,12 +5,11 @@
 
 use std::net::SocketAddr;
 use std::sync::Arc;
-use std::sync::atomic::{AtomicI64, Ordering};
+use std::sync::atomic::Ordering;
 use std::time::Duration;
 
 use futures::{SinkExt, StreamExt};
 use glint_wire::pb::{self, subscriber_frame, subscriber_request};
-use subtle::ConstantTimeEq;
 use tokio::net::TcpListener;
 use tokio::sync::Semaphore;
 use tokio_rustls::TlsAcceptor;
@@ -20,9 +19,9 @@ use tokio_util::task::TaskTracker;
 use tracing::Instrument;
 
 use crate::codec::{SubscriberServerCodec, subscriber_refusal};
-use crate::config::{Secret, SubscribersConfig};
+use crate::config::{SubscribersConfig, token_matches};
 use crate::desk::Desk;
-use crate::metrics::{Metrics, Stage};
+use crate::metrics::{Metrics, Stage, Watermarks};
 use crate::timefmt::now_unix_ns;
 use crate::tls::{self, BoxIo};
 
@@ -30,40 +29,6 @@ use crate::tls::{self, BoxIo};
 const REQUEST_TIMEOUT: Duration = Duration::from_secs(10);
 /// Alerts read per step of a subscriber's cursor; bounds the memory one subscriber holds at a time.
 const READ_CHUNK: usize = 256;
-
-/// Compares a token in constant time (for equal lengths; the length itself is not secret).
-pub(crate) fn token_matches(given: &str, expected: &Secret) -> bool {
-    given.as_bytes().ct_eq(expected.expose().as_bytes()).into()
-}
-
-/// Each instrument's event time (engine watermark), published by the engine threads for heartbeats.
-#[derive(Debug)]
-pub(crate) struct Watermarks {
-    names: Vec<String>,
-    values: Vec<AtomicI64>,
-}
-
-impl Watermarks {
-    /// One zeroed watermark per instrument, in configuration order.
-    pub(crate) fn new(names: Vec<String>) -> Self {
-        let values = names.iter().map(|_| AtomicI64::new(0)).collect();
-        Self { names, values }
-    }
-
-    /// Sets instrument `i`'s watermark, GPS ns.
-    pub(crate) fn set(&self, i: usize, gps_ns: i64) {
-        if let Some(v) = self.values.get(i) {
-            v.store(gps_ns, Ordering::Relaxed);
-        }
-    }
-
-    fn snapshot(&self) -> (Vec<String>, Vec<i64>) {
-        (
-            self.names.clone(),
-            self.values.iter().map(|v| v.load(Ordering::Relaxed)).collect(),
-        )
-    }
-}
 
 /// What every subscriber connection shares.
 #[derive(Debug)]
@@ -449,9 +414,9 @@ async fn send_heartbeat(
 #[allow(clippy::unwrap_used)] // tests may unwrap
 mod tests {
     use super::*;
+    use crate::client::listen::{ListenOptions, listen_loop};
     use crate::config::Config;
-    use crate::daemon::Daemon;
-    use crate::listen::{ListenOptions, listen_loop};
+    use crate::serve::Daemon;
     use tokio::io::{AsyncReadExt, AsyncWriteExt};
 
     /// About 136 bytes per test alert: 60,000 of them overfill the kernel's socket buffers on both ends
@@ -461,7 +426,7 @@ mod tests {
     /// A loopback configuration whose journal already holds `PREFILLED` alerts, so a subscriber replaying it
     /// from the start has far more to read than any socket buffer holds.
     fn prefilled(tmp: &std::path::Path, unwritable: Duration) -> (Config, String) {
-        let (mut cfg, _, token) = crate::demo::loopback_config(tmp, "ventisca-array").unwrap();
+        let (mut cfg, _, token) = crate::serve::loopback::loopback_config(tmp, "ventisca-array").unwrap();
         cfg.subscribers.unwritable_timeout = unwritable;
         let (desk, _) = Desk::open(
             &cfg.daemon.state_dir.join("journal"),
@@ -574,11 +539,11 @@ mod tests {
 
     /// Feeds the demo scenario at full speed into `daemon`; photons per second as `glint feed` reports them.
     async fn feed_rate(daemon: &Daemon, tmp: &std::path::Path) -> f64 {
-        let (scenario, sim) = crate::demo::demo_simulator(tmp).unwrap();
+        let (scenario, sim) = crate::serve::loopback::demo_simulator(tmp).unwrap();
         let cfg = Config::embedded_default().unwrap();
         let inst = Config::instrument(&cfg, &scenario.instrument.id).unwrap();
         let token = inst.token.expose().to_string();
-        let target = crate::feed::FeedTarget {
+        let target = crate::client::feed::FeedTarget {
             addr: daemon.ingest_addr.to_string(),
             token,
             instrument: None,
@@ -586,9 +551,13 @@ mod tests {
             tls: None,
             max_frame: 64 << 20,
         };
-        let fed = crate::feed::feed(sim.map(Ok::<_, anyhow::Error>), &target, crate::feed::Speed::Max)
-            .await
-            .unwrap();
+        let fed = crate::client::feed::feed(
+            sim.map(Ok::<_, anyhow::Error>),
+            &target,
+            crate::client::feed::Speed::Max,
+        )
+        .await
+        .unwrap();
         assert_eq!(fed.refused_photons, 0);
         fed.photons_per_s()
     }
@@ -660,14 +629,5 @@ mod tests {
             min_sigma: 0.0,
         };
         assert!(all.wants(&pb::Alert::default()));
-    }
-
-    #[test]
-    fn tokens_compare_exactly() {
-        let t = Secret::new("demo-subscriber-token");
-        assert!(token_matches("demo-subscriber-token", &t));
-        assert!(!token_matches("demo-subscriber-tokeN", &t));
-        assert!(!token_matches("demo-subscriber-token ", &t));
-        assert!(!token_matches("", &t));
     }
 }

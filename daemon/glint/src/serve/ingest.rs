@@ -22,9 +22,9 @@ use tracing::Instrument;
 
 use crate::codec::{IngestServerCodec, ingest_refusal};
 use crate::config::Secret;
-use crate::driver::InstrumentDriver;
+use crate::config::token_matches;
 use crate::metrics::Metrics;
-use crate::subscribers::token_matches;
+use crate::serve::driver::InstrumentDriver;
 use crate::timefmt::now_unix_ns;
 use crate::tls::{self, BoxIo};
 

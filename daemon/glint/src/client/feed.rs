@@ -3,20 +3,16 @@
 //! one carrying the given token; the daemon's acks are read alongside and the last one is reported with the
 //! throughput at the end. The same code feeds the in-process demo from the simulator.
 
-use std::path::PathBuf;
-use std::process::ExitCode;
 use std::str::FromStr;
 use std::time::{Duration, Instant};
 
-use anyhow::{Context, anyhow, bail};
+use anyhow::{anyhow, bail};
 use futures::{SinkExt, StreamExt};
 use glint_wire::pb::{self, ingest_reply, producer_frame};
-use glint_wire::recording::RecordingReader;
 use tokio::sync::mpsc;
 use tokio_util::codec::Framed;
 
 use crate::codec::{IngestClientCodec, refusal_name};
-use crate::listen::read_token;
 use crate::tls::{self, ClientTls};
 
 /// How fast to play a stream.
@@ -51,31 +47,6 @@ impl std::fmt::Display for Speed {
             Self::Times(x) => write!(f, "{x}"),
         }
     }
-}
-
-/// Arguments of `glint feed`.
-#[derive(Debug, clap::Args)]
-pub(crate) struct FeedArgs {
-    /// The recording to play (.glrec or .glrec.zst).
-    file: PathBuf,
-    /// The daemon's ingest address.
-    #[arg(long, value_name = "HOST:PORT")]
-    to: String,
-    /// File holding the instrument's producer token.
-    #[arg(long, value_name = "FILE")]
-    token_file: PathBuf,
-    /// Playback speed: a multiple of real time, or "max".
-    #[arg(long, default_value = "1")]
-    speed: Speed,
-    /// Instrument id to announce (default: the one in the recording's Hello).
-    #[arg(long)]
-    instrument: Option<String>,
-    /// Connect with TLS, trusting the CA certificates in this PEM file.
-    #[arg(long, value_name = "FILE")]
-    tls_ca: Option<PathBuf>,
-    /// Producer name sent in the Hello.
-    #[arg(long, default_value = "glint-feed")]
-    producer: String,
 }
 
 /// What a feed did.
@@ -301,34 +272,6 @@ where
     report.refusals = refusals;
     let _ = sink.close().await;
     Ok(report)
-}
-
-/// `glint feed`.
-pub(crate) fn run(args: FeedArgs) -> anyhow::Result<ExitCode> {
-    let token = read_token(&args.token_file)?;
-    let tls = args.tls_ca.as_deref().map(ClientTls::from_ca_file).transpose()?;
-    let max_frame = 64 << 20;
-    let mut reader = RecordingReader::open(&args.file, max_frame)?;
-    let source = std::iter::from_fn(move || reader.read_frame().map_err(anyhow::Error::from).transpose());
-    let target = FeedTarget {
-        addr: args.to.clone(),
-        token,
-        instrument: args.instrument.clone(),
-        producer: args.producer.clone(),
-        tls,
-        max_frame,
-    };
-    let rt = tokio::runtime::Builder::new_multi_thread()
-        .worker_threads(2)
-        .enable_all()
-        .build()
-        .context("cannot start the runtime")?;
-    let report = rt.block_on(feed(source, &target, args.speed))?;
-    print_report(&args.file.display().to_string(), &report);
-    if report.acked_seq == 0 && report.frames > 0 {
-        bail!("the daemon acknowledged none of the {} frames", report.frames);
-    }
-    Ok(ExitCode::SUCCESS)
 }
 
 /// Prints a feed's figures on stdout.

@@ -11,8 +11,8 @@ use futures::{SinkExt, StreamExt};
 use glint_wire::pb::{self, subscriber_frame, subscriber_request};
 use tokio_util::codec::Framed;
 
+use crate::client::read_token;
 use crate::codec::{SubscriberClientCodec, refusal_name};
-use crate::listen::read_token;
 use crate::tls::{self, ClientTls};
 
 /// Arguments of `glint withdraw`.

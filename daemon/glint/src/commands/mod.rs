@@ -1,0 +1,13 @@
+//! One file per subcommand, each thin: parse its arguments, call the service, the clients or the engine,
+//! print. Nothing below this folder imports from it.
+
+pub(crate) mod bench_live;
+pub(crate) mod check_config;
+pub(crate) mod demo;
+pub(crate) mod feed;
+pub(crate) mod listen;
+pub(crate) mod reach;
+pub(crate) mod replay;
+pub(crate) mod run;
+pub(crate) mod simulate;
+pub(crate) mod withdraw;
