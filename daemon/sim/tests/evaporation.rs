@@ -151,7 +151,7 @@ value = [0.1]
         above.len()
     );
     // Time-integrated spectrum: E^-1.5 below the temperature of the window's start and E^-3 above it
-    // (Petkov et al. 2008, Astron. Lett. 34, 509; SCIENCE.md section 2, from memory). Statistical error
+    // (Petkov et al. 2008, Astron. Lett. 34, 509; docs/science.md section 2, from memory). Statistical error
     // of the index is about (s - 1) / sqrt(n): 0.001 and 0.025 here; the bounds are about 4 sigma.
     let s_below = truncated_power_law_index(&below, 10.0, t_max);
     let s_above = truncated_power_law_index(&above, t_max, 1e6);
