@@ -3,6 +3,7 @@
 
 #![allow(clippy::unwrap_used)] // tests may unwrap: a panic is the failure report
 
+mod bus;
 mod cli;
 mod layout;
 mod live;

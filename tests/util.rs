@@ -58,6 +58,11 @@ pub(crate) fn glint_bin() -> PathBuf {
 
 /// A test configuration: loopback port 0 everywhere, JSON logs, short heartbeats and timeouts.
 pub(crate) fn config_text(state_dir: &Path, extra_subscribers: &str) -> String {
+    config_text_for(state_dir, extra_subscribers, INSTRUMENT)
+}
+
+/// [`config_text`] for another built-in instrument.
+pub(crate) fn config_text_for(state_dir: &Path, extra_subscribers: &str, instrument: &str) -> String {
     format!(
         r#"
 [daemon]
@@ -82,9 +87,9 @@ heartbeat_s = 0.5
 [journal]
 
 [[instrument]]
-id = "{INSTRUMENT}"
+id = "{instrument}"
 token = "{PRODUCER_TOKEN}"
-spec_file = "builtin:ventisca-array"
+spec_file = "builtin:{instrument}"
 "#,
         state_dir.display()
     )
@@ -103,12 +108,17 @@ pub(crate) struct Daemon {
 impl Daemon {
     /// Starts a daemon with its state in `dir/state` (kept across restarts) and waits for its ports.
     pub(crate) fn start(dir: &Path, extra_subscribers: &str) -> Self {
+        Self::start_for(dir, extra_subscribers, INSTRUMENT)
+    }
+
+    /// [`start`](Self::start) for another built-in instrument.
+    pub(crate) fn start_for(dir: &Path, extra_subscribers: &str, instrument: &str) -> Self {
         let state = dir.join("state");
         std::fs::create_dir_all(&state).unwrap();
         let ports = state.join("ports.json");
         let _ = std::fs::remove_file(&ports);
         let cfg = dir.join("glint.toml");
-        std::fs::write(&cfg, config_text(&state, extra_subscribers)).unwrap();
+        std::fs::write(&cfg, config_text_for(&state, extra_subscribers, instrument)).unwrap();
         // One log per start, so a restarted daemon's lines can be told from the first one's.
         let n = (0..)
             .find(|i| !dir.join(format!("daemon-{i}.log")).exists())

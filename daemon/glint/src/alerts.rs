@@ -131,6 +131,7 @@ pub(crate) fn kind_name(kind: i32) -> &'static str {
         Ok(pb::AlertKind::Withdrawal) => "withdrawal",
         Ok(pb::AlertKind::Heartbeat) => "heartbeat",
         Ok(pb::AlertKind::Test) => "test",
+        Ok(pb::AlertKind::Joint) => "joint",
         _ => "unknown",
     }
 }
@@ -143,6 +144,7 @@ pub(crate) fn parse_kind(name: &str) -> Option<pb::AlertKind> {
         "withdrawal" => Some(pb::AlertKind::Withdrawal),
         "heartbeat" => Some(pb::AlertKind::Heartbeat),
         "test" => Some(pb::AlertKind::Test),
+        "joint" => Some(pb::AlertKind::Joint),
         _ => None,
     }
 }
@@ -249,6 +251,8 @@ struct AlertJson<'a> {
     latency: Option<LatencyJson>,
     #[serde(skip_serializing_if = "std::ops::Not::not")]
     replayed: bool,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    joint: Option<serde_json::Value>,
 }
 
 /// The alert as one JSON object (the JSON-lines shape of replay and `listen --json`). Latency appears only
@@ -335,8 +339,30 @@ pub(crate) fn alert_json(a: &pb::Alert) -> serde_json::Value {
         reason: &a.reason,
         latency,
         replayed: a.replayed,
+        joint: a.joint.as_ref().map(joint_json),
     };
     serde_json::to_value(j).unwrap_or(serde_json::Value::Null)
+}
+
+/// The joint part of a JOINT alert (`glint coincide`).
+fn joint_json(j: &pb::Joint) -> serde_json::Value {
+    serde_json::json!({
+        "alert_ids": j.alert_ids,
+        "instruments": j.instruments,
+        "time_difference_s": j.time_difference_s,
+        "window_s": j.window_s,
+        "light_travel_s": j.light_travel_s,
+        "separation_deg": j.separation_deg,
+        "combined_radius_deg": j.combined_radius_deg,
+        "overlap_sr": j.overlap_sr,
+        "position_chance": j.position_chance,
+        "single_far_per_year": j.single_far_per_year,
+        "far_per_year": j.far_per_year,
+        "has_distance": j.has_distance,
+        "distance_pc": j.distance_pc,
+        "distance_pc_lo": j.distance_pc_lo,
+        "distance_pc_hi": j.distance_pc_hi,
+    })
 }
 
 /// A short readable summary of one alert for a terminal.
@@ -390,6 +416,17 @@ pub(crate) fn alert_summary(a: &pb::Alert) -> String {
                 s += &format!("\n    evaporation fit not converged: {}", f.reason);
             }
         }
+    }
+    if let Some(j) = &a.joint {
+        s += &format!(
+            "\n    joint of {}: dt {:+.4} s within {:.4} s, {:.2} deg apart within {:.2} deg, joint FAR {:.2e}/yr",
+            j.alert_ids.join(" + "),
+            j.time_difference_s,
+            j.window_s,
+            j.separation_deg,
+            j.combined_radius_deg,
+            j.far_per_year
+        );
     }
     if !a.withdrawn_id.is_empty() {
         s += &format!("\n    withdraws {}: {}", a.withdrawn_id, a.reason);

@@ -48,6 +48,12 @@ enum Command {
     Listen(crate::commands::listen::ListenArgs),
     /// Withdraw an alert (needs the operator token).
     Withdraw(crate::commands::withdraw::WithdrawArgs),
+    /// Join alerts from several sites on the message bus into joint alerts (its own configuration).
+    Coincide(crate::commands::coincide::CoincideArgs),
+    /// Benchmark the bus sink: publish made-up test alerts through a desk to a NATS server, print alerts/s
+    /// and the latency from journal to acknowledged publish.
+    #[command(hide = true)]
+    BenchBus(crate::commands::bench_bus::BenchBusArgs),
 }
 
 /// Runs the chosen subcommand.
@@ -63,6 +69,8 @@ pub(crate) fn dispatch(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Feed(a) => crate::commands::feed::run(a),
         Command::Listen(a) => crate::commands::listen::run(a),
         Command::Withdraw(a) => crate::commands::withdraw::run(a),
+        Command::Coincide(a) => crate::commands::coincide::run(a),
+        Command::BenchBus(a) => crate::commands::bench_bus::run(a),
     };
     match result {
         // A configuration or a scenario that does not compile is the operator's to mend: exit code 2.

@@ -30,6 +30,10 @@ const BUILTIN_INSTRUMENTS: &[(&str, &str)] = &[
         "lumen-drift",
         include_str!("../../../deploy/instruments/lumen-drift.toml"),
     ),
+    (
+        "helado-array",
+        include_str!("../../../deploy/instruments/helado-array.toml"),
+    ),
 ];
 
 /// Looks up an instrument block shipped with glint by name.
@@ -236,6 +240,62 @@ pub(crate) struct InstrumentConfig {
     pub(crate) assess: AssessSettings,
 }
 
+/// `[bus]`: the NATS JetStream bus the bus sink publishes to and `glint coincide` reads from.
+#[derive(Debug, Clone)]
+pub(crate) struct BusConfig {
+    /// Server URL(s), comma-separated, e.g. `nats://127.0.0.1:4222`.
+    pub(crate) url: String,
+    /// NATS credentials file (JWT and nkey seed), when the server wants one.
+    pub(crate) credentials_file: Option<PathBuf>,
+    /// Subjects are `<subject_prefix>.<instrument>.<kind>`.
+    pub(crate) subject_prefix: String,
+    /// The JetStream stream that must hold the subjects; a publish acknowledged by another stream is an error.
+    pub(crate) stream: String,
+    /// A stream definition (nats-server's JSON stream configuration) to create the stream from when it does
+    /// not exist yet.
+    pub(crate) stream_file: Option<PathBuf>,
+    /// How long to wait for the server's acknowledgement of one publish before retrying.
+    pub(crate) ack_timeout: Duration,
+    /// Longest wait between two reconnection attempts (the wait doubles from 100 ms up to this).
+    pub(crate) max_backoff: Duration,
+}
+
+/// One `[[site]]` of a coincide configuration.
+#[derive(Debug, Clone, PartialEq)]
+pub(crate) struct SiteConfig {
+    /// The instrument id its alerts carry.
+    pub(crate) instrument: String,
+    /// Geodetic latitude and longitude (WGS84), degrees, and height above the ellipsoid, metres.
+    pub(crate) latitude_deg: f64,
+    pub(crate) longitude_deg: f64,
+    pub(crate) height_m: f64,
+    /// How far the site's clock may be off true time, seconds.
+    pub(crate) clock_tolerance_s: f64,
+    /// Radius of the field of view about the zenith (a ground array's largest zenith angle), degrees.
+    pub(crate) fov_radius_deg: f64,
+}
+
+/// The configuration of `glint coincide`: the bus, its own consumer and state, and the sites.
+#[derive(Debug, Clone)]
+pub(crate) struct CoincideConfig {
+    /// Where it came from.
+    pub(crate) source_name: String,
+    /// `[bus]` (required here).
+    pub(crate) bus: BusConfig,
+    /// Instrument name of joint alerts and the middle token of their subject.
+    pub(crate) name: String,
+    /// Durable consumer name on the stream.
+    pub(crate) consumer: String,
+    /// Holds the candidates kept for matching across restarts.
+    pub(crate) state_dir: PathBuf,
+    /// Candidates older than this (event time, behind the newest one seen) are forgotten, seconds.
+    pub(crate) horizon_s: f64,
+    /// Log filter.
+    pub(crate) log_level: String,
+    /// The sites, by instrument id.
+    pub(crate) sites: Vec<SiteConfig>,
+}
+
 /// The whole checked configuration.
 #[derive(Debug, Clone)]
 pub(crate) struct Config {
@@ -251,6 +311,8 @@ pub(crate) struct Config {
     pub(crate) journal: JournalConfig,
     /// `[metrics]`: the Prometheus text endpoint, if any.
     pub(crate) metrics_listen: Option<SocketAddr>,
+    /// `[bus]`: the message bus sink, when `url` is set.
+    pub(crate) bus: Option<BusConfig>,
     /// `[[instrument]]`, in file order.
     pub(crate) instruments: Vec<InstrumentConfig>,
 }
@@ -282,29 +344,7 @@ impl Config {
         base_dir: &Path,
         with_env: bool,
     ) -> Result<Self, ConfigError> {
-        let fail = |key: &str, message: String| ConfigError {
-            source_name: source_name.to_string(),
-            problems: vec![Problem {
-                key: key.into(),
-                message,
-            }],
-        };
-        let mut builder =
-            config::Config::builder().add_source(config::File::from_str(text, config::FileFormat::Toml));
-        if with_env {
-            builder = builder.add_source(
-                config::Environment::with_prefix("GLINT")
-                    .prefix_separator("_")
-                    .separator("__")
-                    .try_parsing(true)
-                    .list_separator(",")
-                    .with_list_parse_key("subscribers.tokens"),
-            );
-        }
-        let raw = builder.build().map_err(|e| fail("(syntax)", e.to_string()))?;
-        let root: Table = raw
-            .try_deserialize()
-            .map_err(|e| fail("(syntax)", e.to_string()))?;
+        let root = raw_root(text, source_name, with_env)?;
         let mut r = Reader {
             problems: Vec::new(),
             base_dir: base_dir.to_path_buf(),
@@ -326,6 +366,79 @@ impl Config {
     pub(crate) fn instrument(&self, id: &str) -> Option<&InstrumentConfig> {
         self.instruments.iter().find(|i| i.id == id)
     }
+}
+
+/// Whether configuration text is a `glint coincide` configuration (it has a `[coincide]` table).
+pub(crate) fn is_coincide_config(text: &str) -> bool {
+    text.parse::<Table>()
+        .is_ok_and(|t| t.contains_key("coincide"))
+}
+
+impl CoincideConfig {
+    /// Reads and compiles a coincide configuration file (no environment overrides).
+    pub(crate) fn load(path: &Path) -> Result<Self, ConfigError> {
+        let name = path.display().to_string();
+        let text = std::fs::read_to_string(path).map_err(|e| ConfigError {
+            source_name: name.clone(),
+            problems: vec![Problem {
+                key: "(file)".into(),
+                message: format!("cannot read: {e}"),
+            }],
+        })?;
+        let base = path.parent().map(Path::to_path_buf).unwrap_or_default();
+        Self::from_toml(&text, &name, &base)
+    }
+
+    /// Compiles coincide configuration text; `base_dir` resolves relative paths.
+    pub(crate) fn from_toml(text: &str, source_name: &str, base_dir: &Path) -> Result<Self, ConfigError> {
+        let root = raw_root(text, source_name, false)?;
+        let mut r = Reader {
+            problems: Vec::new(),
+            base_dir: base_dir.to_path_buf(),
+        };
+        let cfg = r.compile_coincide(root);
+        match cfg {
+            Some(c) if r.problems.is_empty() => Ok(Self {
+                source_name: source_name.to_string(),
+                ..c
+            }),
+            _ => Err(ConfigError {
+                source_name: source_name.to_string(),
+                problems: r.problems,
+            }),
+        }
+    }
+
+    /// The site of this instrument.
+    pub(crate) fn site(&self, instrument: &str) -> Option<&SiteConfig> {
+        self.sites.iter().find(|s| s.instrument == instrument)
+    }
+}
+
+/// Reads configuration text (with `GLINT_*` overrides when asked) into a raw TOML table.
+fn raw_root(text: &str, source_name: &str, with_env: bool) -> Result<Table, ConfigError> {
+        let fail = |key: &str, message: String| ConfigError {
+            source_name: source_name.to_string(),
+            problems: vec![Problem {
+                key: key.into(),
+                message,
+            }],
+        };
+        let mut builder =
+            config::Config::builder().add_source(config::File::from_str(text, config::FileFormat::Toml));
+        if with_env {
+            builder = builder.add_source(
+                config::Environment::with_prefix("GLINT")
+                    .prefix_separator("_")
+                    .separator("__")
+                    .try_parsing(true)
+                    .list_separator(",")
+                    .with_list_parse_key("subscribers.tokens"),
+            );
+        }
+        let raw = builder.build().map_err(|e| fail("(syntax)", e.to_string()))?;
+        raw.try_deserialize()
+            .map_err(|e| fail("(syntax)", e.to_string()))
 }
 
 /// Walks the raw tree, taking each known key out of its table so that what is left over is unknown.
@@ -647,6 +760,10 @@ impl Reader {
         };
         self.finish(s);
 
+        let mut s = self.section(&mut top, "bus");
+        let bus = self.bus(&mut s, false);
+        self.finish(s);
+
         let mut instruments = Vec::new();
         match top.table.remove("instrument") {
             Some(Value::Array(items)) => {
@@ -691,7 +808,208 @@ impl Reader {
             subscribers,
             journal,
             metrics_listen,
+            bus,
             instruments,
+        })
+    }
+
+    /// A `[bus]` block; `None` when `url` is empty (and `required` is false).
+    fn bus(&mut self, s: &mut Section, required: bool) -> Option<BusConfig> {
+        let url: String = self.get(s, "url", String::new());
+        let credentials: String = self.get(s, "credentials_file", String::new());
+        let subject_prefix: String = self.get(s, "subject_prefix", "glint.alerts".to_string());
+        let stream: String = self.get(s, "stream", "GLINT_ALERTS".to_string());
+        let stream_file: String = self.get(s, "stream_file", String::new());
+        let ack_timeout = self.seconds(s, "ack_timeout_s", 5.0);
+        let max_backoff = self.seconds(s, "max_backoff_s", 5.0);
+        if url.trim().is_empty() {
+            if required {
+                self.problem(s.key("url"), "missing (required): the NATS server URL, e.g. nats://127.0.0.1:4222");
+            }
+            return None;
+        }
+        for u in url.split(',') {
+            let u = u.trim();
+            let scheme_ok = ["nats://", "tls://", "ws://", "wss://"]
+                .iter()
+                .any(|p| u.starts_with(p));
+            if !scheme_ok || u.len() < 8 {
+                self.problem(
+                    s.key("url"),
+                    format!("'{u}' is not a NATS URL like nats://127.0.0.1:4222"),
+                );
+            }
+        }
+        if let Err(e) = check_subject_prefix(&subject_prefix) {
+            self.problem(s.key("subject_prefix"), e);
+        }
+        if stream.is_empty()
+            || stream
+                .chars()
+                .any(|c| c.is_whitespace() || matches!(c, '.' | '*' | '>' | '/' | '\\'))
+        {
+            self.problem(
+                s.key("stream"),
+                format!("'{stream}' is not a stream name (non-empty, no spaces, '.', '*', '>', '/')"),
+            );
+        }
+        let credentials_file = (!credentials.is_empty()).then(|| self.path(&credentials));
+        if let Some(p) = &credentials_file {
+            if !p.is_file() {
+                self.problem(
+                    s.key("credentials_file"),
+                    format!("{} is not a readable file", p.display()),
+                );
+            }
+        }
+        let stream_file = (!stream_file.is_empty()).then(|| self.path(&stream_file));
+        if let Some(p) = &stream_file {
+            match std::fs::read_to_string(p)
+                .map_err(|e| e.to_string())
+                .and_then(|t| {
+                    serde_json::from_str::<async_nats::jetstream::stream::Config>(&t).map_err(|e| e.to_string())
+                }) {
+                Ok(def) => {
+                    if def.name != stream {
+                        self.problem(
+                            s.key("stream_file"),
+                            format!("{} defines stream '{}', not '{stream}'", p.display(), def.name),
+                        );
+                    }
+                    let wanted = format!("{subject_prefix}.>");
+                    if !def.subjects.iter().any(|x| *x == wanted) {
+                        self.problem(
+                            s.key("stream_file"),
+                            format!("{}: the stream's subjects must include '{wanted}'", p.display()),
+                        );
+                    }
+                }
+                Err(e) => self.problem(
+                    s.key("stream_file"),
+                    format!("{} is not a stream definition: {e}", p.display()),
+                ),
+            }
+        }
+        Some(BusConfig {
+            url,
+            credentials_file,
+            subject_prefix,
+            stream,
+            stream_file,
+            ack_timeout,
+            max_backoff,
+        })
+    }
+
+    fn compile_coincide(&mut self, root: Table) -> Option<CoincideConfig> {
+        let mut top = Section {
+            prefix: String::new(),
+            table: root,
+        };
+        let mut s = self.section(&mut top, "bus");
+        let bus = self.bus(&mut s, true);
+        self.finish(s);
+
+        let mut s = self.section(&mut top, "coincide");
+        let name: String = self.get(&mut s, "name", "coincide".to_string());
+        if name.is_empty()
+            || !name
+                .chars()
+                .all(|c| c.is_ascii_alphanumeric() || c == '-' || c == '_')
+        {
+            self.problem(
+                s.key("name"),
+                format!("'{name}' must be non-empty ASCII letters, digits, '-' or '_'"),
+            );
+        }
+        let consumer: String = self.get(&mut s, "consumer", "glint-coincide".to_string());
+        if consumer.is_empty()
+            || consumer
+                .chars()
+                .any(|c| c.is_whitespace() || matches!(c, '.' | '*' | '>'))
+        {
+            self.problem(s.key("consumer"), format!("'{consumer}' is not a consumer name"));
+        }
+        let state_dir: String = self.get(&mut s, "state_dir", "/var/lib/glint-coincide".to_string());
+        let horizon_s: f64 = self.get(&mut s, "horizon_s", 3600.0);
+        self.in_range(&s, "horizon_s", horizon_s, 1.0, 30.0 * 86_400.0);
+        let log_level: String = self.get(&mut s, "log_level", "info".to_string());
+        if tracing_subscriber::EnvFilter::try_new(&log_level).is_err() {
+            self.problem(s.key("log_level"), format!("'{log_level}' is not a log filter"));
+        }
+        self.finish(s);
+
+        let mut sites = Vec::new();
+        match top.table.remove("site") {
+            Some(Value::Array(items)) => {
+                for (i, item) in items.into_iter().enumerate() {
+                    let prefix = format!("site[{i}]");
+                    match item {
+                        Value::Table(t) => {
+                            let mut q = Section { prefix, table: t };
+                            let instrument: Option<String> = self.required(&mut q, "instrument");
+                            let lat: Option<f64> = self.required(&mut q, "latitude_deg");
+                            let lon: Option<f64> = self.required(&mut q, "longitude_deg");
+                            let height_m: f64 = self.get(&mut q, "height_m", 0.0);
+                            let tol: f64 = self.get(&mut q, "clock_tolerance_s", 1e-6);
+                            let fov: f64 = self.get(&mut q, "fov_radius_deg", 45.0);
+                            if let Some(v) = lat {
+                                self.in_range(&q, "latitude_deg", v, -90.0, 90.0);
+                            }
+                            if let Some(v) = lon {
+                                self.in_range(&q, "longitude_deg", v, -180.0, 360.0);
+                            }
+                            self.in_range(&q, "height_m", height_m, -500.0, 100_000.0);
+                            self.in_range(&q, "clock_tolerance_s", tol, 0.0, 60.0);
+                            self.in_range(&q, "fov_radius_deg", fov, 0.1, 180.0);
+                            self.finish(q);
+                            if let (Some(instrument), Some(latitude_deg), Some(longitude_deg)) =
+                                (instrument, lat, lon)
+                            {
+                                sites.push(SiteConfig {
+                                    instrument,
+                                    latitude_deg,
+                                    longitude_deg,
+                                    height_m,
+                                    clock_tolerance_s: tol,
+                                    fov_radius_deg: fov,
+                                });
+                            }
+                        }
+                        other => {
+                            self.problem(prefix, format!("expected a table, found {}", other.type_str()))
+                        }
+                    }
+                }
+            }
+            Some(other) => self.problem(
+                "site",
+                format!("expected [[site]] tables, found {}", other.type_str()),
+            ),
+            None => {}
+        }
+        if sites.len() < 2 && !self.problems.iter().any(|p| p.key.starts_with("site")) {
+            self.problem("site", "at least two [[site]] tables are needed to find coincidences");
+        }
+        let mut seen = BTreeMap::new();
+        for (i, site) in sites.iter().enumerate() {
+            if let Some(j) = seen.insert(site.instrument.clone(), i) {
+                self.problem(
+                    format!("site[{i}].instrument"),
+                    format!("'{}' is already used by site[{j}]", site.instrument),
+                );
+            }
+        }
+        self.finish(top);
+        Some(CoincideConfig {
+            source_name: String::new(),
+            bus: bus?,
+            name,
+            consumer,
+            state_dir: self.path(&expand_tmp(&state_dir)),
+            horizon_s,
+            log_level,
+            sites,
         })
     }
 
@@ -887,6 +1205,21 @@ impl Reader {
 
 /// `$TMPDIR` in `state_dir` expands to the system's temporary directory, so the embedded default works for
 /// any user.
+/// A subject prefix: one or more dot-separated tokens without wildcards or whitespace.
+pub(crate) fn check_subject_prefix(p: &str) -> Result<(), String> {
+    let ok = !p.is_empty()
+        && p.split('.').all(|t| {
+            !t.is_empty() && !t.chars().any(|c| c.is_whitespace() || matches!(c, '*' | '>'))
+        });
+    if ok {
+        Ok(())
+    } else {
+        Err(format!(
+            "'{p}' is not a subject prefix (dot-separated tokens, none empty, no spaces, '*' or '>')"
+        ))
+    }
+}
+
 fn expand_tmp(p: &str) -> String {
     p.replace("$TMPDIR", &std::env::temp_dir().display().to_string())
 }

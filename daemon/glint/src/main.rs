@@ -6,12 +6,13 @@ use std::process::ExitCode;
 use clap::Parser;
 
 // Plumbing every layer may use: configuration, framing, sockets, TLS, time formats, logs, alert rendering,
-// the daemon's own measurements.
+// the daemon's own measurements, the message bus's conventions.
 mod alerts;
 mod codec;
 mod config;
 mod logging;
 mod metrics;
+mod natsbus;
 mod net;
 mod timefmt;
 mod tls;
@@ -21,6 +22,9 @@ mod desk;
 mod http;
 mod serve;
 mod sinks;
+
+// Joint alerts of several sites from the bus.
+mod coincide;
 
 // Clients of a running daemon, then the subcommands on top of everything.
 mod cli;

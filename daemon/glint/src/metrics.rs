@@ -1,6 +1,6 @@
 //! The daemon's telemetry: latency histograms per stage and end to end (hdrhistogram, nanoseconds), counters
 //! of photons, frames, alerts and connections, and an optional plain-HTTP endpoint serving them in the
-//! Prometheus text format. Memory is fixed: six histograms and a handful of atomics.
+//! Prometheus text format. Memory is fixed: seven histograms and a handful of atomics.
 
 use std::fmt::Write as _;
 use std::sync::Mutex;
@@ -25,16 +25,19 @@ pub(crate) enum Stage {
     FlashDecide,
     /// `EndToEnd` for flashes only: the low-latency path the daemon exists for.
     FlashEndToEnd,
+    /// Journal fsync to the bus server's acknowledgement of the publish (the bus sink).
+    BusAck,
 }
 
 impl Stage {
-    const ALL: [Self; 6] = [
+    const ALL: [Self; 7] = [
         Self::Decide,
         Self::Journal,
         Self::Send,
         Self::EndToEnd,
         Self::FlashDecide,
         Self::FlashEndToEnd,
+        Self::BusAck,
     ];
 
     fn index(self) -> usize {
@@ -45,6 +48,7 @@ impl Stage {
             Self::EndToEnd => 3,
             Self::FlashDecide => 4,
             Self::FlashEndToEnd => 5,
+            Self::BusAck => 6,
         }
     }
 
@@ -57,6 +61,7 @@ impl Stage {
             Self::EndToEnd => "end_to_end",
             Self::FlashDecide => "flash_decide",
             Self::FlashEndToEnd => "flash_end_to_end",
+            Self::BusAck => "bus_ack",
         }
     }
 }
@@ -130,6 +135,12 @@ pub(crate) struct Metrics {
     pub(crate) subscribers_dropped: AtomicU64,
     /// Journal fsyncs by the desk's committer; alerts over fsyncs is how much group commit saves.
     pub(crate) journal_fsyncs: AtomicU64,
+    /// Alerts the bus acknowledged (duplicates included).
+    pub(crate) bus_published: AtomicU64,
+    /// Of those, alerts the bus already held under the same id (republished after a restart or failure).
+    pub(crate) bus_duplicates: AtomicU64,
+    /// Bus publishes that failed (and were retried from the sink's cursor).
+    pub(crate) bus_failures: AtomicU64,
 }
 
 /// Longest latency the histograms track: one hour in nanoseconds (longer values are clamped).
@@ -156,6 +167,9 @@ impl Metrics {
             subscribers: AtomicI64::new(0),
             subscribers_dropped: AtomicU64::new(0),
             journal_fsyncs: AtomicU64::new(0),
+            bus_published: AtomicU64::new(0),
+            bus_duplicates: AtomicU64::new(0),
+            bus_failures: AtomicU64::new(0),
         }
     }
 
@@ -242,6 +256,21 @@ impl Metrics {
                 "glint_journal_fsyncs_total",
                 "Journal fsyncs (each covers every alert queued while the previous one ran).",
                 get(&self.journal_fsyncs),
+            ),
+            (
+                "glint_bus_published_total",
+                "Alerts the bus server acknowledged (duplicates included).",
+                get(&self.bus_published),
+            ),
+            (
+                "glint_bus_duplicates_total",
+                "Alerts the bus already held under the same id.",
+                get(&self.bus_duplicates),
+            ),
+            (
+                "glint_bus_failures_total",
+                "Bus publishes that failed and were retried.",
+                get(&self.bus_failures),
             ),
         ];
         for (name, help, v) in counters {

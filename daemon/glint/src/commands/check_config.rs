@@ -1,9 +1,10 @@
-//! `glint check-config`: compiles a configuration and lists every problem in it at once.
+//! `glint check-config`: compiles a configuration (the daemon's, or `glint coincide`'s) and lists every
+//! problem in it at once.
 
 use std::path::PathBuf;
 use std::process::ExitCode;
 
-use crate::config::config_or_exit;
+use crate::config::{BadConfig, CoincideConfig, config_or_exit, is_coincide_config};
 
 /// Arguments of `glint check-config`.
 #[derive(Debug, clap::Args)]
@@ -13,6 +14,25 @@ pub(crate) struct CheckConfigArgs {
 }
 
 pub(crate) fn run(a: &CheckConfigArgs) -> anyhow::Result<ExitCode> {
+    // A `glint coincide` configuration (it has a [coincide] table) is checked as one.
+    if let Some(f) = &a.file {
+        if std::fs::read_to_string(f).is_ok_and(|t| is_coincide_config(&t)) {
+            let cfg = CoincideConfig::load(f).map_err(BadConfig)?;
+            println!(
+                "{}: ok (coincide, bus {} stream {}, {} site(s): {})",
+                cfg.source_name,
+                cfg.bus.url,
+                cfg.bus.stream,
+                cfg.sites.len(),
+                cfg.sites
+                    .iter()
+                    .map(|s| s.instrument.as_str())
+                    .collect::<Vec<_>>()
+                    .join(", ")
+            );
+            return Ok(ExitCode::SUCCESS);
+        }
+    }
     let cfg = config_or_exit(a.file.as_ref())?;
     println!(
         "{}: ok ({} instrument(s): {})",
@@ -24,5 +44,11 @@ pub(crate) fn run(a: &CheckConfigArgs) -> anyhow::Result<ExitCode> {
             .collect::<Vec<_>>()
             .join(", ")
     );
+    if let Some(b) = &cfg.bus {
+        println!(
+            "  bus: {} stream {} subjects {}.<instrument>.<kind>",
+            b.url, b.stream, b.subject_prefix
+        );
+    }
     Ok(ExitCode::SUCCESS)
 }

@@ -1,8 +1,10 @@
 //! One file per subcommand, each thin: parse its arguments, call the service, the clients or the engine,
 //! print. Nothing below this folder imports from it.
 
+pub(crate) mod bench_bus;
 pub(crate) mod bench_live;
 pub(crate) mod check_config;
+pub(crate) mod coincide;
 pub(crate) mod demo;
 pub(crate) mod feed;
 pub(crate) mod listen;

@@ -311,6 +311,36 @@ impl Desk {
         out.pop().ok_or(WithdrawError::Desk(DeskError::Stopped))
     }
 
+    /// Issues `n` TEST alerts (kind TEST, no trigger: they name no real event) for `instrument`, journalled
+    /// and published like any alert; returns once they are on disk. What `glint bench-bus` measures the bus
+    /// sink with. Blocking.
+    pub(crate) fn issue_test_alerts(
+        &self,
+        instrument: &str,
+        n: usize,
+    ) -> Result<Vec<Arc<pb::Alert>>, DeskError> {
+        let g = self.room_for(n)?;
+        let mut g = g;
+        let now = now_unix_ns();
+        let issued_gps = unix_ns_to_gps_ns(now);
+        let alerts = (0..n)
+            .map(|_| {
+                let mut a = g.sequencer.operator_withdrawal("", "", issued_gps);
+                a.kind = pb::AlertKind::Test as i32;
+                a.instrument = instrument.to_string();
+                a.reason = "test alert: names no real event".into();
+                let seq = a.seq;
+                alerts::stamp(&mut a, seq, issued_gps);
+                a
+            })
+            .collect();
+        let stamps = Stamps {
+            received_unix_ns: now,
+            decided_unix_ns: now,
+        };
+        self.issue_and_wait(g, alerts, stamps)
+    }
+
     /// Waits until every alert numbered so far is journalled, then makes sure the journal is on disk (every
     /// commit already fsyncs; this is the shutdown stage). Blocking.
     pub(crate) fn sync(&self) -> Result<(), DeskError> {

@@ -2,7 +2,8 @@
 //! instrument (fed by a bounded channel, issuing findings through the alert desk; evaporation fits go to one
 //! fit worker), and stops in stages on SIGTERM/SIGINT within `daemon.shutdown_deadline`: stop accepting,
 //! drain the engines (open candidates are assessed as cut short) and the fit worker, fsync the journal, say
-//! goodbye to subscribers. A second signal exits at once.
+//! goodbye to subscribers, let the bus sink (when `[bus]` is set) publish what is left. A second signal exits
+//! at once.
 //! Bound addresses are logged and written to `state_dir/ports.json` (useful with port 0).
 
 pub(crate) mod driver;
@@ -65,6 +66,8 @@ pub(crate) struct Daemon {
     fatal: CancellationToken,
     ingest_tasks: TaskTracker,
     subscriber_tasks: TaskTracker,
+    /// The bus sink, when `[bus]` is configured.
+    bus_tasks: TaskTracker,
     ingest: Arc<IngestShared>,
     engines: Vec<(String, std::thread::JoinHandle<()>)>,
     engines_done: tokio::sync::mpsc::Receiver<String>,
@@ -291,6 +294,16 @@ impl Daemon {
             subscriber_tasks.clone(),
             stop_accept.clone(),
         ));
+        let bus_tasks = TaskTracker::new();
+        if let Some(bus) = cfg.bus.clone() {
+            bus_tasks.spawn(crate::sinks::bus::run(
+                bus,
+                desk.clone(),
+                state_dir.clone(),
+                metrics.clone(),
+                closing.clone(),
+            ));
+        }
         let mut metrics_addr = None;
         if let Some(addr) = cfg.metrics_listen {
             let l = TcpListener::bind(addr)
@@ -328,6 +341,7 @@ impl Daemon {
             fatal,
             ingest_tasks,
             subscriber_tasks,
+            bus_tasks,
             ingest,
             engines,
             engines_done,
@@ -391,6 +405,12 @@ impl Daemon {
         tokio::time::timeout_at(end, self.subscriber_tasks.wait())
             .await
             .map_err(|_| late("saying goodbye to subscribers"))?;
+        // 5. The bus sink publishes what is left while the bus answers; what it could not is in the journal
+        // and goes out after the next start, so running out of time here is not a failed shutdown.
+        self.bus_tasks.close();
+        if tokio::time::timeout_at(end, self.bus_tasks.wait()).await.is_err() {
+            tracing::warn!("the bus sink did not finish within the shutdown deadline; the next start resumes it");
+        }
         tracing::info!(
             last_seq = self.desk.last_seq(),
             "shut down in {:.2} s",

@@ -1,7 +1,9 @@
 //! Sinks: the consumers of the alert journal. Every sink keeps one contract, [`Sink`]: its own cursor into
 //! the desk, a stated overflow policy, and a bounded shutdown. [`drive`] runs that contract for any sink, so
 //! a slow or absent sink never holds back the desk, ingest or another sink, and a new sink (email, a message
-//! bus) is one file beside `subscribers.rs` that implements the trait.
+//! bus) is one file beside `subscribers.rs` that implements the trait. A sink whose peer acknowledges durably
+//! (the bus, `bus.rs`) reports its acknowledged cursor through [`Sink::acknowledged`], and `drive` hands that
+//! back after a failure, so the caller resumes from what the peer holds rather than from what was sent.
 
 use std::sync::Arc;
 use std::time::Duration;
@@ -11,6 +13,7 @@ use tokio_util::sync::CancellationToken;
 
 use crate::desk::Desk;
 
+pub(crate) mod bus;
 pub(crate) mod subscribers;
 
 /// Alerts read from the desk per step of a cursor; bounds the memory one sink holds at a time.
@@ -23,6 +26,9 @@ pub(crate) enum Overflow {
     /// Dropped when no alert could be handed over for this long (time without progress, not time per
     /// chunk, so a slow but steady reader is never dropped); the peer resumes later from its own cursor.
     DropWhenStalled(Duration),
+    /// Never dropped: a step without progress for this long is a failure, after which the sink's owner
+    /// reconnects with backoff and resumes from [`Sink::acknowledged`] (the journal holds what is behind).
+    RetryFromAcknowledged(Duration),
 }
 
 /// Why a sink stopped.
@@ -81,18 +87,40 @@ pub(crate) trait Sink {
 
     /// The daemon is closing: last words and close, bounded in time.
     async fn close(&mut self) -> anyhow::Result<()>;
+
+    /// The last sequence number the peer has acknowledged and the sink has kept durably, for a sink whose
+    /// cursor moves only on acknowledgement; `None` (the default) for a sink whose cursor is what it sent.
+    fn acknowledged(&self) -> Option<u64> {
+        None
+    }
 }
 
 /// Runs `sink` from `cursor` (the last sequence number it has) until the peer leaves, the sink stalls, or
 /// `closing` is cancelled (then everything journalled so far is delivered before `close`). `cursor` is
-/// left at the last sequence number handed over.
+/// left at the last sequence number handed over, or, after a failure of a sink that keeps an acknowledged
+/// cursor, at that cursor.
 pub(crate) async fn drive<S: Sink>(
     sink: &mut S,
     desk: &Arc<Desk>,
     cursor: &mut u64,
     closing: &CancellationToken,
 ) -> Result<(), SinkError> {
-    let Overflow::DropWhenStalled(stall) = sink.overflow();
+    let result = drive_from(sink, desk, cursor, closing).await;
+    if result.is_err() {
+        if let Some(acked) = sink.acknowledged() {
+            *cursor = acked;
+        }
+    }
+    result
+}
+
+async fn drive_from<S: Sink>(
+    sink: &mut S,
+    desk: &Arc<Desk>,
+    cursor: &mut u64,
+    closing: &CancellationToken,
+) -> Result<(), SinkError> {
+    let (Overflow::DropWhenStalled(stall) | Overflow::RetryFromAcknowledged(stall)) = sink.overflow();
     let mut watch = desk.watch();
     let mut shutting_down = false;
     loop {
