@@ -56,12 +56,8 @@ pub(crate) fn glint_bin() -> PathBuf {
     bin
 }
 
-/// A test configuration: loopback port 0 everywhere, JSON logs, short heartbeats and timeouts.
-pub(crate) fn config_text(state_dir: &Path, extra_subscribers: &str) -> String {
-    config_text_for(state_dir, extra_subscribers, INSTRUMENT)
-}
-
-/// [`config_text`] for another built-in instrument.
+/// A test configuration for a built-in instrument: loopback port 0 everywhere, JSON logs, short heartbeats
+/// and timeouts. `extra_subscribers` goes at the end of `[subscribers]` (and may open further tables).
 pub(crate) fn config_text_for(state_dir: &Path, extra_subscribers: &str, instrument: &str) -> String {
     format!(
         r#"

@@ -27,7 +27,7 @@ pub(crate) struct BenchBusArgs {
     /// Alerts per second to issue; 0 issues them in batches of 64 as fast as the desk takes them.
     #[arg(long, default_value_t = 0.0)]
     rate: f64,
-    /// Stream to publish to (made with file storage if missing); subjects `bench.<instrument>.test`.
+    /// Stream to publish to (made with file storage if missing); subjects `bench.<stream>.bench.test`.
     #[arg(long, default_value = "GLINT_BENCH")]
     stream: String,
 }
@@ -52,7 +52,7 @@ pub(crate) fn run(a: BenchBusArgs) -> anyhow::Result<ExitCode> {
     let cfg = BusConfig {
         url: a.url.clone(),
         credentials_file: None,
-        subject_prefix: "bench".into(),
+        subject_prefix: format!("bench.{}", a.stream),
         stream: a.stream.clone(),
         stream_file: None,
         ack_timeout: Duration::from_secs(5),
@@ -67,7 +67,7 @@ pub(crate) fn run(a: BenchBusArgs) -> anyhow::Result<ExitCode> {
         let js = crate::natsbus::context(client, &cfg);
         js.get_or_create_stream(async_nats::jetstream::stream::Config {
             name: cfg.stream.clone(),
-            subjects: vec!["bench.>".into()],
+            subjects: vec![format!("{}.>", cfg.subject_prefix)],
             storage: async_nats::jetstream::stream::StorageType::File,
             duplicate_window: Duration::from_secs(120),
             ..Default::default()
