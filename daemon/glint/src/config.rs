@@ -370,8 +370,7 @@ impl Config {
 
 /// Whether configuration text is a `glint coincide` configuration (it has a `[coincide]` table).
 pub(crate) fn is_coincide_config(text: &str) -> bool {
-    text.parse::<Table>()
-        .is_ok_and(|t| t.contains_key("coincide"))
+    text.parse::<Table>().is_ok_and(|t| t.contains_key("coincide"))
 }
 
 impl CoincideConfig {
@@ -417,28 +416,27 @@ impl CoincideConfig {
 
 /// Reads configuration text (with `GLINT_*` overrides when asked) into a raw TOML table.
 fn raw_root(text: &str, source_name: &str, with_env: bool) -> Result<Table, ConfigError> {
-        let fail = |key: &str, message: String| ConfigError {
-            source_name: source_name.to_string(),
-            problems: vec![Problem {
-                key: key.into(),
-                message,
-            }],
-        };
-        let mut builder =
-            config::Config::builder().add_source(config::File::from_str(text, config::FileFormat::Toml));
-        if with_env {
-            builder = builder.add_source(
-                config::Environment::with_prefix("GLINT")
-                    .prefix_separator("_")
-                    .separator("__")
-                    .try_parsing(true)
-                    .list_separator(",")
-                    .with_list_parse_key("subscribers.tokens"),
-            );
-        }
-        let raw = builder.build().map_err(|e| fail("(syntax)", e.to_string()))?;
-        raw.try_deserialize()
-            .map_err(|e| fail("(syntax)", e.to_string()))
+    let fail = |key: &str, message: String| ConfigError {
+        source_name: source_name.to_string(),
+        problems: vec![Problem {
+            key: key.into(),
+            message,
+        }],
+    };
+    let mut builder =
+        config::Config::builder().add_source(config::File::from_str(text, config::FileFormat::Toml));
+    if with_env {
+        builder = builder.add_source(
+            config::Environment::with_prefix("GLINT")
+                .prefix_separator("_")
+                .separator("__")
+                .try_parsing(true)
+                .list_separator(",")
+                .with_list_parse_key("subscribers.tokens"),
+        );
+    }
+    let raw = builder.build().map_err(|e| fail("(syntax)", e.to_string()))?;
+    raw.try_deserialize().map_err(|e| fail("(syntax)", e.to_string()))
 }
 
 /// Walks the raw tree, taking each known key out of its table so that what is left over is unknown.
@@ -824,7 +822,10 @@ impl Reader {
         let max_backoff = self.seconds(s, "max_backoff_s", 5.0);
         if url.trim().is_empty() {
             if required {
-                self.problem(s.key("url"), "missing (required): the NATS server URL, e.g. nats://127.0.0.1:4222");
+                self.problem(
+                    s.key("url"),
+                    "missing (required): the NATS server URL, e.g. nats://127.0.0.1:4222",
+                );
             }
             return None;
         }
@@ -867,7 +868,8 @@ impl Reader {
             match std::fs::read_to_string(p)
                 .map_err(|e| e.to_string())
                 .and_then(|t| {
-                    serde_json::from_str::<async_nats::jetstream::stream::Config>(&t).map_err(|e| e.to_string())
+                    serde_json::from_str::<async_nats::jetstream::stream::Config>(&t)
+                        .map_err(|e| e.to_string())
                 }) {
                 Ok(def) => {
                     if def.name != stream {
@@ -877,7 +879,7 @@ impl Reader {
                         );
                     }
                     let wanted = format!("{subject_prefix}.>");
-                    if !def.subjects.iter().any(|x| *x == wanted) {
+                    if !def.subjects.contains(&wanted) {
                         self.problem(
                             s.key("stream_file"),
                             format!("{}: the stream's subjects must include '{wanted}'", p.display()),
@@ -989,7 +991,10 @@ impl Reader {
             None => {}
         }
         if sites.len() < 2 && !self.problems.iter().any(|p| p.key.starts_with("site")) {
-            self.problem("site", "at least two [[site]] tables are needed to find coincidences");
+            self.problem(
+                "site",
+                "at least two [[site]] tables are needed to find coincidences",
+            );
         }
         let mut seen = BTreeMap::new();
         for (i, site) in sites.iter().enumerate() {
@@ -1208,9 +1213,8 @@ impl Reader {
 /// A subject prefix: one or more dot-separated tokens without wildcards or whitespace.
 pub(crate) fn check_subject_prefix(p: &str) -> Result<(), String> {
     let ok = !p.is_empty()
-        && p.split('.').all(|t| {
-            !t.is_empty() && !t.chars().any(|c| c.is_whitespace() || matches!(c, '*' | '>'))
-        });
+        && p.split('.')
+            .all(|t| !t.is_empty() && !t.chars().any(|c| c.is_whitespace() || matches!(c, '*' | '>')));
     if ok {
         Ok(())
     } else {
@@ -1269,6 +1273,60 @@ mod tests {
         assert!(c.ingest.listen.ip().is_loopback());
         assert!(c.subscribers.listen.ip().is_loopback());
         assert_eq!(c.instruments[0].search.ladder_s.len(), 8);
+    }
+
+    #[test]
+    fn bus_block_is_checked_and_the_shipped_files_compile() {
+        let root = Path::new(env!("CARGO_MANIFEST_DIR")).join("../../deploy");
+        let shipped = std::fs::read_to_string(root.join("glint.toml")).unwrap();
+        let on = shipped.replace(
+            "url = \"\"",
+            "url = \"nats://127.0.0.1:4222\"\nstream_file = \"nats/glint-alerts-stream.json\"",
+        );
+        let cfg = Config::from_toml(&on, "glint.toml", &root, false).unwrap();
+        let bus = cfg.bus.expect("the bus is on");
+        assert_eq!(
+            (bus.subject_prefix.as_str(), bus.stream.as_str()),
+            ("glint.alerts", "GLINT_ALERTS")
+        );
+        assert_eq!(bus.ack_timeout, Duration::from_secs(5));
+        // Off by default.
+        assert!(
+            Config::from_toml(&shipped, "glint.toml", &root, false)
+                .unwrap()
+                .bus
+                .is_none()
+        );
+        let c = CoincideConfig::load(&root.join("coincide.toml")).unwrap();
+        assert_eq!(c.sites.len(), 2);
+        assert!(is_coincide_config(
+            &std::fs::read_to_string(root.join("coincide.toml")).unwrap()
+        ));
+        let bad = r#"
+            [bus]
+            url = "http://x"
+            subject_prefix = "a..b"
+            stream = "a.b"
+            stream_file = "/nonexistent/stream.json"
+            bogus = 1
+        "#;
+        let text = format!(
+            "{bad}\n[[instrument]]\nid = \"a\"\ntoken = \"12345678\"\nspec_file = \"builtin:ventisca-array\"\n"
+        );
+        let e = Config::from_toml(&text, "bad.toml", Path::new("."), false).expect_err("must fail");
+        let keys: Vec<&str> = e.problems.iter().map(|p| p.key.as_str()).collect();
+        for k in [
+            "bus.url",
+            "bus.subject_prefix",
+            "bus.stream",
+            "bus.stream_file",
+            "bus.bogus",
+        ] {
+            assert!(keys.contains(&k), "missing problem for {k}; got {keys:?}");
+        }
+        let e = CoincideConfig::from_toml("[coincide]\n", "c.toml", Path::new(".")).expect_err("must fail");
+        let keys: Vec<&str> = e.problems.iter().map(|p| p.key.as_str()).collect();
+        assert!(keys.contains(&"bus.url") && keys.contains(&"site"), "{keys:?}");
     }
 
     #[test]

@@ -48,7 +48,9 @@ pub(crate) async fn connect(cfg: &BusConfig, client_name: &str) -> anyhow::Resul
 
 /// Wait before reconnection attempt `attempts` (from 1): 100 ms doubling, capped at `max`.
 pub(crate) fn backoff(attempts: usize, max: Duration) -> Duration {
-    let exp = u32::try_from(attempts.saturating_sub(1)).unwrap_or(u32::MAX).min(16);
+    let exp = u32::try_from(attempts.saturating_sub(1))
+        .unwrap_or(u32::MAX)
+        .min(16);
     Duration::from_millis(100u64 << exp).min(max)
 }
 
@@ -65,8 +67,7 @@ pub(crate) async fn ensure_stream(js: &jetstream::Context, cfg: &BusConfig) -> a
     let Some(path) = &cfg.stream_file else {
         return Ok(());
     };
-    let text =
-        std::fs::read_to_string(path).with_context(|| format!("cannot read {}", path.display()))?;
+    let text = std::fs::read_to_string(path).with_context(|| format!("cannot read {}", path.display()))?;
     let def: jetstream::stream::Config = serde_json::from_str(&text)
         .with_context(|| format!("{} is not a stream definition", path.display()))?;
     js.get_or_create_stream(def)
@@ -120,7 +121,10 @@ mod tests {
             kind: pb::AlertKind::Assessment as i32,
             ..Default::default()
         };
-        assert_eq!(subject("glint.alerts", &a), "glint.alerts.ventisca-array.assessment");
+        assert_eq!(
+            subject("glint.alerts", &a),
+            "glint.alerts.ventisca-array.assessment"
+        );
         let j = pb::Alert {
             instrument: "coincide".into(),
             kind: pb::AlertKind::Joint as i32,
@@ -132,9 +136,7 @@ mod tests {
     #[test]
     fn backoff_doubles_up_to_its_cap() {
         let max = Duration::from_secs(5);
-        let got: Vec<u64> = (1..=8)
-            .map(|n| backoff(n, max).as_millis() as u64)
-            .collect();
+        let got: Vec<u64> = (1..=8).map(|n| backoff(n, max).as_millis() as u64).collect();
         assert_eq!(got, vec![100, 200, 400, 800, 1600, 3200, 5000, 5000]);
         assert_eq!(backoff(usize::MAX, max), max);
     }

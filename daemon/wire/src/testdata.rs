@@ -202,6 +202,23 @@ pub(crate) fn full_alert() -> pb::Alert {
             reorder_hold_ns: 50,
         }),
         replayed: true,
+        joint: Some(pb::Joint {
+            alert_ids: vec!["GL-a-1".into(), "GL-b-7".into()],
+            instruments: vec!["a".into(), "b".into()],
+            time_difference_s: 0.25,
+            window_s: 1.5,
+            light_travel_s: 0.0014,
+            separation_deg: 0.1,
+            combined_radius_deg: 0.4,
+            overlap_sr: 1.7,
+            position_chance: 8.9e-5,
+            single_far_per_year: vec![0.01, 0.02],
+            far_per_year: 1.7e-12,
+            has_distance: true,
+            distance_pc: 0.03,
+            distance_pc_lo: 0.02,
+            distance_pc_hi: 0.04,
+        }),
     }
 }
 

@@ -25,7 +25,9 @@ pub(crate) fn state_path(cfg: &CoincideConfig) -> PathBuf {
 
 fn load_state(path: &Path) -> anyhow::Result<CoincideState> {
     match std::fs::read_to_string(path) {
-        Ok(t) => serde_json::from_str(&t).with_context(|| format!("{} is not coincide state", path.display())),
+        Ok(t) => {
+            serde_json::from_str(&t).with_context(|| format!("{} is not coincide state", path.display()))
+        }
         Err(e) if e.kind() == std::io::ErrorKind::NotFound => Ok(CoincideState::default()),
         Err(e) => Err(e).with_context(|| format!("cannot read {}", path.display())),
     }

@@ -222,11 +222,8 @@ pub(crate) fn joint_of(
     sb: &SiteConfig,
 ) -> Option<JointNumbers> {
     let light = light_travel_s(sa, sb);
-    let window_s = light
-        + sa.clock_tolerance_s
-        + sb.clock_tolerance_s
-        + a.half_window_s()
-        + b.half_window_s();
+    let window_s =
+        light + sa.clock_tolerance_s + sb.clock_tolerance_s + a.half_window_s() + b.half_window_s();
     let dt = b.centre_s() - a.centre_s();
     if dt.abs() > window_s {
         return None;
@@ -298,10 +295,7 @@ pub(crate) fn joint_alert(
     let ra = v[1].atan2(v[0]).to_degrees().rem_euclid(360.0);
     let dec = (v[2] / norm).clamp(-1.0, 1.0).asin().to_degrees();
     let radius = (wa + wb).sqrt().recip();
-    let (start, end) = (
-        a.start_gps_ns.min(b.start_gps_ns),
-        a.end_gps_ns.max(b.end_gps_ns),
-    );
+    let (start, end) = (a.start_gps_ns.min(b.start_gps_ns), a.end_gps_ns.max(b.end_gps_ns));
     let mut ids = [a.id.as_str(), b.id.as_str()];
     ids.sort_unstable();
     let id = format!(

@@ -84,7 +84,15 @@ fn agreement_needs_time_and_position() {
     let expected = 2.0 * (j.window_s / SECONDS_PER_YEAR) * 1.0 * 2.0 * j.position_chance;
     assert!((j.far_per_year - expected).abs() <= 1e-12 * expected);
     // Too late by a millisecond beyond the window: not joined.
-    let late = cand("late", "b", t0 + ((j.window_s + 1e-3) * 1e9) as i64, 35.0, -24.0, 0.3, 2.0);
+    let late = cand(
+        "late",
+        "b",
+        t0 + ((j.window_s + 1e-3) * 1e9) as i64,
+        35.0,
+        -24.0,
+        0.3,
+        2.0,
+    );
     assert!(joint_of(&x, &a, &late, &b).is_none());
     // A trigger window widens it: half of each window counts.
     let mut wide = late.clone();
@@ -150,8 +158,16 @@ fn joint_false_alarm_rate_matches_a_simulation_of_two_unrelated_streams() {
     }
     let f_joint = predicted.expect("some coincidences");
     // The formula by hand: W = 0.05 s, cap of 10 deg over 4 pi.
-    let by_hand = joint_far_per_year(far, far, 0.05, cap_sr(10f64.to_radians()) / (4.0 * std::f64::consts::PI));
-    assert!((f_joint - by_hand).abs() < 1e-9 * by_hand, "{f_joint} vs {by_hand}");
+    let by_hand = joint_far_per_year(
+        far,
+        far,
+        0.05,
+        cap_sr(10f64.to_radians()) / (4.0 * std::f64::consts::PI),
+    );
+    assert!(
+        (f_joint - by_hand).abs() < 1e-9 * by_hand,
+        "{f_joint} vs {by_hand}"
+    );
     let expected = f_joint * span_s / SECONDS_PER_YEAR;
     // About 760 expected; the Poisson sigma is about 28, so 5 sigma is about 18%.
     let tolerance = 5.0 * expected.sqrt();
@@ -222,7 +238,11 @@ fn coincider_joins_across_sites_once_and_forgets_withdrawn_candidates() {
     let (none, changed) = c.on_alert(&assessment("v1", "ventisca-array", t, 35.0, iso), 0);
     assert!(none.is_empty() && changed);
     // The same instrument never joins itself.
-    assert!(c.on_alert(&assessment("v2", "ventisca-array", t, 35.0, iso), 0).0.is_empty());
+    assert!(
+        c.on_alert(&assessment("v2", "ventisca-array", t, 35.0, iso), 0)
+            .0
+            .is_empty()
+    );
     // An instrumental assessment is no candidate.
     let bad = assessment("h0", "helado-array", t, 35.0, pb::Verdict::Instrumental);
     assert_eq!(c.on_alert(&bad, 0), (Vec::new(), false));
@@ -236,8 +256,24 @@ fn coincider_joins_across_sites_once_and_forgets_withdrawn_candidates() {
     assert!(jj.has_distance && (jj.distance_pc - 0.04).abs() < 1e-12);
     assert_eq!(j.trigger.as_ref().unwrap().far_per_year, jj.far_per_year);
     // Delivered again: nothing new, and the id of a joint alert depends only on what it joins.
-    assert!(c.on_alert(&assessment("h1", "helado-array", t + 20_000_000, 35.1, iso), 0).0.is_empty());
-    let again = joint_alert("coincide", &c.state.held[0], &c.state.held[2], &joint_of(&c.state.held[0], c.cfg.site("ventisca-array").unwrap(), &c.state.held[2], c.cfg.site("helado-array").unwrap()).unwrap(), 5);
+    assert!(
+        c.on_alert(&assessment("h1", "helado-array", t + 20_000_000, 35.1, iso), 0)
+            .0
+            .is_empty()
+    );
+    let again = joint_alert(
+        "coincide",
+        &c.state.held[0],
+        &c.state.held[2],
+        &joint_of(
+            &c.state.held[0],
+            c.cfg.site("ventisca-array").unwrap(),
+            &c.state.held[2],
+            c.cfg.site("helado-array").unwrap(),
+        )
+        .unwrap(),
+        5,
+    );
     assert_eq!(again.id, j.id);
     // A withdrawn flash takes its candidate out.
     let w = pb::Alert {
@@ -249,6 +285,13 @@ fn coincider_joins_across_sites_once_and_forgets_withdrawn_candidates() {
     assert!(c.state.held.iter().all(|h| h.id != "v2"));
     // An unrelated burst much later neither joins nor keeps the old ones past the horizon.
     let later = t + 3_600_000_000_000;
-    assert!(c.on_alert(&assessment("h2", "helado-array", later, 50.0, iso), 0).0.is_empty());
-    assert_eq!(c.state.held.iter().map(|h| h.id.as_str()).collect::<Vec<_>>(), vec!["h2"]);
+    assert!(
+        c.on_alert(&assessment("h2", "helado-array", later, 50.0, iso), 0)
+            .0
+            .is_empty()
+    );
+    assert_eq!(
+        c.state.held.iter().map(|h| h.id.as_str()).collect::<Vec<_>>(),
+        vec!["h2"]
+    );
 }

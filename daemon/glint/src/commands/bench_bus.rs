@@ -104,7 +104,10 @@ pub(crate) fn run(a: BenchBusArgs) -> anyhow::Result<ExitCode> {
         let deadline = Instant::now() + Duration::from_secs(600);
         while metrics.bus_published.load(Ordering::Relaxed) < a.alerts as u64 {
             if Instant::now() > deadline {
-                return Err(anyhow!("the bus took fewer than {} alerts in 10 minutes", a.alerts));
+                return Err(anyhow!(
+                    "the bus took fewer than {} alerts in 10 minutes",
+                    a.alerts
+                ));
             }
             tokio::time::sleep(Duration::from_millis(1)).await;
         }
@@ -125,12 +128,7 @@ pub(crate) fn run(a: BenchBusArgs) -> anyhow::Result<ExitCode> {
             metrics.bus_failures.load(Ordering::Relaxed),
         );
         println!("{}", Percentiles::header("latency (ms)"));
-        println!(
-            "{}",
-            metrics
-                .percentiles(Stage::BusAck)
-                .row("fsynced -> bus ack")
-        );
+        println!("{}", metrics.percentiles(Stage::BusAck).row("fsynced -> bus ack"));
         anyhow::Ok(())
     })?;
     Ok(ExitCode::SUCCESS)

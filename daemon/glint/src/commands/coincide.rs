@@ -44,10 +44,9 @@ pub(crate) fn run(a: CoincideArgs) -> anyhow::Result<ExitCode> {
         let on_signal = stop.clone();
         tokio::spawn(async move {
             use tokio::signal::unix::{SignalKind, signal};
-            if let (Ok(mut term), Ok(mut int)) = (
-                signal(SignalKind::terminate()),
-                signal(SignalKind::interrupt()),
-            ) {
+            if let (Ok(mut term), Ok(mut int)) =
+                (signal(SignalKind::terminate()), signal(SignalKind::interrupt()))
+            {
                 tokio::select! { _ = term.recv() => {}, _ = int.recv() => {} }
                 on_signal.cancel();
             }

@@ -409,7 +409,9 @@ impl Daemon {
         // and goes out after the next start, so running out of time here is not a failed shutdown.
         self.bus_tasks.close();
         if tokio::time::timeout_at(end, self.bus_tasks.wait()).await.is_err() {
-            tracing::warn!("the bus sink did not finish within the shutdown deadline; the next start resumes it");
+            tracing::warn!(
+                "the bus sink did not finish within the shutdown deadline; the next start resumes it"
+            );
         }
         tracing::info!(
             last_seq = self.desk.last_seq(),
