@@ -114,6 +114,11 @@ pub(crate) struct DaemonConfig {
     pub(crate) shutdown_deadline: Duration,
     /// How often the engines' acceptance maps are saved.
     pub(crate) state_save_interval: Duration,
+    /// Below this many free bytes on the state directory's file system the daemon warns.
+    pub(crate) disk_warn_free_bytes: u64,
+    /// Below this many free bytes it refuses new alerts and stops (and `glint run` refuses to start), before
+    /// the journal could fail to write.
+    pub(crate) disk_min_free_bytes: u64,
 }
 
 /// TLS material for a listener.
@@ -566,6 +571,17 @@ impl Reader {
         }
         let shutdown_deadline = self.seconds(&mut d, "shutdown_deadline_s", 10.0);
         let state_save_interval = self.seconds(&mut d, "state_save_interval_s", 300.0);
+        let disk_warn: i64 = self.get(&mut d, "disk_warn_free_bytes", 1 << 30);
+        let disk_min: i64 = self.get(&mut d, "disk_min_free_bytes", 64 << 20);
+        if disk_min < 0 {
+            self.problem(d.key("disk_min_free_bytes"), "must be at least 0");
+        }
+        if disk_warn < disk_min {
+            self.problem(
+                d.key("disk_warn_free_bytes"),
+                format!("must be at least disk_min_free_bytes ({disk_min})"),
+            );
+        }
         let daemon = DaemonConfig {
             state_dir: self.path(&expand_tmp(&state_dir)),
             log_level,
@@ -573,6 +589,8 @@ impl Reader {
             max_frame_bytes: max_frame_bytes.get(),
             shutdown_deadline,
             state_save_interval,
+            disk_warn_free_bytes: disk_warn.max(0) as u64,
+            disk_min_free_bytes: disk_min.max(0) as u64,
         };
         self.finish(d);
 

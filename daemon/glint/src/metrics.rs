@@ -130,6 +130,12 @@ pub(crate) struct Metrics {
     pub(crate) subscribers_dropped: AtomicU64,
     /// Journal fsyncs by the desk's committer; alerts over fsyncs is how much group commit saves.
     pub(crate) journal_fsyncs: AtomicU64,
+    /// Damaged stretches of the journal found (and quarantined) when it was opened, torn tail included.
+    pub(crate) journal_damaged: AtomicU64,
+    /// Sequence numbers whose alerts the journal lost (damage, missing segments), found when it was opened.
+    pub(crate) journal_lost_seqs: AtomicU64,
+    /// Free bytes on the state directory's file system at the last check.
+    pub(crate) disk_free_bytes: AtomicI64,
 }
 
 /// Longest latency the histograms track: one hour in nanoseconds (longer values are clamped).
@@ -156,6 +162,9 @@ impl Metrics {
             subscribers: AtomicI64::new(0),
             subscribers_dropped: AtomicU64::new(0),
             journal_fsyncs: AtomicU64::new(0),
+            journal_damaged: AtomicU64::new(0),
+            journal_lost_seqs: AtomicU64::new(0),
+            disk_free_bytes: AtomicI64::new(0),
         }
     }
 
@@ -243,6 +252,16 @@ impl Metrics {
                 "Journal fsyncs (each covers every alert queued while the previous one ran).",
                 get(&self.journal_fsyncs),
             ),
+            (
+                "glint_journal_damaged_total",
+                "Damaged journal stretches found at open (quarantined, or a torn tail cut).",
+                get(&self.journal_damaged),
+            ),
+            (
+                "glint_journal_lost_seqs_total",
+                "Sequence numbers whose alerts the journal had lost when it was opened.",
+                get(&self.journal_lost_seqs),
+            ),
         ];
         for (name, help, v) in counters {
             let _ = writeln!(s, "# HELP {name} {help}\n# TYPE {name} counter\n{name} {v}");
@@ -268,6 +287,11 @@ impl Metrics {
                 "glint_subscribers",
                 "Subscribers connected.",
                 self.subscribers.load(Ordering::Relaxed),
+            ),
+            (
+                "glint_disk_free_bytes",
+                "Free bytes on the state directory's file system at the last check.",
+                self.disk_free_bytes.load(Ordering::Relaxed),
             ),
         ] {
             let _ = writeln!(s, "# HELP {name} {help}\n# TYPE {name} gauge\n{name} {v}");

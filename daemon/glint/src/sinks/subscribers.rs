@@ -298,15 +298,22 @@ async fn stream_alerts(
                 }
             };
             let Some(newest) = chunk.last().map(|a| a.seq) else {
-                // Nothing readable although the journal is ahead (deleted by retention or corrupt): skip on.
-                tracing::warn!(
-                    client,
-                    from = *cursor,
-                    "alerts after seq {} are no longer in the journal",
-                    *cursor
-                );
-                *cursor = hub.desk.last_seq();
-                break;
+                // --- journal gaps: the desk decides what a gap is (Desk::gap_after); we only send it. ---
+                let (desk, after) = (hub.desk.clone(), *cursor);
+                let Some(gap) = tokio::task::spawn_blocking(move || desk.gap_after(after)).await?? else {
+                    continue; // published meanwhile: read again
+                };
+                tracing::warn!(client, from = gap.from_seq, to = gap.to_seq, reason = %gap.reason, "sending a gap: these alerts are not in the journal");
+                let to = gap.to_seq;
+                let frame = pb::SubscriberFrame {
+                    body: Some(subscriber_frame::Body::Gap(gap)),
+                };
+                tokio::time::timeout(timeout, sink.send(frame))
+                    .await
+                    .map_err(|_| StreamEnd::Unwritable(timeout))??;
+                *cursor = to;
+                continue;
+                // --- end of journal gaps ---
             };
             let mut live = Vec::new();
             let sent = async {
