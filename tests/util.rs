@@ -103,12 +103,17 @@ pub(crate) struct Daemon {
 impl Daemon {
     /// Starts a daemon with its state in `dir/state` (kept across restarts) and waits for its ports.
     pub(crate) fn start(dir: &Path, extra_subscribers: &str) -> Self {
+        Self::start_edited(dir, extra_subscribers, &|t| t.to_string())
+    }
+
+    /// Like [`start`](Self::start), with the configuration text passed through `edit` first.
+    pub(crate) fn start_edited(dir: &Path, extra_subscribers: &str, edit: &dyn Fn(&str) -> String) -> Self {
         let state = dir.join("state");
         std::fs::create_dir_all(&state).unwrap();
         let ports = state.join("ports.json");
         let _ = std::fs::remove_file(&ports);
         let cfg = dir.join("glint.toml");
-        std::fs::write(&cfg, config_text(&state, extra_subscribers)).unwrap();
+        std::fs::write(&cfg, edit(&config_text(&state, extra_subscribers))).unwrap();
         // One log per start, so a restarted daemon's lines can be told from the first one's.
         let n = (0..)
             .find(|i| !dir.join(format!("daemon-{i}.log")).exists())
