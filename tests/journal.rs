@@ -188,7 +188,11 @@ fn corrupt_middle_record_costs_only_that_alert_reported_as_a_gap_and_no_number_i
     let events = d.log_events();
     let hit = events
         .iter()
-        .find(|e| e["fields"]["message"].as_str().is_some_and(|m| m.contains("corruption")))
+        .find(|e| {
+            e["fields"]["message"]
+                .as_str()
+                .is_some_and(|m| m.contains("corruption"))
+        })
         .or_else(|| {
             events
                 .iter()
@@ -223,7 +227,11 @@ fn corrupt_middle_record_costs_only_that_alert_reported_as_a_gap_and_no_number_i
     assert!(stderr.contains("warning: alerts 200-200"), "{stderr}");
     let seqs: Vec<u64> = String::from_utf8_lossy(&out.stdout)
         .lines()
-        .map(|l| serde_json::from_str::<serde_json::Value>(l).unwrap()["seq"].as_u64().unwrap())
+        .map(|l| {
+            serde_json::from_str::<serde_json::Value>(l).unwrap()["seq"]
+                .as_u64()
+                .unwrap()
+        })
         .collect();
     assert_eq!(seqs.len(), 400);
     assert_eq!(seqs.last(), Some(&401));
@@ -231,7 +239,10 @@ fn corrupt_middle_record_costs_only_that_alert_reported_as_a_gap_and_no_number_i
     let v = glint_journal(&["verify"], &state);
     assert_eq!(v.status.code(), Some(1), "{}", text(&v));
     let t = text(&v);
-    assert!(t.contains("CORRUPT") && t.contains("seq 200-200") && t.contains("LOST seq 200-200"), "{t}");
+    assert!(
+        t.contains("CORRUPT") && t.contains("seq 200-200") && t.contains("LOST seq 200-200"),
+        "{t}"
+    );
 }
 
 #[test]
@@ -269,15 +280,32 @@ fn journal_command_verifies_lists_shows_and_exports_without_touching_the_journal
     assert!(text(&v).contains("50 intact record(s), seq 1-50"), "{}", text(&v));
     let list = glint_journal(&["list"], &state);
     assert!(list.status.success(), "{}", text(&list));
-    let lines: Vec<String> = String::from_utf8_lossy(&list.stdout).lines().map(str::to_string).collect();
+    let lines: Vec<String> = String::from_utf8_lossy(&list.stdout)
+        .lines()
+        .map(str::to_string)
+        .collect();
     assert_eq!(lines.len(), 50);
     let cols: Vec<&str> = lines[6].split('\t').collect();
     let a7 = made_up_alert(7);
-    assert_eq!(cols, vec!["7", a7.id.as_str(), "flash", INSTRUMENT, "2026-12-01T00:00:01.000Z", "5.00"]);
+    assert_eq!(
+        cols,
+        vec![
+            "7",
+            a7.id.as_str(),
+            "flash",
+            INSTRUMENT,
+            "2026-12-01T00:00:01.000Z",
+            "5.00"
+        ]
+    );
     for key in ["7", a7.id.as_str()] {
         let show = glint_journal(&["show", key], &state);
         assert!(show.status.success(), "{}", text(&show));
-        assert!(String::from_utf8_lossy(&show.stdout).contains(&a7.id), "{}", text(&show));
+        assert!(
+            String::from_utf8_lossy(&show.stdout).contains(&a7.id),
+            "{}",
+            text(&show)
+        );
     }
     let missing = glint_journal(&["show", "999"], &state);
     assert_eq!(missing.status.code(), Some(1), "{}", text(&missing));
@@ -285,7 +313,11 @@ fn journal_command_verifies_lists_shows_and_exports_without_touching_the_journal
     assert!(export.status.success(), "{}", text(&export));
     let seqs: Vec<u64> = String::from_utf8_lossy(&export.stdout)
         .lines()
-        .map(|l| serde_json::from_str::<serde_json::Value>(l).unwrap()["seq"].as_u64().unwrap())
+        .map(|l| {
+            serde_json::from_str::<serde_json::Value>(l).unwrap()["seq"]
+                .as_u64()
+                .unwrap()
+        })
         .collect();
     assert_eq!(seqs, (1..=50).collect::<Vec<_>>());
     // Damaged: a flipped byte in record 10 and a torn tail; verify reports both and changes nothing.
@@ -301,7 +333,10 @@ fn journal_command_verifies_lists_shows_and_exports_without_touching_the_journal
     assert_eq!(v.status.code(), Some(1), "{}", text(&v));
     let t = text(&v);
     assert!(t.contains(&format!("CORRUPT {}", s.path.display())), "{t}");
-    assert!(t.contains(&format!("offset {}", s.start)) && t.contains("seq 10-10"), "{t}");
+    assert!(
+        t.contains(&format!("offset {}", s.start)) && t.contains("seq 10-10"),
+        "{t}"
+    );
     assert!(t.contains("TORN TAIL") && t.contains("DAMAGED"), "{t}");
     assert_eq!(snapshot(&s.path), bytes);
     assert_eq!(snapshot(newest), tail);
@@ -332,6 +367,9 @@ fn run_refuses_to_start_on_a_disk_below_the_configured_minimum() {
         .unwrap();
     assert!(!out.status.success());
     let t = text(&out);
-    assert!(t.contains("refusing to start") && t.contains("disk_min_free_bytes"), "{t}");
+    assert!(
+        t.contains("refusing to start") && t.contains("disk_min_free_bytes"),
+        "{t}"
+    );
     assert!(!state.join("ports.json").exists());
 }

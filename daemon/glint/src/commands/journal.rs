@@ -91,15 +91,15 @@ pub(crate) fn run(a: &JournalArgs) -> anyhow::Result<ExitCode> {
         What::Show { alert, at } => {
             let (alerts, _) = read_all(&at.journal_dir())?;
             let seq = alert.parse::<u64>().ok();
-            let found = alerts
-                .iter()
-                .find(|a| Some(a.seq) == seq || a.id == *alert);
+            let found = alerts.iter().find(|a| Some(a.seq) == seq || a.id == *alert);
             match found {
                 Some(a) => {
                     println!("{}", alerts::alert_summary(a));
                     Ok(ExitCode::SUCCESS)
                 }
-                None => bail!("no alert '{alert}' in the journal (it may be damaged, or older than the retention)"),
+                None => bail!(
+                    "no alert '{alert}' in the journal (it may be damaged, or older than the retention)"
+                ),
             }
         }
         What::Export(w) => {
@@ -169,7 +169,11 @@ fn verify(dir: &Path) -> anyhow::Result<ExitCode> {
             "DAMAGED: {} corrupt stretch(es), {} alert(s) lost{}",
             report.damaged.len(),
             report.lost_seqs(),
-            if report.torn.is_some() { ", a torn tail" } else { "" }
+            if report.torn.is_some() {
+                ", a torn tail"
+            } else {
+                ""
+            }
         );
         Ok(ExitCode::from(crate::cli::EXIT_ERROR))
     }

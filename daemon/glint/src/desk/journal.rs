@@ -188,7 +188,7 @@ pub(crate) struct Record {
 /// What a segment reader found next.
 #[derive(Debug, Clone, PartialEq)]
 enum Item {
-    Record(Record),
+    Record(Box<Record>),
     /// Bytes `offset..offset+bytes` are not records; `resumes` when a valid record follows them.
     Damaged {
         offset: u64,
@@ -332,7 +332,7 @@ impl SegmentReader {
             Ok(rec) => {
                 self.offset = start + RECORD_HEADER_LEN + u64::from(len);
                 self.prev = rec.alert.seq;
-                Ok(Item::Record(rec))
+                Ok(Item::Record(Box::new(rec)))
             }
             Err(reason) => self.resync(start, reason),
         }
@@ -458,7 +458,12 @@ impl HighWater {
         );
         for g in &self.gaps {
             let reason = g.reason.replace(['\n', '\r'], " ");
-            s.push_str(&format!("gap {} {} {} {reason}\n", g.from, g.to, u8::from(g.lost)));
+            s.push_str(&format!(
+                "gap {} {} {} {reason}\n",
+                g.from,
+                g.to,
+                u8::from(g.lost)
+            ));
         }
         let crc = crc32fast::hash(s.as_bytes());
         s.push_str(&format!("crc {crc:08x}\n"));
@@ -479,7 +484,8 @@ impl HighWater {
             return Err("unknown first line".into());
         }
         let num = |v: Option<&str>| -> Result<u64, String> {
-            v.and_then(|v| v.parse().ok()).ok_or_else(|| "bad number".to_string())
+            v.and_then(|v| v.parse().ok())
+                .ok_or_else(|| "bad number".to_string())
         };
         for line in lines {
             let mut parts = line.splitn(5, ' ');
@@ -532,10 +538,9 @@ impl HighWater {
 fn quarantine(dir: &Path, path: &Path, offset: u64, bytes: u64) -> Result<PathBuf, JournalError> {
     let qdir = dir.join(QUARANTINE);
     fs::create_dir_all(&qdir).map_err(io_err(&qdir, "create directory"))?;
-    let name = path.file_name().map_or_else(
-        || "segment".into(),
-        |n| n.to_string_lossy().into_owned(),
-    );
+    let name = path
+        .file_name()
+        .map_or_else(|| "segment".into(), |n| n.to_string_lossy().into_owned());
     let out = qdir.join(format!("{name}.at-{offset}.bad"));
     if fs::metadata(&out).is_ok_and(|m| m.len() == bytes) {
         return Ok(out);
@@ -600,7 +605,10 @@ fn scan(dir: &Path, mode: Mode, on_record: &mut dyn FnMut(&Record)) -> Result<Sc
     let n = listed.len();
     for (i, (first_seq, path)) in listed.into_iter().enumerate() {
         let newest = i + 1 == n;
-        let name = path.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
+        let name = path
+            .file_name()
+            .map(|n| n.to_string_lossy().into_owned())
+            .unwrap_or_default();
         let (mut reader, header) = SegmentReader::open(&path, last_seq)?;
         match header {
             Header::Ok => {}
@@ -675,7 +683,12 @@ fn scan(dir: &Path, mode: Mode, on_record: &mut dyn FnMut(&Record)) -> Result<Sc
                         ));
                     }
                     // Damage found since the previous record learns which record followed it.
-                    for d in report.damaged.iter_mut().rev().take_while(|d| d.before_seq.is_none()) {
+                    for d in report
+                        .damaged
+                        .iter_mut()
+                        .rev()
+                        .take_while(|d| d.before_seq.is_none())
+                    {
                         d.before_seq = Some(seq);
                     }
                     on_record(&rec);
@@ -800,7 +813,10 @@ fn explain_gap(
 
 /// Decides the next number after a scan, and the gap at the end of the journal it implies, if any.
 fn next_after_scan(s: &Scanned) -> (u64, Option<SeqGap>) {
-    let last = s.report.last_seq.max(s.segments.last().map_or(0, |g| g.first_seq.saturating_sub(1)));
+    let last = s
+        .report
+        .last_seq
+        .max(s.segments.last().map_or(0, |g| g.first_seq.saturating_sub(1)));
     let Some(hw) = &s.hw else {
         // No high-water file (an older journal, or a damaged file): the records are all there is to go by.
         return (last + 1, None);
@@ -829,7 +845,11 @@ fn next_after_scan(s: &Scanned) -> (u64, Option<SeqGap>) {
             to,
             reason: format!(
                 "numbers reserved before an unclean stop and not issued{}",
-                if s.tail_damaged { " (a torn tail was cut)" } else { "" }
+                if s.tail_damaged {
+                    " (a torn tail was cut)"
+                } else {
+                    ""
+                }
             ),
             lost: false,
         }
@@ -1275,7 +1295,10 @@ mod tests {
         assert!(!rep.gaps[0].lost, "{:?}", rep.gaps);
         j.append(&alert(next), 30).unwrap();
         j.sync().unwrap();
-        assert_eq!(seqs(&read_after(tmp.path(), 0, next, 10).unwrap()), vec![1, 2, next]);
+        assert_eq!(
+            seqs(&read_after(tmp.path(), 0, next, 10).unwrap()),
+            vec![1, 2, next]
+        );
     }
 
     #[test]
@@ -1439,7 +1462,6 @@ mod tests {
         assert_eq!(seqs(&read_after(tmp.path(), 0, next, 10).unwrap()), vec![1, next]);
     }
 
-
     /// Byte ranges of each record in a journal: (seq, segment path, start, end).
     fn record_spans(dir: &Path) -> Vec<(u64, PathBuf, u64, u64)> {
         let mut out = Vec::new();
@@ -1478,12 +1500,18 @@ mod tests {
         assert_eq!(rep.records, 29);
         assert_eq!(rep.damaged.len(), 1);
         let d = &rep.damaged[0];
-        assert_eq!((d.offset, d.bytes, d.after_seq, d.before_seq), (start, end - start, 9, Some(11)));
+        assert_eq!(
+            (d.offset, d.bytes, d.after_seq, d.before_seq),
+            (start, end - start, 9, Some(11))
+        );
         assert!(d.reason.contains("CRC"), "{}", d.reason);
         let q = d.quarantined.clone().unwrap();
         assert_eq!(fs::read(&q).unwrap(), bytes[start as usize..end as usize]);
         assert_eq!(rep.gaps.len(), 1);
-        assert_eq!((rep.gaps[0].from, rep.gaps[0].to, rep.gaps[0].lost), (10, 10, true));
+        assert_eq!(
+            (rep.gaps[0].from, rep.gaps[0].to, rep.gaps[0].lost),
+            (10, 10, true)
+        );
         assert!(rep.gaps[0].reason.contains("offset"), "{}", rep.gaps[0].reason);
         // The file is not cut, every other record reads back, and numbering goes on after 30.
         assert_eq!(file_len(&path), bytes.len() as u64);
@@ -1527,7 +1555,10 @@ mod tests {
         assert_eq!(j.next_seq(), 11);
         j.append(&alert(11), 30).unwrap();
         j.sync().unwrap();
-        assert_eq!(seqs(&read_after(tmp.path(), 0, 11, 100).unwrap()), vec![7, 8, 9, 11]);
+        assert_eq!(
+            seqs(&read_after(tmp.path(), 0, 11, 100).unwrap()),
+            vec![7, 8, 9, 11]
+        );
     }
 
     #[test]
@@ -1552,7 +1583,10 @@ mod tests {
         assert_eq!(j.next_seq(), next + 1);
         assert!(rep.is_clean(), "{rep:?}");
         assert_eq!(
-            rep.gaps.iter().map(|g| (g.from, g.to, g.lost)).collect::<Vec<_>>(),
+            rep.gaps
+                .iter()
+                .map(|g| (g.from, g.to, g.lost))
+                .collect::<Vec<_>>(),
             vec![(6, RESERVE, false)]
         );
     }
@@ -1662,14 +1696,11 @@ mod tests {
                     .map(|(s, ..)| *s)
                     .collect();
                 let mut seen = Vec::new();
-                let (mut j, rep) = Journal::open(
-                    &dir,
-                    seg,
-                    Duration::from_secs(86_400),
-                    20,
-                    &mut |r: &Record| seen.push(r.alert.clone()),
-                )
-                .unwrap_or_else(|e| panic!("round {round} (clean {clean}): open failed: {e}"));
+                let (mut j, rep) =
+                    Journal::open(&dir, seg, Duration::from_secs(86_400), 20, &mut |r: &Record| {
+                        seen.push(r.alert.clone())
+                    })
+                    .unwrap_or_else(|e| panic!("round {round} (clean {clean}): open failed: {e}"));
                 damaged_opens += usize::from(!rep.damaged.is_empty() || rep.torn.is_some());
                 quarantined += rep.damaged.iter().filter(|d| d.quarantined.is_some()).count();
                 // Nothing invented: every record read is the one written with that number.
@@ -1679,16 +1710,26 @@ mod tests {
                 let seen: Vec<u64> = seen.iter().map(|a| a.seq).collect();
                 let read = seqs(&read_after(&dir, 0, u64::MAX, usize::MAX).unwrap());
                 for s in &intact {
-                    assert!(seen.contains(s), "round {round} (clean {clean}): intact record {s} lost at open");
-                    assert!(read.contains(s), "round {round} (clean {clean}): intact record {s} not read back");
+                    assert!(
+                        seen.contains(s),
+                        "round {round} (clean {clean}): intact record {s} lost at open"
+                    );
+                    assert!(
+                        read.contains(s),
+                        "round {round} (clean {clean}): intact record {s} not read back"
+                    );
                 }
                 let next = j.next_seq();
-                assert!(next > RECORDS, "round {round} (clean {clean}): number {next} reused");
+                assert!(
+                    next > RECORDS,
+                    "round {round} (clean {clean}): number {next} reused"
+                );
                 if round % 10 == 0 {
                     j.append(&alert(next), 30).unwrap();
                     j.sync().unwrap();
                     drop(j);
-                    let (j, _) = Journal::open(&dir, seg, Duration::from_secs(86_400), 40, &mut |_| {}).unwrap();
+                    let (j, _) =
+                        Journal::open(&dir, seg, Duration::from_secs(86_400), 40, &mut |_| {}).unwrap();
                     assert!(j.next_seq() > next, "round {round}: number reused after reopen");
                     assert_eq!(read_one(&dir, next).unwrap(), Some(alert(next)));
                 }
@@ -1698,7 +1739,10 @@ mod tests {
         }
         assert_eq!(rounds, 2 * ROUNDS);
         // The damage was real: most rounds found something to repair or skip.
-        assert!(damaged_opens > rounds / 2, "{damaged_opens} of {rounds} opens saw damage");
+        assert!(
+            damaged_opens > rounds / 2,
+            "{damaged_opens} of {rounds} opens saw damage"
+        );
         assert!(quarantined > 0);
     }
 }

@@ -500,16 +500,12 @@ fn contiguous<'a>(
     upto: u64,
     max: usize,
 ) -> Vec<Arc<pb::Alert>> {
-    let mut expect = after + 1;
-    let mut out = Vec::new();
-    for a in iter {
-        if a.seq != expect || a.seq > upto || out.len() >= max {
-            break;
-        }
-        out.push(a.clone());
-        expect += 1;
-    }
-    out
+    (after + 1..)
+        .zip(iter)
+        .take_while(|(expect, a)| a.seq == *expect && a.seq <= upto)
+        .take(max)
+        .map(|(_, a)| a.clone())
+        .collect()
 }
 
 impl Desk {

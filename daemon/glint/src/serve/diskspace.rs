@@ -105,7 +105,10 @@ pub(crate) async fn watch(
                     dir.display(),
                     mib(min)
                 );
-                tracing::error!(free_bytes = free, "disk nearly full, refusing new alerts and stopping: {why}");
+                tracing::error!(
+                    free_bytes = free,
+                    "disk nearly full, refusing new alerts and stopping: {why}"
+                );
                 desk.refuse(why);
                 fatal.cancel();
                 return;
@@ -128,7 +131,9 @@ pub(crate) async fn watch(
 pub(crate) fn remove_temporaries(dirs: &[&Path]) -> usize {
     let mut removed = 0;
     for dir in dirs {
-        let Ok(entries) = std::fs::read_dir(dir) else { continue };
+        let Ok(entries) = std::fs::read_dir(dir) else {
+            continue;
+        };
         for e in entries.filter_map(Result::ok) {
             let p = e.path();
             if p.extension().is_some_and(|x| x == "tmp") && p.is_file() && std::fs::remove_file(&p).is_ok() {

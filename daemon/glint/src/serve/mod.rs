@@ -28,8 +28,8 @@ use tokio_util::task::TaskTracker;
 
 use crate::config::{Config, InstrumentConfig};
 use crate::desk::Desk;
-use crate::desk::journal::{OpenReport, QUARANTINE};
 use crate::desk::issuing::{self, Issuer};
+use crate::desk::journal::{OpenReport, QUARANTINE};
 use crate::metrics::{Metrics, Watermarks};
 use crate::serve::driver::InstrumentDriver;
 use crate::sinks::subscribers::{self, Hub};
@@ -162,14 +162,18 @@ fn state_path(state_dir: &Path, instrument: &str) -> PathBuf {
     state_dir.join(format!("acceptance-{instrument}.bin"))
 }
 
-/// Writes a file atomically: temporary file, fsync, rename.
+/// Writes a file atomically: temporary file, fsync, rename. A failed write (a full disk, say) removes its
+/// temporary file rather than leave it behind.
 fn write_atomic(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
     use std::io::Write as _;
     let tmp = path.with_extension("tmp");
-    let mut f = File::create(&tmp)?;
-    f.write_all(bytes)?;
-    f.sync_all()?;
-    std::fs::rename(&tmp, path)
+    let written = File::create(&tmp)
+        .and_then(|mut f| f.write_all(bytes).and_then(|()| f.sync_all()))
+        .and_then(|()| std::fs::rename(&tmp, path));
+    if written.is_err() {
+        let _ = std::fs::remove_file(&tmp);
+    }
+    written
 }
 
 impl Daemon {
