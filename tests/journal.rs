@@ -372,4 +372,12 @@ fn run_refuses_to_start_on_a_disk_below_the_configured_minimum() {
         "{t}"
     );
     assert!(!state.join("ports.json").exists());
+    // Above the minimum but below the warning threshold: it starts, and says so.
+    let d = Daemon::start_edited(dir.path(), "", &|c| {
+        c.replace(
+            "[daemon]\n",
+            "[daemon]\ndisk_warn_free_bytes = 9000000000000000000\n",
+        )
+    });
+    assert!(d.log_text().contains("little disk space"), "{}", d.log_text());
 }

@@ -175,6 +175,7 @@ fn verify(dir: &Path) -> anyhow::Result<ExitCode> {
                 ""
             }
         );
-        Ok(ExitCode::from(crate::cli::EXIT_ERROR))
+        // The same code as any other failure while running (`cli::EXIT_ERROR`).
+        Ok(ExitCode::from(1))
     }
 }
