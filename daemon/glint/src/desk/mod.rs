@@ -404,10 +404,15 @@ impl Shared {
         let now = now_unix_ns();
         let written = {
             let mut j = lock(&self.journal);
-            batch
-                .iter()
-                .flat_map(|p| &p.alerts)
-                .try_for_each(|a| j.append(a, now))
+            let newest = batch.iter().flat_map(|p| &p.alerts).map(|a| a.seq).max();
+            newest
+                .map_or(Ok(()), |n| j.reserve(n))
+                .and_then(|()| {
+                    batch
+                        .iter()
+                        .flat_map(|p| &p.alerts)
+                        .try_for_each(|a| j.append(a, now))
+                })
                 .and_then(|()| j.sync())
         };
         if let Err(e) = written {
