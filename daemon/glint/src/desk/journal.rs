@@ -1633,7 +1633,7 @@ mod tests {
         let seg = HEADER_LEN + 29 * per;
         let mut rng = Rng(0x9e37_79b9_7f4a_7c15);
         let mut rounds = 0;
-        let (mut damaged_opens, mut quarantined) = (0, 0);
+        let (mut damaged_opens, mut quarantined, mut damages) = (0, 0, 0);
         for clean in [false, true] {
             let template = root.path().join(format!("template-{clean}"));
             let (mut j, _) = open(&template, seg, 1);
@@ -1665,6 +1665,7 @@ mod tests {
                 // Touched byte ranges per segment; a record overlapping one is no longer intact.
                 let mut touched: Vec<Vec<(u64, u64)>> = vec![Vec::new(); files.len()];
                 for _ in 0..1 + rng.below(3) {
+                    damages += 1;
                     let f = rng.below(files.len() as u64) as usize;
                     let Some(b) = bytes[f].as_mut() else { continue };
                     let len = b.len() as u64;
@@ -1748,6 +1749,9 @@ mod tests {
                 rounds += 1;
             }
         }
+        println!(
+            "{rounds} rounds, {damages} damages, {damaged_opens} opens found damage, {quarantined} stretches quarantined"
+        );
         assert_eq!(rounds, 2 * ROUNDS);
         // The damage was real: most rounds found something to repair or skip.
         assert!(
