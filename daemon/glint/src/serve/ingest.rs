@@ -371,6 +371,9 @@ pub(crate) async fn serve(
         let stop = stop.clone();
         let span = tracing::info_span!("producer", %peer);
         tracker.spawn(handle(tcp, peer, ticket, tls, shared, stop).instrument(span));
+        // Let the new task read its first bytes before the next accept: under a flood of connections the
+        // accept loop would otherwise admit (and evict) many before any of them is looked at.
+        tokio::task::yield_now().await;
     }
 }
 

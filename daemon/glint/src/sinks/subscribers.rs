@@ -92,6 +92,8 @@ pub(crate) async fn serve(
             }
             .instrument(span),
         );
+        // Let the new task read its request before the next accept (see ingest's accept loop).
+        tokio::task::yield_now().await;
     }
 }
 
