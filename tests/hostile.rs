@@ -88,23 +88,49 @@ fn a_producer_stalled_mid_frame_releases_its_instrument_within_the_frame_timeout
     let stalled_at = Instant::now();
     // The real producer is told the instrument is busy until the stalled one is cut off.
     let (_, first) = util::producer(d.ingest, INSTRUMENT, PRODUCER_TOKEN, 1);
-    assert_eq!(refusal_code(&first), Some(RefusalCode::InstrumentBusy as i32), "{first:?}");
+    assert_eq!(
+        refusal_code(&first),
+        Some(RefusalCode::InstrumentBusy as i32),
+        "{first:?}"
+    );
     let got_in = loop {
         let (c, r) = util::producer(d.ingest, INSTRUMENT, PRODUCER_TOKEN, 1);
         if is_welcome(&r) {
             break (c, stalled_at.elapsed());
         }
-        assert_eq!(refusal_code(&r), Some(RefusalCode::InstrumentBusy as i32), "{r:?}");
-        assert!(stalled_at.elapsed() < Duration::from_secs(20), "the instrument was never released");
+        assert_eq!(
+            refusal_code(&r),
+            Some(RefusalCode::InstrumentBusy as i32),
+            "{r:?}"
+        );
+        assert!(
+            stalled_at.elapsed() < Duration::from_secs(20),
+            "the instrument was never released"
+        );
         thread::sleep(Duration::from_millis(100));
     };
-    println!("the instrument was free again {:.2} s after the producer stalled", got_in.1.as_secs_f64());
+    println!(
+        "the instrument was free again {:.2} s after the producer stalled",
+        got_in.1.as_secs_f64()
+    );
     // The frame timeout is 2 s, checked every eighth of it; a generous bound for a loaded machine.
-    assert!(got_in.1 >= Duration::from_millis(1900), "released too early: {:?}", got_in.1);
-    assert!(got_in.1 < Duration::from_secs(6), "released too late: {:?}", got_in.1);
+    assert!(
+        got_in.1 >= Duration::from_millis(1900),
+        "released too early: {:?}",
+        got_in.1
+    );
+    assert!(
+        got_in.1 < Duration::from_secs(6),
+        "released too late: {:?}",
+        got_in.1
+    );
     // The stalled producer was told why.
     match stalled.recv::<pb::IngestReply>(Duration::from_secs(5)) {
-        Got::Frame(r) => assert_eq!(refusal_code(&r), Some(RefusalCode::ProtocolViolation as i32), "{r:?}"),
+        Got::Frame(r) => assert_eq!(
+            refusal_code(&r),
+            Some(RefusalCode::ProtocolViolation as i32),
+            "{r:?}"
+        ),
         other => panic!("the stalled producer heard nothing: {other:?}"),
     }
 }
@@ -155,8 +181,10 @@ fn unauthenticated_floods_neither_grow_memory_nor_lock_out_real_peers() {
     let dir = tempfile::tempdir().unwrap();
     let state = dir.path().join("state");
     // A 64 MiB frame limit: a daemon reserving what is announced would hold 300 x 64 MiB per port.
-    let cfg = util::config_text_with(&state, "", "", "")
-        .replace(&format!("max_frame_bytes = {}", util::MAX_FRAME), "max_frame_bytes = 67108864");
+    let cfg = util::config_text_with(&state, "", "", "").replace(
+        &format!("max_frame_bytes = {}", util::MAX_FRAME),
+        "max_frame_bytes = 67108864",
+    );
     let d = Daemon::start_with(dir.path(), &cfg);
     let rss_idle = d.rss_bytes();
     let mut held = Vec::new();
@@ -189,7 +217,11 @@ fn unauthenticated_floods_neither_grow_memory_nor_lock_out_real_peers() {
                 producers += 1;
                 break;
             }
-            assert_eq!(refusal_code(&r), Some(RefusalCode::InstrumentBusy as i32), "{r:?}");
+            assert_eq!(
+                refusal_code(&r),
+                Some(RefusalCode::InstrumentBusy as i32),
+                "{r:?}"
+            );
             busy_retries += 1;
             thread::sleep(Duration::from_millis(20));
         }
@@ -213,7 +245,10 @@ fn unauthenticated_floods_neither_grow_memory_nor_lock_out_real_peers() {
         rss_stalled as f64 / 1e6,
         rss_peak as f64 / 1e6
     );
-    assert!(rss_stalled < 100_000_000, "RSS {rss_stalled} bytes with stalled connections");
+    assert!(
+        rss_stalled < 100_000_000,
+        "RSS {rss_stalled} bytes with stalled connections"
+    );
     assert!(rss_peak < 100_000_000, "RSS {rss_peak} bytes under the flood");
     assert_eq!((producers, subscribers), (40, 40));
     assert!(flooded > 100, "the flood hardly ran ({flooded} connections)");
@@ -222,12 +257,16 @@ fn unauthenticated_floods_neither_grow_memory_nor_lock_out_real_peers() {
         .log_events()
         .iter()
         .filter(|e| {
-            e["message"]
-                .as_str()
-                .is_some_and(|m| m.contains("refused a connection") || m.contains("refused ") && m.contains(" connections in the last"))
+            e["message"].as_str().is_some_and(|m| {
+                m.contains("refused a connection")
+                    || m.contains("refused ") && m.contains(" connections in the last")
+            })
         })
         .count();
-    assert!(refusal_lines <= 20, "{refusal_lines} refusal log lines for {flooded} connections");
+    assert!(
+        refusal_lines <= 20,
+        "{refusal_lines} refusal log lines for {flooded} connections"
+    );
     drop(held);
 }
 
@@ -260,7 +299,9 @@ fn an_absurd_first_batch_is_refused_and_late_photons_are_counted_in_acks_and_met
     let (ack, warnings) = ack_of(&mut c, 3);
     assert_eq!((ack.photons, ack.refused, ack.late), (110, 5, 10), "{ack:?}");
     assert!(
-        warnings.iter().any(|w| w.code == RefusalCode::LatePhotons as i32 && w.seq == 3),
+        warnings
+            .iter()
+            .any(|w| w.code == RefusalCode::LatePhotons as i32 && w.seq == 3),
         "no late warning: {warnings:?}"
     );
     let m = d.metrics_text();
@@ -302,12 +343,17 @@ fn newlines_in_peer_supplied_names_forge_no_log_line() {
             ..Default::default()
         })),
     });
-    assert!(matches!(s.recv::<pb::SubscriberFrame>(Duration::from_secs(10)), Got::Frame(_)));
+    assert!(matches!(
+        s.recv::<pb::SubscriberFrame>(Duration::from_secs(10)),
+        Got::Frame(_)
+    ));
     // A 4 MiB instrument id is refused before it is read, and echoed nowhere.
     let mut huge = Conn::connect(d.ingest);
     // The daemon hangs up after the length prefix, so the write may fail part way, and the refusal may be
     // lost to the reset that unread bytes cause; either way the connection ends.
-    let _ = huge.stream.write_all(&encoded(&util::hello(&"a".repeat(4 << 20), PRODUCER_TOKEN, 1)));
+    let _ = huge
+        .stream
+        .write_all(&encoded(&util::hello(&"a".repeat(4 << 20), PRODUCER_TOKEN, 1)));
     match huge.recv::<pb::IngestReply>(Duration::from_secs(10)) {
         Got::Frame(r) => assert_eq!(refusal_code(&r), Some(RefusalCode::FrameTooLarge as i32), "{r:?}"),
         Got::Closed => {}
@@ -316,9 +362,15 @@ fn newlines_in_peer_supplied_names_forge_no_log_line() {
     drop((c, s));
     thread::sleep(Duration::from_millis(300));
     let log = d.log_text();
-    assert!(log.contains("evil\\n2026"), "the producer name is not in the log, escaped:\n{log}");
+    assert!(
+        log.contains("evil\\n2026"),
+        "the producer name is not in the log, escaped:\n{log}"
+    );
     for line in log.lines() {
-        assert!(!line.starts_with("2026-12-05T00:00:00.000000Z"), "forged line: {line}");
+        assert!(
+            !line.starts_with("2026-12-05T00:00:00.000000Z"),
+            "forged line: {line}"
+        );
         assert!(line.len() < 2000, "a log line of {} bytes", line.len());
     }
 }
@@ -340,14 +392,20 @@ fn feed_exits_non_zero_when_the_daemon_is_killed_under_it() {
         .spawn()
         .unwrap();
     thread::sleep(Duration::from_millis(2000));
-    assert!(feed.try_wait().unwrap().is_none(), "feed ended before the daemon was killed");
+    assert!(
+        feed.try_wait().unwrap().is_none(),
+        "feed ended before the daemon was killed"
+    );
     d.kill9();
     let deadline = Instant::now() + Duration::from_secs(60);
     let status = loop {
         if let Some(s) = feed.try_wait().unwrap() {
             break s;
         }
-        assert!(Instant::now() < deadline, "feed did not exit within 60 s of the daemon's death");
+        assert!(
+            Instant::now() < deadline,
+            "feed did not exit within 60 s of the daemon's death"
+        );
         thread::sleep(Duration::from_millis(50));
     };
     let out = feed.wait_with_output().unwrap();
@@ -386,19 +444,31 @@ fn check_config_refuses_what_run_would_and_ignores_stray_environment() {
     std::fs::write(&pem, "-----BEGIN NOTHING-----\n-----END NOTHING-----\n").unwrap();
     let tls = good.replace(
         "queue_batches = 64",
-        &format!("queue_batches = 64\ntls_cert = \"{0}\"\ntls_key = \"{0}\"", pem.display()),
+        &format!(
+            "queue_batches = 64\ntls_cert = \"{0}\"\ntls_key = \"{0}\"",
+            pem.display()
+        ),
     );
     let (ok, out) = check_config(dir.path(), &tls, &[]);
-    assert!(!ok && out.contains("ingest.tls_cert") && out.contains("no PEM certificate"), "{out}");
+    assert!(
+        !ok && out.contains("ingest.tls_cert") && out.contains("no PEM certificate"),
+        "{out}"
+    );
 
     // Both listeners on one port.
     let clash = good.replacen("listen = \"127.0.0.1:0\"", "listen = \"127.0.0.1:7777\"", 2);
     let (ok, out) = check_config(dir.path(), &clash, &[]);
-    assert!(!ok && out.contains("subscribers.listen") && out.contains("clashes"), "{out}");
+    assert!(
+        !ok && out.contains("subscribers.listen") && out.contains("clashes"),
+        "{out}"
+    );
 
     // Out-of-range sizes, each named.
     let sizes = good
-        .replace(&format!("max_frame_bytes = {}", util::MAX_FRAME), "max_frame_bytes = 10")
+        .replace(
+            &format!("max_frame_bytes = {}", util::MAX_FRAME),
+            "max_frame_bytes = 10",
+        )
         .replace("[journal]", "[journal]\nsegment_bytes = -1")
         .replace("queue_batches = 64", "queue_batches = 0\nrecord_rotate_bytes = 0");
     let (ok, out) = check_config(dir.path(), &sizes, &[]);
@@ -443,7 +513,11 @@ fn a_filter_with_an_unknown_alert_kind_is_refused_naming_it() {
             body: Some(subscriber_frame::Body::Refusal(r)),
         }) => {
             assert_eq!(r.code, RefusalCode::BadRequest as i32);
-            assert!(r.detail.contains("99") && r.detail.contains("FLASH"), "{}", r.detail);
+            assert!(
+                r.detail.contains("99") && r.detail.contains("FLASH"),
+                "{}",
+                r.detail
+            );
         }
         other => panic!("expected a refusal: {other:?}"),
     }

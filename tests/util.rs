@@ -196,7 +196,8 @@ impl Daemon {
         let addr = self.metrics.expect("metrics configured");
         let mut s = TcpStream::connect_timeout(&addr, Duration::from_secs(10)).unwrap();
         s.set_read_timeout(Some(Duration::from_secs(10))).unwrap();
-        s.write_all(b"GET /metrics HTTP/1.0\r\nHost: localhost\r\n\r\n").unwrap();
+        s.write_all(b"GET /metrics HTTP/1.0\r\nHost: localhost\r\n\r\n")
+            .unwrap();
         let mut out = String::new();
         s.read_to_string(&mut out).unwrap();
         out

@@ -318,8 +318,8 @@ impl Config {
             BTreeMap::new()
         };
         let compile = |env: &BTreeMap<String, String>| -> Result<(Option<Self>, Vec<Problem>), ConfigError> {
-            let mut builder = config::Config::builder()
-                .add_source(config::File::from_str(text, config::FileFormat::Toml));
+            let mut builder =
+                config::Config::builder().add_source(config::File::from_str(text, config::FileFormat::Toml));
             if !env.is_empty() {
                 builder = builder.add_source(
                     config::Environment::with_prefix("GLINT")
@@ -704,7 +704,10 @@ impl Reader {
                 let (Some(a), Some(b)) = (a, b) else { continue };
                 let overlap = a.ip() == b.ip() || a.ip().is_unspecified() || b.ip().is_unspecified();
                 if a.port() != 0 && a.port() == b.port() && overlap {
-                    self.problem(*kb, format!("{b} clashes with {ka} = {a}: one port, two listeners"));
+                    self.problem(
+                        *kb,
+                        format!("{b} clashes with {ka} = {a}: one port, two listeners"),
+                    );
                 }
             }
         }

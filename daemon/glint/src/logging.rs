@@ -34,7 +34,12 @@ pub(crate) fn untrusted(s: &str) -> String {
             out.push('…');
             break;
         }
-        if c.is_control() || matches!(c, '\u{2028}' | '\u{2029}' | '\u{200e}' | '\u{200f}' | '\u{202a}'..='\u{202e}') {
+        if c.is_control()
+            || matches!(
+                c,
+                '\u{2028}' | '\u{2029}' | '\u{200e}' | '\u{200f}' | '\u{202a}'..='\u{202e}'
+            )
+        {
             out.extend(c.escape_default());
         } else {
             out.push(c);

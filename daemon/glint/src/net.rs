@@ -117,7 +117,9 @@ impl Gate {
 
     fn lock(&self) -> MutexGuard<'_, Pending> {
         // A panic while holding this lock leaves plain counters behind; they stay usable.
-        self.pending.lock().unwrap_or_else(std::sync::PoisonError::into_inner)
+        self.pending
+            .lock()
+            .unwrap_or_else(std::sync::PoisonError::into_inner)
     }
 
     /// Admits a new connection, evicting the oldest unauthenticated connection of the same address when that
@@ -160,8 +162,11 @@ impl Gate {
             } else {
                 "evicted: unauthenticated pool full"
             };
-            self.refusals
-                .note(SocketAddr::new(vip, 0), why, "an older unauthenticated connection was closed");
+            self.refusals.note(
+                SocketAddr::new(vip, 0),
+                why,
+                "an older unauthenticated connection was closed",
+            );
         }
         ticket
     }
@@ -205,7 +210,10 @@ impl Ticket {
 
     /// Time left of the authentication deadline.
     pub(crate) fn time_left(&self) -> Duration {
-        self.gate.limits.auth_timeout.saturating_sub(self.admitted.elapsed())
+        self.gate
+            .limits
+            .auth_timeout
+            .saturating_sub(self.admitted.elapsed())
     }
 
     /// The peer has authenticated: it leaves the pool and can no longer be evicted.
@@ -258,7 +266,11 @@ pub(crate) struct RefusalLog {
 
 impl RefusalLog {
     /// A log for the listener named `what`, counting every refusal in the metric `counter` picks.
-    pub(crate) fn new(what: &'static str, metrics: Arc<Metrics>, counter: fn(&Metrics) -> &AtomicU64) -> Self {
+    pub(crate) fn new(
+        what: &'static str,
+        metrics: Arc<Metrics>,
+        counter: fn(&Metrics) -> &AtomicU64,
+    ) -> Self {
         Self {
             what,
             metrics,
@@ -268,7 +280,9 @@ impl RefusalLog {
     }
 
     fn lock(&self) -> MutexGuard<'_, Window> {
-        self.window.lock().unwrap_or_else(std::sync::PoisonError::into_inner)
+        self.window
+            .lock()
+            .unwrap_or_else(std::sync::PoisonError::into_inner)
     }
 
     /// Counts one refused connection; `reason` is a short fixed label, `detail` is logged for the first
@@ -300,7 +314,11 @@ impl RefusalLog {
         let w = std::mem::replace(&mut *self.lock(), Window::new());
         if w.count > 1 {
             let reasons: Vec<String> = w.reasons.iter().map(|(r, n)| format!("{r}: {n}")).collect();
-            let more = if w.addrs.len() >= MAX_ADDRS_COUNTED { "at least " } else { "" };
+            let more = if w.addrs.len() >= MAX_ADDRS_COUNTED {
+                "at least "
+            } else {
+                ""
+            };
             tracing::warn!(
                 refused = w.count,
                 addresses = w.addrs.len(),

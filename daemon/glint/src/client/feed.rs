@@ -277,11 +277,12 @@ where
     let _ = reader.await;
     // Wait for the ack of the last frame (the daemon acks when the producer goes quiet), then hang up.
     let _ = want_tx.send(last_seq);
-    let (ack, answered, refusals, ended) = match tokio::time::timeout(Duration::from_secs(60), reply_task).await {
-        Ok(Ok(r)) => r,
-        Ok(Err(e)) => return Err(anyhow!("reply reader failed: {e}")),
-        Err(_) => bail!("no ack of seq {last_seq} from {} within 60 s", target.addr),
-    };
+    let (ack, answered, refusals, ended) =
+        match tokio::time::timeout(Duration::from_secs(60), reply_task).await {
+            Ok(Ok(r)) => r,
+            Ok(Err(e)) => return Err(anyhow!("reply reader failed: {e}")),
+            Err(_) => bail!("no ack of seq {last_seq} from {} within 60 s", target.addr),
+        };
     if ack.seq.max(answered) < last_seq {
         let why = ended.unwrap_or_else(|| "no reason given".into());
         let told: String = refusals.iter().map(|r| format!("; daemon said: {r}")).collect();

@@ -141,11 +141,17 @@ impl Slot {
     }
 
     fn clock(&self) -> StreamClock {
-        *self.clock.lock().unwrap_or_else(std::sync::PoisonError::into_inner)
+        *self
+            .clock
+            .lock()
+            .unwrap_or_else(std::sync::PoisonError::into_inner)
     }
 
     fn set_clock(&self, c: StreamClock) {
-        *self.clock.lock().unwrap_or_else(std::sync::PoisonError::into_inner) = c;
+        *self
+            .clock
+            .lock()
+            .unwrap_or_else(std::sync::PoisonError::into_inner) = c;
     }
 }
 
@@ -264,13 +270,12 @@ impl FrameCheck {
                     return Verdict::Close(r);
                 }
                 if let Err(e) = validate::validate_status(st) {
-                    return Verdict::Warn(Refusal::new(e.refusal_code(), untrusted(&e.to_string()), st.seq), 0);
+                    return Verdict::Warn(
+                        Refusal::new(e.refusal_code(), untrusted(&e.to_string()), st.seq),
+                        0,
+                    );
                 }
-                let newest = st
-                    .dead
-                    .iter()
-                    .map(|d| d.end_gps_ns)
-                    .fold(st.now_gps_ns, i64::max);
+                let newest = st.dead.iter().map(|d| d.end_gps_ns).fold(st.now_gps_ns, i64::max);
                 if let Err(r) = self.check_time(st.seq, newest, clock, host_gps_ns) {
                     return Verdict::Warn(r, 0);
                 }
@@ -389,7 +394,12 @@ async fn refuse_and_close(framed: &mut Conn, metrics: &Metrics, r: Refusal) {
     if r.code == pb::RefusalCode::ShuttingDown {
         tracing::info!(seq = r.seq, "closing: {}", r.detail);
     } else {
-        tracing::warn!(code = r.code.as_str_name(), seq = r.seq, "refused, closing: {}", r.detail);
+        tracing::warn!(
+            code = r.code.as_str_name(),
+            seq = r.seq,
+            "refused, closing: {}",
+            r.detail
+        );
         metrics.refused_frames.fetch_add(1, Ordering::Relaxed);
     }
     reply(framed, ingest_refusal(r.code, r.detail, r.seq)).await;
@@ -449,7 +459,11 @@ async fn authenticate_peer<'a>(
             }
         },
     };
-    let mut framed = Framed::with_capacity(io, IngestServerCodec::new(PRE_AUTH_MAX_FRAME), INITIAL_READ_BUFFER);
+    let mut framed = Framed::with_capacity(
+        io,
+        IngestServerCodec::new(PRE_AUTH_MAX_FRAME),
+        INITIAL_READ_BUFFER,
+    );
     let first = tokio::select! {
         () = stop.cancelled() => {
             let r = Refusal::new(pb::RefusalCode::ShuttingDown, "the daemon is shutting down", 0);
@@ -477,7 +491,11 @@ async fn authenticate_peer<'a>(
             body: Some(producer_frame::Body::Hello(h)),
         })) => h,
         Some(Ok(_)) => {
-            let r = Refusal::new(pb::RefusalCode::ProtocolViolation, "the first frame must be a Hello", 0);
+            let r = Refusal::new(
+                pb::RefusalCode::ProtocolViolation,
+                "the first frame must be a Hello",
+                0,
+            );
             refuse_unauthenticated(&mut framed, shared, peer, "first frame not a Hello", r).await;
             return None;
         }
@@ -521,7 +539,11 @@ async fn handle(
         let detail = format!("another producer is connected for instrument '{}'", slot.id);
         tracing::warn!(instrument = %slot.id, "refused: {detail}");
         metrics.refused_connections.fetch_add(1, Ordering::Relaxed);
-        reply(&mut framed, ingest_refusal(pb::RefusalCode::InstrumentBusy, detail, 0)).await;
+        reply(
+            &mut framed,
+            ingest_refusal(pb::RefusalCode::InstrumentBusy, detail, 0),
+        )
+        .await;
         let _ = tokio::time::timeout(IO_TIMEOUT, framed.close()).await;
         return;
     }

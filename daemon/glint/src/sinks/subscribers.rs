@@ -18,12 +18,14 @@ use tokio_util::sync::CancellationToken;
 use tokio_util::task::TaskTracker;
 use tracing::Instrument;
 
-use crate::codec::{INITIAL_READ_BUFFER, PRE_AUTH_MAX_FRAME, Refusal, SubscriberServerCodec, subscriber_refusal};
+use crate::codec::{
+    INITIAL_READ_BUFFER, PRE_AUTH_MAX_FRAME, Refusal, SubscriberServerCodec, subscriber_refusal,
+};
 use crate::config::{SubscribersConfig, token_matches};
 use crate::desk::Desk;
 use crate::logging::untrusted;
-use crate::net::{Gate, Ticket};
 use crate::metrics::{Metrics, Stage, Watermarks};
+use crate::net::{Gate, Ticket};
 use crate::timefmt::now_unix_ns;
 use crate::tls::{self, BoxIo};
 
@@ -101,7 +103,13 @@ type Conn = Framed<BoxIo, SubscriberServerCodec>;
 
 /// Refuses a peer before it is authenticated: counted and summarised by the gate, answered within a short
 /// write deadline.
-async fn refuse_unauthenticated(framed: &mut Conn, peer: SocketAddr, hub: &Hub, reason: &'static str, r: Refusal) {
+async fn refuse_unauthenticated(
+    framed: &mut Conn,
+    peer: SocketAddr,
+    hub: &Hub,
+    reason: &'static str,
+    r: Refusal,
+) {
     hub.gate.refusals.note(peer, reason, &r.detail);
     let _ = tokio::time::timeout(PRE_AUTH_WRITE_TIMEOUT, async {
         let _ = framed.send(subscriber_refusal(r.code, r.detail)).await;
@@ -143,7 +151,11 @@ async fn first_request(
             }
         },
     };
-    let mut framed = Framed::with_capacity(io, SubscriberServerCodec::new(PRE_AUTH_MAX_FRAME), INITIAL_READ_BUFFER);
+    let mut framed = Framed::with_capacity(
+        io,
+        SubscriberServerCodec::new(PRE_AUTH_MAX_FRAME),
+        INITIAL_READ_BUFFER,
+    );
     let first = tokio::select! {
         () = stop.cancelled() => return None,
         () = ticket.evicted() => return None,
