@@ -493,6 +493,19 @@ fn check_config_refuses_what_run_would_and_ignores_stray_environment() {
     assert!(!out.contains("GLINT_DAEMON__LOG_LEVEL"), "{out}");
     let (ok, out) = check_config(dir.path(), &good, &[("GLINT_INGEST__QUEUE_BATCHES", "-3")]);
     assert!(!ok && out.contains("ingest.queue_batches"), "{out}");
+
+    // Valid but worth a warning: metrics on every address, plain ingest on a public address by permission.
+    let public = good
+        .replace("[journal]", "[metrics]\nlisten = \"0.0.0.0:0\"\n\n[journal]")
+        .replacen(
+            "listen = \"127.0.0.1:0\"",
+            "listen = \"0.0.0.0:0\"\nallow_plain_remote = true",
+            1,
+        );
+    let (ok, out) = check_config(dir.path(), &public, &[]);
+    assert!(ok, "{out}");
+    assert!(out.contains("warning: metrics.listen"), "{out}");
+    assert!(out.contains("warning: ingest.listen"), "{out}");
 }
 
 #[test]
