@@ -97,12 +97,12 @@ fn bad_producer_token_is_refused_and_others_unaffected() {
 fn unknown_instrument_is_refused_like_a_bad_token_and_others_unaffected() {
     refused_while_others_run(|addr| {
         // The token is checked first: a peer without one cannot tell which instruments exist.
-        let (mut c, r) = util::producer(addr, "orbiter-lat", PRODUCER_TOKEN, 1);
+        let (mut c, r) = util::producer(addr, "lumen-drift", PRODUCER_TOKEN, 1);
         let unknown = util::assert_refused_and_closed(&mut c, Some(r), RefusalCode::BadToken);
         let (mut c, r) = util::producer(addr, INSTRUMENT, "wrong-token-123", 1);
         let bad_token = util::assert_refused_and_closed(&mut c, Some(r), RefusalCode::BadToken);
         assert_eq!(unknown, bad_token);
-        assert!(!unknown.contains("orbiter-lat"), "{unknown}");
+        assert!(!unknown.contains("lumen-drift"), "{unknown}");
     });
 }
 

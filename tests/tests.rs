@@ -5,6 +5,7 @@
 
 mod cli;
 mod hostile;
+mod layout;
 mod live;
 mod replay;
 mod util;

@@ -44,7 +44,7 @@ fn excess(n: u64, b: f64) -> (f64, f64) {
 
 /// Photons an evaporation burst puts in the `pre_ns` before its flash span, given `signal` photons (above
 /// background) over the span of `span_ns` ending at the explosion. Above a fixed energy threshold the light
-/// curve rises as tau^-1/2 toward the explosion (SCIENCE.md section 2), so the counts in the last tau grow as
+/// curve rises as tau^-1/2 toward the explosion (docs/science.md section 2), so the counts in the last tau grow as
 /// sqrt(tau) and the pre-window holds signal x (sqrt(1 + pre / span) - 1) [calc] from the formula. For a real
 /// instrument this is an upper bound: the spectrum softens as tau grows, and the effective area falls toward
 /// low energies. The span is taken at least as long as the pre-window, so a short flash cannot excuse a

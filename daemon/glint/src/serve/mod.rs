@@ -9,6 +9,8 @@ pub(crate) mod driver;
 pub(crate) mod hostprobe;
 pub(crate) mod ingest;
 pub(crate) mod loopback;
+#[cfg(test)]
+mod tests;
 
 use std::fs::File;
 use std::future::Future;
