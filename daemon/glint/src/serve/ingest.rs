@@ -669,9 +669,11 @@ impl Connection<'_> {
         reply(framed, ingest_refusal(r.code, r.detail, r.seq)).await
     }
 
-    /// Tells the producer about late photons, at most once per [`WARN_EVERY`].
-    async fn warn_late(&mut self, framed: &mut Conn, seq: u64) -> bool {
-        if self.late_unwarned == 0 || self.last_late_warning.is_some_and(|l| l.elapsed() < WARN_EVERY) {
+    /// Tells the producer about late photons, at most once per [`WARN_EVERY`] unless `now` (the producer
+    /// went quiet: what is left is told before the ack).
+    async fn warn_late(&mut self, framed: &mut Conn, seq: u64, now: bool) -> bool {
+        let throttled = self.last_late_warning.is_some_and(|l| l.elapsed() < WARN_EVERY);
+        if self.late_unwarned == 0 || (throttled && !now) {
             return true;
         }
         self.last_late_warning = Some(Instant::now());
@@ -708,6 +710,9 @@ impl Connection<'_> {
                 }
                 f = framed.next() => f,
                 () = tokio::time::sleep(ACK_WHEN_QUIET), if self.taken_seq > self.acked_seq => {
+                    if !self.warn_late(framed, self.taken_seq, true).await {
+                        return "warning not written".into();
+                    }
                     let a = self.ack();
                     if !reply(framed, a).await {
                         return "ack not written".into();
@@ -780,7 +785,7 @@ impl Connection<'_> {
                         self.late_unwarned += late;
                         metrics.late_photons.fetch_add(late, Ordering::Relaxed);
                     }
-                    if !self.warn_late(framed, seq).await {
+                    if !self.warn_late(framed, seq, false).await {
                         return "warning not written".into();
                     }
                 }
