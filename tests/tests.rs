@@ -8,4 +8,5 @@ mod hostile;
 mod layout;
 mod live;
 mod replay;
+mod service;
 mod util;
