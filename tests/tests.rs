@@ -4,6 +4,7 @@
 #![allow(clippy::unwrap_used)] // tests may unwrap: a panic is the failure report
 
 mod cli;
+mod hostile;
 mod journal;
 mod layout;
 mod live;

@@ -118,8 +118,12 @@ pub(crate) struct Metrics {
     pub(crate) refused_photons: AtomicU64,
     /// Frames refused (validation, clock jump, protocol).
     pub(crate) refused_frames: AtomicU64,
-    /// Producer connections refused at Hello.
+    /// Producer connections refused before they authenticated (bad token, no Hello in time, evicted).
     pub(crate) refused_connections: AtomicU64,
+    /// Subscriber connections refused before they authenticated.
+    pub(crate) refused_subscriber_connections: AtomicU64,
+    /// Photons taken but dropped as late (behind the instrument's watermark on arrival).
+    pub(crate) late_photons: AtomicU64,
     /// Alerts issued, by kind: flash, assessment, withdrawal.
     pub(crate) alerts: [AtomicU64; 3],
     /// Producers connected now.
@@ -157,6 +161,8 @@ impl Metrics {
             refused_photons: AtomicU64::new(0),
             refused_frames: AtomicU64::new(0),
             refused_connections: AtomicU64::new(0),
+            refused_subscriber_connections: AtomicU64::new(0),
+            late_photons: AtomicU64::new(0),
             alerts: [AtomicU64::new(0), AtomicU64::new(0), AtomicU64::new(0)],
             producers: AtomicI64::new(0),
             subscribers: AtomicI64::new(0),
@@ -239,8 +245,18 @@ impl Metrics {
             ),
             (
                 "glint_refused_connections_total",
-                "Producer connections refused at Hello.",
+                "Producer connections refused before authenticating (bad token, no Hello in time, evicted).",
                 get(&self.refused_connections),
+            ),
+            (
+                "glint_refused_subscriber_connections_total",
+                "Subscriber connections refused before authenticating.",
+                get(&self.refused_subscriber_connections),
+            ),
+            (
+                "glint_late_photons_total",
+                "Photons dropped as late (behind the instrument's watermark on arrival).",
+                get(&self.late_photons),
             ),
             (
                 "glint_subscribers_dropped_total",

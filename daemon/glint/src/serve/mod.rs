@@ -34,6 +34,7 @@ use crate::desk::Desk;
 use crate::desk::issuing::{self, Issuer};
 use crate::desk::journal::{OpenReport, QUARANTINE};
 use crate::metrics::{Metrics, Watermarks};
+use crate::net::{Gate, RefusalLog};
 use crate::serve::driver::InstrumentDriver;
 use crate::sinks::subscribers::{self, Hub};
 use ingest::{EngineMsg, IngestShared, Slot};
@@ -326,14 +327,30 @@ impl Daemon {
         }
         // The engine threads hold the only senders: the worker ends once they have.
         drop(fit_tx);
+        for w in cfg.startup_warnings() {
+            tracing::warn!("{w}");
+        }
         let ingest = Arc::new(IngestShared {
             slots,
             max_frame: cfg.daemon.max_frame_bytes,
             ack_every: cfg.ingest.ack_every.get(),
             metrics: metrics.clone(),
+            gate: Arc::new(Gate::new(
+                cfg.ingest.gate,
+                RefusalLog::new("ingest", metrics.clone(), |m| &m.refused_connections),
+            )),
+            keepalive: cfg.ingest.keepalive,
+            frame_timeout: cfg.ingest.frame_timeout,
+            max_future_ns: i64::try_from(cfg.ingest.max_future.as_nanos()).unwrap_or(i64::MAX),
         });
         let closing = CancellationToken::new();
         let hub = Arc::new(Hub {
+            gate: Arc::new(Gate::new(
+                cfg.subscribers.gate,
+                RefusalLog::new("subscribers", metrics.clone(), |m| {
+                    &m.refused_subscriber_connections
+                }),
+            )),
             desk: desk.clone(),
             cfg: cfg.subscribers.clone(),
             max_frame: cfg.daemon.max_frame_bytes,
