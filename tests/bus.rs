@@ -424,7 +424,10 @@ fn two_sites_with_one_shared_burst_give_one_joint_alert() {
             .output()
             .unwrap();
         assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
-        let d = Daemon::start_for(&sub, &bus_block(&nats.url()), &format!("{site}-array"));
+        let instrument = format!("{site}-array");
+        let d = Daemon::start_edited(&sub, &bus_block(&nats.url()), &|t| {
+            t.replace("ventisca-array", &instrument)
+        });
         let f = feed(&d, &rec, &token, "max");
         daemons.push((d, f));
     }

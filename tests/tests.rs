@@ -5,7 +5,10 @@
 
 mod bus;
 mod cli;
+mod hostile;
+mod journal;
 mod layout;
 mod live;
 mod replay;
+mod service;
 mod util;

@@ -54,6 +54,8 @@ enum Command {
     /// and the latency from journal to acknowledged publish.
     #[command(hide = true)]
     BenchBus(crate::commands::bench_bus::BenchBusArgs),
+    /// Read a state directory's alert journal offline: verify, list, show, export (never modifies it).
+    Journal(crate::commands::journal::JournalArgs),
 }
 
 /// Runs the chosen subcommand.
@@ -71,6 +73,7 @@ pub(crate) fn dispatch(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Withdraw(a) => crate::commands::withdraw::run(a),
         Command::Coincide(a) => crate::commands::coincide::run(a),
         Command::BenchBus(a) => crate::commands::bench_bus::run(a),
+        Command::Journal(a) => crate::commands::journal::run(&a),
     };
     match result {
         // A configuration or a scenario that does not compile is the operator's to mend: exit code 2.

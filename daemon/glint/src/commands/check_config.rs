@@ -1,5 +1,6 @@
 //! `glint check-config`: compiles a configuration (the daemon's, or `glint coincide`'s) and lists every
-//! problem in it at once.
+//! problem in it at once (TLS material is loaded and listener ports compared, so what passes here also
+//! starts), then the warnings `run` would log.
 
 use std::path::PathBuf;
 use std::process::ExitCode;
@@ -49,6 +50,9 @@ pub(crate) fn run(a: &CheckConfigArgs) -> anyhow::Result<ExitCode> {
             "  bus: {} stream {} subjects {}.<instrument>.<kind>",
             b.url, b.stream, b.subject_prefix
         );
+    }
+    for w in cfg.startup_warnings() {
+        println!("warning: {w}");
     }
     Ok(ExitCode::SUCCESS)
 }

@@ -94,6 +94,18 @@ impl Sink for BusSink {
         Ok(())
     }
 
+    async fn gap(&mut self, gap: &pb::Gap) -> anyhow::Result<()> {
+        // The stream shows a gap as a jump in Glint-Seq; the operator hears of it here.
+        tracing::warn!(
+            sink = "bus",
+            from = gap.from_seq,
+            to = gap.to_seq,
+            "alerts not in the journal are missing from the bus too: {}",
+            gap.reason
+        );
+        Ok(())
+    }
+
     async fn commit(&mut self, seq: u64) -> anyhow::Result<()> {
         if seq == self.acked {
             return Ok(());
