@@ -47,13 +47,14 @@ pub struct Flash {
     pub start_ns: i64,
     /// Window end (inclusive), GPS ns: the seed photon's time.
     pub end_ns: i64,
-    /// Position, ICRS degrees: the unit-vector mean of the disc photons, refined by a few mean-shift steps
-    /// (mean of the window's photons within twice the search radius) that undo the pull toward the seed.
+    /// Position, ICRS degrees: the maximum of the mixture likelihood (PSF-shaped signal plus flat background)
+    /// over the window's photons within twice the search radius (docs/science.md section 4).
     pub ra_deg: f64,
     /// Declination of the position, degrees.
     pub dec_deg: f64,
-    /// 90% error radius: 2.146 sigma_PSF(median energy) / sqrt(counts), the systematic error added in
-    /// quadrature (docs/science.md section 4), degrees.
+    /// 90% error radius, degrees: the radius of the region 2 Delta ln L <= 4.605 of the mixture likelihood
+    /// (root mean square over eight directions), the systematic error added in quadrature (docs/science.md
+    /// section 4).
     pub error_radius_deg: f64,
     /// Search radius of the disc, degrees.
     pub search_radius_deg: f64,

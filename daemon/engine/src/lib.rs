@@ -13,6 +13,7 @@ mod dead;
 mod engine;
 mod error;
 mod finding;
+mod localise;
 pub mod fit;
 mod reorder;
 mod sky;
