@@ -3,6 +3,7 @@
 //! the candidates and their assessment. Everything happens in event time as released photons and the
 //! watermark pass; nothing reads a clock.
 
+use glint_science::calibration::sigma_post_trials;
 use glint_science::critical::{CriticalTable, false_crossing_probability, per_seed_bound};
 use glint_science::geometry::disc_solid_angle_sr;
 use glint_science::poisson::{ln_sf, sigma_from_ln_p};
@@ -665,6 +666,12 @@ impl Engine {
             (1e-6, 1.0)
         };
         let built = per_seed_bound(self.p.far_per_s, self.p.k, r)
+            .map(|nominal| {
+                self.cfg
+                    .trials
+                    .as_ref()
+                    .map_or(nominal, |c| c.bound(self.p.far_per_s, self.p.k, r))
+            })
             .and_then(|bound| CriticalTable::new(bound, b_lo, b_hi, TABLE_POINTS_PER_DECADE));
         match built {
             Ok(table) => {
@@ -1015,7 +1022,9 @@ impl Engine {
         let resp = &self.cfg.response;
         let rate = self.model.as_ref().map_or(0.0, |m| m.rate_hz);
         let ln_trials = (self.p.k as f64 * rate * SECONDS_PER_YEAR).ln();
-        let far = (ln_p.min(0.0) + ln_trials).exp();
+        let fraction = self.cfg.trials.as_ref().map_or(1.0, |c| c.fraction(ln_p));
+        let far = (ln_p.min(0.0) + ln_trials).exp() * fraction;
+        let far = if far.is_finite() { far } else { 0.0 };
         let photons: Vec<PhotonRec> = buf.iter().map(|x| x.0).collect();
         self.flash_buf = buf;
         Flash {
@@ -1032,7 +1041,8 @@ impl Engine {
             p_value: ln_p.exp(),
             ln_p,
             sigma: clamp_sigma(sigma_from_ln_p(ln_p)),
-            far_per_year: if far.is_finite() { far } else { 0.0 },
+            far_per_year: far,
+            sigma_post_trials: clamp_sigma(sigma_post_trials(far)),
             zenith_deg: f64::from(g.p.zenith),
             photons,
         }

@@ -92,7 +92,23 @@ pub struct FitResult {
     pub signal_counts: f64,
     /// Expected number of background photons in the window (the rate is given, not fitted).
     pub background_counts: f64,
+    /// ln of the likelihood ratio of the fitted burst against background alone, ln L(best) - ln L(q = 0).
+    pub ln_likelihood_ratio: f64,
+    /// Its one-sided significance, sqrt(2 ln LR): Chernoff's half chi-square of one degree of freedom for a
+    /// strength on its boundary (docs/science.md section 4). The explosion time is searched too and exists
+    /// only under the burst, so this is optimistic by the look-elsewhere factor of that search.
+    pub lr_sigma: f64,
+    /// The burst model is preferred: `lr_sigma` at least 3 and the goodness of fit `template_p` at least 0.01
+    /// (`BURST_PREFERRED_*`). False means the photons are background, or something the template does not
+    /// describe (an afterglow, a steady source, a glitch), whatever the distance says.
+    pub burst_preferred: bool,
 }
+
+/// `FitResult::burst_preferred` needs the likelihood ratio at least this many sigma (common practice, no
+/// source) ...
+pub const BURST_PREFERRED_LR_SIGMA: f64 = 3.0;
+/// ... and the goodness of fit at least this p-value.
+pub const BURST_PREFERRED_MIN_P: f64 = 0.01;
 
 impl FitResult {
     /// A fit not run yet: what an assessment carries while its `fit_job` waits for the caller
@@ -118,6 +134,9 @@ impl FitResult {
             gof_test: GOF_TEST.to_owned(),
             signal_counts: 0.0,
             background_counts: 0.0,
+            ln_likelihood_ratio: 0.0,
+            lr_sigma: 0.0,
+            burst_preferred: false,
         }
     }
 }
@@ -298,6 +317,8 @@ fn fit(input: &FitInput<'_>, full_search_max: usize) -> Result<FitResult, FitPro
         }
     }
     let anchor_ns = photons.times_ns[best.anchor];
+    let lr_sigma = (2.0 * best.ln_l).sqrt();
+    let burst_preferred = lr_sigma >= BURST_PREFERRED_LR_SIGMA && template_p >= BURST_PREFERRED_MIN_P;
     Ok(FitResult {
         converged: true,
         reason: format!(
@@ -314,6 +335,9 @@ fn fit(input: &FitInput<'_>, full_search_max: usize) -> Result<FitResult, FitPro
         gof_test: GOF_TEST.to_owned(),
         signal_counts,
         background_counts,
+        ln_likelihood_ratio: best.ln_l,
+        lr_sigma,
+        burst_preferred,
     })
 }
 

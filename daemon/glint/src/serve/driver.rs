@@ -42,6 +42,7 @@ pub(crate) fn engine_config(inst: &InstrumentConfig, search_enabled: bool) -> En
         },
         search_enabled,
         defer_fit: false,
+        trials: inst.trials.clone(),
     }
 }
 
