@@ -18,6 +18,7 @@ pub mod fit;
 mod reorder;
 mod sky;
 mod stats;
+pub mod trials;
 
 pub use config::{AssessConfig, EngineConfig};
 pub use engine::{Engine, EngineStats, SECONDS_PER_YEAR};

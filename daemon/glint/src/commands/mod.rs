@@ -2,6 +2,7 @@
 //! print. Nothing below this folder imports from it.
 
 pub(crate) mod bench_live;
+pub(crate) mod calibrate;
 pub(crate) mod check_config;
 pub(crate) mod demo;
 pub(crate) mod feed;

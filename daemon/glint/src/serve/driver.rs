@@ -97,6 +97,13 @@ impl InstrumentDriver {
         Self::with_config(cfg)
     }
 
+    /// A driver that measures the effective trials (`glint calibrate`): the search at a loose nominal rate,
+    /// without the instrument's calibration.
+    pub(crate) fn measuring(inst: &InstrumentConfig, loose_far_per_year: f64) -> Result<Self, EngineError> {
+        let cfg = engine_config(inst, true);
+        Self::with_config(glint_engine::trials::measuring_config(&cfg, loose_far_per_year))
+    }
+
     fn with_config(cfg: EngineConfig) -> Result<Self, EngineError> {
         let reorder_tolerance_ns = cfg.reorder_tolerance_ns;
         Ok(Self {
