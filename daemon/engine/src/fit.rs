@@ -92,7 +92,8 @@ pub struct FitResult {
     pub signal_counts: f64,
     /// Expected number of background photons in the window (the rate is given, not fitted).
     pub background_counts: f64,
-    /// ln of the likelihood ratio of the fitted burst against background alone, ln L(best) - ln L(q = 0).
+    /// ln of the likelihood ratio of the burst against background alone, ln L(best q) - ln L(q = 0) at the
+    /// fitted explosion time, the photon it is anchored on left out (its tau^-1/2 density is unbounded).
     pub ln_likelihood_ratio: f64,
     /// Its one-sided significance, sqrt(2 ln LR): Chernoff's half chi-square of one degree of freedom for a
     /// strength on its boundary (docs/science.md section 4). The explosion time is searched too and exists
@@ -317,7 +318,8 @@ fn fit(input: &FitInput<'_>, full_search_max: usize) -> Result<FitResult, FitPro
         }
     }
     let anchor_ns = photons.times_ns[best.anchor];
-    let lr_sigma = (2.0 * best.ln_l).sqrt();
+    let ln_lr = search.ln_ratio_without_anchor(&best, &mut scratch)?;
+    let lr_sigma = (2.0 * ln_lr).sqrt();
     let burst_preferred = lr_sigma >= BURST_PREFERRED_LR_SIGMA && template_p >= BURST_PREFERRED_MIN_P;
     Ok(FitResult {
         converged: true,
@@ -335,7 +337,7 @@ fn fit(input: &FitInput<'_>, full_search_max: usize) -> Result<FitResult, FitPro
         gof_test: GOF_TEST.to_owned(),
         signal_counts,
         background_counts,
-        ln_likelihood_ratio: best.ln_l,
+        ln_likelihood_ratio: ln_lr,
         lr_sigma,
         burst_preferred,
     })
@@ -844,6 +846,19 @@ impl Search<'_> {
             });
         }
         Ok((q_lo, q_hi))
+    }
+
+    /// ln LR of the burst against background alone at the fitted explosion time, the anchor group left out
+    /// and the strength fitted again. The photon the explosion is anchored on sits a clock step before it,
+    /// where tau^-1/2 makes its density ratio huge: with it, one background photon alone "prefers" a burst.
+    /// Conditioning on it, as the trigger's p-value leaves the seed out, removes that.
+    fn ln_ratio_without_anchor(&self, best: &AnchorFit, scratch: &mut Vec<f64>) -> Result<f64, FitProblem> {
+        let norm = self.ratios(best.anchor, scratch);
+        let t = &self.photons.times_ns;
+        let group = t.iter().filter(|&&x| x == t[best.anchor]).count();
+        scratch.truncate(scratch.len().saturating_sub(group));
+        let q = best_strength(scratch, norm)?;
+        Ok(ln_likelihood(scratch, norm, q).max(0.0))
     }
 
     /// KS p-value of the photon times, anchor group left out, against the fitted model over the window.
