@@ -253,6 +253,7 @@ fn fit(inp: &AssessInput<'_>, frac: f64) -> FitJob {
         window_start_ns: start,
         window_end_ns: end,
         psf_containment: containment,
+        disc_radius_deg: inp.search_radius_deg,
     }
 }
 

@@ -5,6 +5,7 @@
 
 use glint_science::hawking::{self, PARSEC_M, SPECTRUM_T1_GEV};
 use glint_science::instrument::InstrumentResponse;
+use glint_science::geometry::gaussian_containment;
 use glint_science::poisson::p_from_sigma;
 
 /// Half of the 0.90 quantile of chi-squared with one degree of freedom (2.705543): the drop of ln L that
@@ -62,8 +63,14 @@ pub struct FitInput<'a> {
     pub window_start_ns: i64,
     /// End of the window, GPS nanoseconds; must be after the start.
     pub window_end_ns: i64,
-    /// Fraction of a point source's photons that fall in the disc, in (0, 1].
+    /// Fraction of a point source's photons that fall in the disc, in (0, 1]; used only when
+    /// `disc_radius_deg` is 0.
     pub psf_containment: f64,
+    /// Radius of the disc the photons were taken from, degrees: when positive, the containment is the PSF's
+    /// at each true energy, 1 - exp(-r^2 / 2 sigma(E)^2), folded with the effective area. A single
+    /// containment at the flash photons' median energy counts the soft photons, which mostly fall outside
+    /// the disc, as if they were inside, and the fitted distance comes out too far.
+    pub disc_radius_deg: f64,
 }
 
 /// The fit's answer. When `converged` is false the numbers are zero and `reason` says what was wrong.
@@ -587,7 +594,12 @@ impl Model {
                 what: "the burst's joint density",
             });
         }
-        let c = input.psf_containment / (4.0 * std::f64::consts::PI * PARSEC_M * PARSEC_M) * k;
+        let containment = if input.disc_radius_deg > 0.0 {
+            1.0
+        } else {
+            input.psf_containment
+        };
+        let c = containment / (4.0 * std::f64::consts::PI * PARSEC_M * PARSEC_M) * k;
 
         // The acceptance-weighted spectrum over true energy, wide enough to hold every energy that can be
         // reconstructed inside [e_min, e_max].
@@ -611,7 +623,7 @@ impl Model {
             // P(e_min < E_reco < e_max | E) with ln E_reco ~ N(u, s).
             let accept = p_from_sigma((ln_min - u) / s) - p_from_sigma((ln_max - u) / s);
             // dE = E du, so A E^-3/2 dE = A E^-1/2 du.
-            integrand.push(area(response, e, input.zenith_deg) * (-0.5 * u).exp() * accept.max(0.0));
+            integrand.push(area_in_disc(input, e, input.zenith_deg) * (-0.5 * u).exp() * accept.max(0.0));
         }
         let g = Cumulative::from_samples(u0, du, &integrand);
         if g.total().is_nan() || g.total() <= 0.0 {
@@ -673,6 +685,16 @@ fn area(response: &InstrumentResponse, e_gev: f64, zenith_deg: f64) -> f64 {
     if a.is_finite() && a > 0.0 { a } else { 0.0 }
 }
 
+/// The effective area times the PSF's containment in the disc at true energy `e_gev` (1 without a disc).
+fn area_in_disc(input: &FitInput<'_>, e_gev: f64, zenith_deg: f64) -> f64 {
+    let a = area(input.response, e_gev, zenith_deg);
+    if input.disc_radius_deg > 0.0 && a > 0.0 {
+        a * gaussian_containment(input.disc_radius_deg, input.response.psf_sigma_deg(e_gev))
+    } else {
+        a
+    }
+}
+
 fn sigma_at(response: &InstrumentResponse, e_gev: f64) -> f64 {
     let s = response.energy_sigma_ln(e_gev);
     if s.is_finite() {
@@ -729,7 +751,7 @@ impl PhotonCurves {
                 let s = sigma_at(input.response, e_true);
                 let z = (x - u) / s;
                 // R(E | E') in E: phi(z) / (s E); times A E'^-3/2 dE' = A E'^-1/2 du.
-                *slot = area(input.response, e_true, model.zenith_deg)
+                *slot = area_in_disc(input, e_true, model.zenith_deg)
                     * (-0.5 * u).exp()
                     * inv_sqrt_2pi
                     * (-0.5 * z * z).exp()
@@ -1084,6 +1106,7 @@ pub struct FitJob {
     pub(crate) window_start_ns: i64,
     pub(crate) window_end_ns: i64,
     pub(crate) psf_containment: f64,
+    pub(crate) disc_radius_deg: f64,
 }
 
 impl FitJob {
@@ -1099,6 +1122,7 @@ impl FitJob {
             window_start_ns: self.window_start_ns,
             window_end_ns: self.window_end_ns,
             psf_containment: self.psf_containment,
+            disc_radius_deg: self.disc_radius_deg,
         })
     }
 
@@ -1174,6 +1198,7 @@ mod tests {
             window_start_ns: START,
             window_end_ns: START + 30 * S,
             psf_containment: 0.68,
+            disc_radius_deg: 0.0,
         }
     }
 

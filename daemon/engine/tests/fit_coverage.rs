@@ -74,6 +74,7 @@ impl Scenario {
             window_start_ns: start,
             window_end_ns: end,
             psf_containment: self.psf_containment,
+            disc_radius_deg: 0.0,
         }
     }
 }
