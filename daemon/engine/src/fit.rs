@@ -5,7 +5,7 @@
 
 use glint_science::hawking::{self, PARSEC_M, SPECTRUM_T1_GEV};
 use glint_science::instrument::InstrumentResponse;
-use glint_science::geometry::gaussian_containment;
+use glint_science::geometry::offset_gaussian_containment;
 use glint_science::poisson::p_from_sigma;
 
 /// Half of the 0.90 quantile of chi-squared with one degree of freedom (2.705543): the drop of ln L that
@@ -71,6 +71,10 @@ pub struct FitInput<'a> {
     /// containment at the flash photons' median energy counts the soft photons, which mostly fall outside
     /// the disc, as if they were inside, and the fitted distance comes out too far.
     pub disc_radius_deg: f64,
+    /// Angle between the disc's centre and the best estimate of the source's position, degrees: the
+    /// containment is then the offset Gaussian's (the disc is centred on the first flash, whose position
+    /// from its first few photons can lie a PSF width from the source).
+    pub disc_offset_deg: f64,
 }
 
 /// The fit's answer. When `converged` is false the numbers are zero and `reason` says what was wrong.
@@ -689,7 +693,8 @@ fn area(response: &InstrumentResponse, e_gev: f64, zenith_deg: f64) -> f64 {
 fn area_in_disc(input: &FitInput<'_>, e_gev: f64, zenith_deg: f64) -> f64 {
     let a = area(input.response, e_gev, zenith_deg);
     if input.disc_radius_deg > 0.0 && a > 0.0 {
-        a * gaussian_containment(input.disc_radius_deg, input.response.psf_sigma_deg(e_gev))
+        let sigma = input.response.psf_sigma_deg(e_gev);
+        a * offset_gaussian_containment(input.disc_radius_deg, input.disc_offset_deg, sigma)
     } else {
         a
     }
@@ -1107,6 +1112,7 @@ pub struct FitJob {
     pub(crate) window_end_ns: i64,
     pub(crate) psf_containment: f64,
     pub(crate) disc_radius_deg: f64,
+    pub(crate) disc_offset_deg: f64,
 }
 
 impl FitJob {
@@ -1123,6 +1129,7 @@ impl FitJob {
             window_end_ns: self.window_end_ns,
             psf_containment: self.psf_containment,
             disc_radius_deg: self.disc_radius_deg,
+            disc_offset_deg: self.disc_offset_deg,
         })
     }
 
@@ -1199,6 +1206,7 @@ mod tests {
             window_end_ns: START + 30 * S,
             psf_containment: 0.68,
             disc_radius_deg: 0.0,
+            disc_offset_deg: 0.0,
         }
     }
 

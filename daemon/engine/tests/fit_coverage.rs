@@ -75,6 +75,7 @@ impl Scenario {
             window_end_ns: end,
             psf_containment: self.psf_containment,
             disc_radius_deg: 0.0,
+            disc_offset_deg: 0.0,
         }
     }
 }
