@@ -3,9 +3,9 @@
 //! hole. It gives the explosion time, the distance with a 90% profile-likelihood interval, the fitted counts
 //! and a goodness-of-fit p-value. Pure and bounded: bad input gives `converged = false` with a reason.
 
+use glint_science::geometry::offset_gaussian_containment;
 use glint_science::hawking::{self, PARSEC_M, SPECTRUM_T1_GEV};
 use glint_science::instrument::InstrumentResponse;
-use glint_science::geometry::offset_gaussian_containment;
 use glint_science::poisson::p_from_sigma;
 
 /// Half of the 0.90 quantile of chi-squared with one degree of freedom (2.705543): the drop of ln L that

@@ -167,11 +167,11 @@ pub(crate) fn localise(
     // Boundary of 2 Delta ln L = 4.605 along each direction, bracketed from a Gaussian guess.
     let mean_var = {
         let (mut num, mut den) = (0.0, 0.0);
-        for i in 0..n {
-            let sa = s_hat * a[i];
+        for (ai, expo) in a.iter().zip(&plane.expo) {
+            let sa = s_hat * ai;
             let w = sa / (sa + plane.beta);
             num += w;
-            den += w * (-2.0 * plane.expo[i]);
+            den += w * (-2.0 * expo);
         }
         if den > 0.0 { num / den } else { r_max * r_max }
     };
@@ -293,7 +293,10 @@ mod tests {
             .collect();
         let loc = localise(&ph, c, 2.0, 1e-3);
         let expect = 2.146 * 0.4 / 5.0;
-        assert!((loc.radius90_deg / expect - 1.0).abs() < 0.01, "{loc:?} against {expect}");
+        assert!(
+            (loc.radius90_deg / expect - 1.0).abs() < 0.01,
+            "{loc:?} against {expect}"
+        );
         assert!((loc.signal - 25.0).abs() < 0.01);
     }
 
@@ -311,7 +314,11 @@ mod tests {
         let trials = 2000;
         for _ in 0..trials {
             let start = unit_vector(r.random::<f64>() * 360.0, r.random::<f64>() * 60.0);
-            let src = offset(start, 0.2f64.to_radians() * normal(&mut r), 0.2f64.to_radians() * normal(&mut r));
+            let src = offset(
+                start,
+                0.2f64.to_radians() * normal(&mut r),
+                0.2f64.to_radians() * normal(&mut r),
+            );
             let mut ph = Vec::new();
             for _ in 0..8 {
                 ph.push(LocPhoton {
@@ -319,7 +326,8 @@ mod tests {
                     sigma_rad: sigma,
                 });
             }
-            let nb = rand_distr::Distribution::sample(&rand_distr::Poisson::new(bkg).unwrap(), &mut r) as usize;
+            let nb =
+                rand_distr::Distribution::sample(&rand_distr::Poisson::new(bkg).unwrap(), &mut r) as usize;
             for _ in 0..nb {
                 // Uniform in the cap.
                 let cos_r = region.to_radians().cos();

@@ -597,7 +597,10 @@ fn likelihood_ratio_prefers_the_burst_only_for_bursts() {
     let c = calibration();
     let bursts = burst_trials(&s, c.distance_pc, 7);
     let preferred = fraction(&bursts, |r| r.burst_preferred);
-    let min_sigma = bursts.iter().map(|t| t.fit.lr_sigma).fold(f64::INFINITY, f64::min);
+    let min_sigma = bursts
+        .iter()
+        .map(|t| t.fit.lr_sigma)
+        .fold(f64::INFINITY, f64::min);
     for t in &bursts {
         // sqrt(2 ln LR) by definition (computed).
         assert!((t.fit.lr_sigma - (2.0 * t.fit.ln_likelihood_ratio).sqrt()).abs() < 1e-9);

@@ -64,7 +64,10 @@ fn calibrated_false_alarm_rate_matches_the_configured_one() {
     println!("{n} flashes where {expected:.1} expected at {far}/yr");
     // Poisson sd of ~230 flashes is 6.6%, the calibration's own noise about 8% (~170 candidates at the
     // level); the factor 1.5 band is more than 4 combined sd wide on each side (computed).
-    assert!(n / expected > 1.0 / 1.5 && n / expected < 1.5, "{n} flashes, {expected:.1} expected");
+    assert!(
+        n / expected > 1.0 / 1.5 && n / expected < 1.5,
+        "{n} flashes, {expected:.1} expected"
+    );
     // The alerts' own rates: flashes reporting far_per_year <= F' come at the rate F' (F' = F / 2: about 115
     // expected, sd 9%; the same band).
     let half = far / 2.0;

@@ -407,7 +407,11 @@ pub(crate) fn alert_summary(a: &pb::Alert) -> String {
                     f.distance_pc_hi,
                     f.template_p,
                     f.lr_sigma,
-                    if f.burst_preferred { "" } else { "; burst model NOT preferred" }
+                    if f.burst_preferred {
+                        ""
+                    } else {
+                        "; burst model NOT preferred"
+                    }
                 );
             } else {
                 s += &format!("\n    evaporation fit not converged: {}", f.reason);

@@ -902,7 +902,10 @@ pub(crate) fn calibration_path(state_dir: &Path, instrument: &str) -> PathBuf {
 
 /// Reads an instrument's calibration: None when there is no file, an error naming the file when it cannot
 /// be read or parsed. Whether it fits the search is checked with the engine's configuration.
-pub(crate) fn load_calibration(state_dir: &Path, instrument: &str) -> Result<Option<TrialsCalibration>, String> {
+pub(crate) fn load_calibration(
+    state_dir: &Path,
+    instrument: &str,
+) -> Result<Option<TrialsCalibration>, String> {
     let path = calibration_path(state_dir, instrument);
     let text = match std::fs::read_to_string(&path) {
         Ok(t) => t,

@@ -15,7 +15,11 @@ pub const CALIBRATION_FORMAT: u32 = 1;
 /// chance of at least one background alert as rare within a year, P = 1 - exp(-FAR x 1 yr) (docs/science.md
 /// section 4). NaN or negative rates count as 0 (Z unbounded; the caller clamps).
 pub fn sigma_post_trials(far_per_year: f64) -> f64 {
-    let far = if far_per_year.is_nan() { 0.0 } else { far_per_year.max(0.0) };
+    let far = if far_per_year.is_nan() {
+        0.0
+    } else {
+        far_per_year.max(0.0)
+    };
     // ln(1 - exp(-x)) without cancellation at small x.
     let ln_p = (-(-far).exp_m1()).ln();
     sigma_from_ln_p(ln_p)
@@ -58,7 +62,12 @@ pub struct TrialsCalibration {
 
 impl TrialsCalibration {
     /// Checks the format, the search it applies to and the points.
-    pub fn check(&self, instrument: &str, ladder_s: &[f64], search_radius_deg: f64) -> Result<(), ScienceError> {
+    pub fn check(
+        &self,
+        instrument: &str,
+        ladder_s: &[f64],
+        search_radius_deg: f64,
+    ) -> Result<(), ScienceError> {
         let bad = |detail: String| ScienceError::OutOfRange {
             what: "trials calibration",
             detail,
@@ -70,7 +79,10 @@ impl TrialsCalibration {
             )));
         }
         if self.instrument != instrument {
-            return Err(bad(format!("made for instrument {:?}, not {instrument:?}", self.instrument)));
+            return Err(bad(format!(
+                "made for instrument {:?}, not {instrument:?}",
+                self.instrument
+            )));
         }
         if self.ladder_s != ladder_s || (self.search_radius_deg - search_radius_deg).abs() > 1e-9 {
             return Err(bad(format!(
@@ -88,7 +100,10 @@ impl TrialsCalibration {
         }
         for p in &self.points {
             if !(p.fraction.is_finite() && p.fraction > 0.0 && p.fraction <= 10.0 && p.ln_p.is_finite()) {
-                return Err(bad(format!("point at ln_p {} has fraction {}", p.ln_p, p.fraction)));
+                return Err(bad(format!(
+                    "point at ln_p {} has fraction {}",
+                    p.ln_p, p.fraction
+                )));
             }
         }
         Ok(())
@@ -125,7 +140,13 @@ impl TrialsCalibration {
 
 /// Counts, at each level of `ln_p_levels`, the candidates whose best per-seed ln p reached it, and the
 /// fraction of the nominal trials (`k` timescales, `rate_hz`, `live_s`) they amount to.
-pub fn measure_points(best_ln_p: &[f64], ln_p_levels: &[f64], k: usize, rate_hz: f64, live_s: f64) -> Vec<TrialsPoint> {
+pub fn measure_points(
+    best_ln_p: &[f64],
+    ln_p_levels: &[f64],
+    k: usize,
+    rate_hz: f64,
+    live_s: f64,
+) -> Vec<TrialsPoint> {
     ln_p_levels
         .iter()
         .filter_map(|&level| {
@@ -150,8 +171,16 @@ mod tests {
     #[test]
     fn post_trials_sigma_values() {
         // FAR 1/yr: P = 1 - e^-1 = 0.632, Z = -0.338; FAR 0.01/yr: P = 0.00995, Z = 2.329 (computed).
-        assert!((sigma_post_trials(1.0) + 0.3375).abs() < 2e-3, "{}", sigma_post_trials(1.0));
-        assert!((sigma_post_trials(0.01) - 2.3285).abs() < 2e-3, "{}", sigma_post_trials(0.01));
+        assert!(
+            (sigma_post_trials(1.0) + 0.3375).abs() < 2e-3,
+            "{}",
+            sigma_post_trials(1.0)
+        );
+        assert!(
+            (sigma_post_trials(0.01) - 2.3285).abs() < 2e-3,
+            "{}",
+            sigma_post_trials(0.01)
+        );
         // FAR 0.15/yr (the example beside 7.2 sigma per seed): about 1.0 sigma post trials.
         assert!((sigma_post_trials(0.15) - 1.0).abs() < 0.05);
         assert!(sigma_post_trials(1e-9) > 6.0);

@@ -46,7 +46,11 @@ pub fn offset_gaussian_containment(radius_deg: f64, offset_deg: f64, sigma_deg: 
     if sigma_deg.is_nan() || sigma_deg <= 0.0 {
         return if offset_deg.abs() <= radius_deg { 1.0 } else { 0.0 };
     }
-    let d = if offset_deg.is_nan() { 0.0 } else { offset_deg.abs() };
+    let d = if offset_deg.is_nan() {
+        0.0
+    } else {
+        offset_deg.abs()
+    };
     if d == 0.0 {
         return gaussian_containment(radius_deg, sigma_deg);
     }
@@ -79,7 +83,8 @@ fn bessel_i0e(x: f64) -> f64 {
         sum * (-x).exp()
     } else {
         let inv = 1.0 / (8.0 * x);
-        (1.0 + inv * (1.0 + inv * (9.0 / 2.0 * (1.0 + inv * 25.0 / 3.0)))) / (2.0 * std::f64::consts::PI * x).sqrt()
+        (1.0 + inv * (1.0 + inv * (9.0 / 2.0 * (1.0 + inv * 25.0 / 3.0))))
+            / (2.0 * std::f64::consts::PI * x).sqrt()
     }
 }
 

@@ -187,7 +187,10 @@ pub(crate) fn run(args: &CalibrateArgs) -> anyhow::Result<ExitCode> {
         cal.all_sky_rate_hz,
         started.elapsed().as_secs_f64()
     );
-    println!("{:>14} {:>10} {:>12} {:>9}", "nominal/yr", "found", "expected", "fraction");
+    println!(
+        "{:>14} {:>10} {:>12} {:>9}",
+        "nominal/yr", "found", "expected", "fraction"
+    );
     let trials_per_year = cal.ladder_s.len() as f64 * cal.all_sky_rate_hz * glint_engine::SECONDS_PER_YEAR;
     for p in &cal.points {
         println!(
@@ -230,7 +233,8 @@ fn verify(
                 .unwrap_or_else(|| calibration_path(&cfg.daemon.state_dir, id));
             let text =
                 std::fs::read_to_string(&path).with_context(|| format!("reading {}", path.display()))?;
-            let cal: glint_science::calibration::TrialsCalibration = toml::from_str(&text).with_context(|| format!("parsing {}", path.display()))?;
+            let cal: glint_science::calibration::TrialsCalibration =
+                toml::from_str(&text).with_context(|| format!("parsing {}", path.display()))?;
             for &far in &args.verify {
                 if !(far.is_finite() && far > 0.0) {
                     anyhow::bail!("--verify rates must be positive numbers");
