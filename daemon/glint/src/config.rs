@@ -677,7 +677,14 @@ impl Reader {
             self.problem("instrument", "at least one [[instrument]] is required");
         }
         for (i, inst) in instruments.iter_mut().enumerate() {
-            match load_calibration(&daemon.state_dir, &inst.id) {
+            let checked = load_calibration(&daemon.state_dir, &inst.id).and_then(|trials| match trials {
+                Some(t) => t
+                    .check(&inst.id, &inst.search.ladder_s, inst.search.search_radius_deg)
+                    .map(|()| Some(t))
+                    .map_err(|e| format!("{}: {e}", calibration_path(&daemon.state_dir, &inst.id).display())),
+                None => Ok(None),
+            });
+            match checked {
                 Ok(trials) => inst.trials = trials,
                 Err(message) => self.problem(format!("instrument[{i}] calibration"), message),
             }
