@@ -7,4 +7,5 @@ mod cli;
 mod layout;
 mod live;
 mod replay;
+mod service;
 mod util;
