@@ -42,6 +42,10 @@ enum Command {
     /// latency percentiles.
     #[command(hide = true)]
     BenchLive(crate::commands::bench_live::BenchArgs),
+    /// Measure an instrument's effective trials on background (recordings or a simulated scenario) and
+    /// write its false-alarm calibration to <state_dir>/calibration/<instrument>.toml.
+    #[command(hide = true)]
+    Calibrate(crate::commands::calibrate::CalibrateArgs),
     /// Play a recording into a running daemon, as a producer would.
     Feed(crate::commands::feed::FeedArgs),
     /// Subscribe to a daemon's alerts and print them (or run a command per alert).
@@ -68,6 +72,7 @@ pub(crate) fn dispatch(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Run(a) => crate::commands::run::run_command(a),
         Command::Demo(a) => crate::commands::demo::run(a),
         Command::BenchLive(a) => crate::commands::bench_live::bench(a),
+        Command::Calibrate(a) => crate::commands::calibrate::run(&a),
         Command::Feed(a) => crate::commands::feed::run(a),
         Command::Listen(a) => crate::commands::listen::run(a),
         Command::Withdraw(a) => crate::commands::withdraw::run(a),

@@ -10,6 +10,7 @@ use std::num::NonZeroUsize;
 use std::path::{Path, PathBuf};
 use std::time::Duration;
 
+use glint_science::calibration::TrialsCalibration;
 use glint_science::instrument::{InstrumentResponse, InstrumentSpec};
 use serde::de::DeserializeOwned;
 use subtle::ConstantTimeEq;
@@ -262,6 +263,8 @@ pub(crate) struct InstrumentConfig {
     pub(crate) search: SearchConfig,
     /// Assessment settings.
     pub(crate) assess: AssessSettings,
+    /// The effective-trials calibration from `<state_dir>/calibration/<id>.toml`, when that file exists.
+    pub(crate) trials: Option<TrialsCalibration>,
 }
 
 /// `[bus]`: the NATS JetStream bus the bus sink publishes to and `glint coincide` reads from.
@@ -1020,6 +1023,19 @@ impl Reader {
         if instruments.is_empty() && !self.problems.iter().any(|p| p.key.starts_with("instrument")) {
             self.problem("instrument", "at least one [[instrument]] is required");
         }
+        for (i, inst) in instruments.iter_mut().enumerate() {
+            let checked = load_calibration(&daemon.state_dir, &inst.id).and_then(|trials| match trials {
+                Some(t) => t
+                    .check(&inst.id, &inst.search.ladder_s, inst.search.search_radius_deg)
+                    .map(|()| Some(t))
+                    .map_err(|e| format!("{}: {e}", calibration_path(&daemon.state_dir, &inst.id).display())),
+                None => Ok(None),
+            });
+            match checked {
+                Ok(trials) => inst.trials = trials,
+                Err(message) => self.problem(format!("instrument[{i}] calibration"), message),
+            }
+        }
         let mut seen = BTreeMap::new();
         for (i, inst) in instruments.iter().enumerate() {
             if let Some(j) = seen.insert(inst.id.clone(), i) {
@@ -1353,6 +1369,7 @@ impl Reader {
             response,
             search,
             assess,
+            trials: None,
         })
     }
 
@@ -1439,6 +1456,28 @@ impl Reader {
             }
         }
     }
+}
+
+/// Where an instrument's effective-trials calibration lives: `<state_dir>/calibration/<id>.toml`.
+pub(crate) fn calibration_path(state_dir: &Path, instrument: &str) -> PathBuf {
+    state_dir.join("calibration").join(format!("{instrument}.toml"))
+}
+
+/// Reads an instrument's calibration: None when there is no file, an error naming the file when it cannot
+/// be read or parsed. Whether it fits the search is checked with the engine's configuration.
+pub(crate) fn load_calibration(
+    state_dir: &Path,
+    instrument: &str,
+) -> Result<Option<TrialsCalibration>, String> {
+    let path = calibration_path(state_dir, instrument);
+    let text = match std::fs::read_to_string(&path) {
+        Ok(t) => t,
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(None),
+        Err(e) => return Err(format!("cannot read {}: {e}", path.display())),
+    };
+    toml::from_str(&text)
+        .map(Some)
+        .map_err(|e| format!("{} is not a trials calibration: {e}", path.display()))
 }
 
 /// `$TMPDIR` in `state_dir` expands to the system's temporary directory, so the embedded default works for

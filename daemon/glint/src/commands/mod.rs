@@ -3,6 +3,7 @@
 
 pub(crate) mod bench_bus;
 pub(crate) mod bench_live;
+pub(crate) mod calibrate;
 pub(crate) mod check_config;
 pub(crate) mod coincide;
 pub(crate) mod demo;
