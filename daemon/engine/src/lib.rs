@@ -15,6 +15,7 @@ mod error;
 mod finding;
 pub mod fit;
 mod reorder;
+mod shape;
 mod sky;
 mod stats;
 

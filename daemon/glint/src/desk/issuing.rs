@@ -313,6 +313,10 @@ pub(crate) mod tests {
             sigma: 6.0,
             far_per_year: 0.1,
             zenith_deg: 10.0,
+            flags: Vec::new(),
+            all_sky_sigma: 0.0,
+            identical_time_fraction: 0.0,
+            spread_sigma: 0.0,
             photons: times
                 .iter()
                 .map(|&t| PhotonRec {
