@@ -214,18 +214,6 @@ pub(crate) fn assess(inp: &AssessInput<'_>) -> (Assessment, Option<Withdrawal>) 
         shape.is_some_and(|s| s.log_ratio > cfg.shape_log_ratio_min && s.template_p < cfg.shape_p_max);
     if shape.is_none() {
         flags.push("shape_untested".into());
-        if std::env::var_os("GLINT_SHAPE_DEBUG").is_some() {
-            eprintln!(
-                "shape untested: curve {} photons {} best {}..{} close {} zenith {} rate {}",
-                curve.is_some(),
-                shape_times.len(),
-                c.best.start_ns,
-                c.best.end_ns,
-                inp.close,
-                c.zenith0,
-                disc_rate
-            );
-        }
     }
 
     // Before the flash: background from the all-sky photons of the window; the burst's own rise and a

@@ -596,12 +596,6 @@ fn full(bg: f64, seed: u64) {
 }
 
 #[test]
-#[ignore = "debugging aid"]
-fn debug_precursor_100hz() {
-    row(Class::Precursor, 100.0, 48, 1200);
-}
-
-#[test]
 #[ignore = "full-size population: tens of minutes"]
 fn full_populations_100hz() {
     full(100.0, 1000);
