@@ -1,4 +1,4 @@
-//! Background model (SCIENCE.md section 4): b = R x dt x a(zenith, azimuth) x Omega_r. R is the trailing
+//! Background model (docs/science.md section 4): b = R x dt x a(zenith, azimuth) x Omega_r. R is the trailing
 //! all-sky rate (released photons over live time); a is the acceptance density in the instrument frame, a
 //! time-decayed histogram of 32 equal-solid-angle zenith bins (uniform in cos zenith up to the field's edge)
 //! by 8 azimuth bins of 45 degrees, normalised to 1 over the field and saved as a versioned, CRC-checked blob.

@@ -1,5 +1,5 @@
 //! The engine proper: frames in, event time forward, findings out. It wires the reorder stage, the dead-time
-//! ledger, the sky index, the background model, the seeded multi-timescale test (SCIENCE.md section 4),
+//! ledger, the sky index, the background model, the seeded multi-timescale test (docs/science.md section 4),
 //! the candidates and their assessment. Everything happens in event time as released photons and the
 //! watermark pass; nothing reads a clock.
 
@@ -76,7 +76,7 @@ pub struct EngineStats {
     /// Tests that crossed their threshold, per timescale.
     pub crossings: Vec<u64>,
     /// Predicted false crossings, per timescale: the sum over tests of P(N >= n*(b) - 1 | b)
-    /// (SCIENCE.md section 4).
+    /// (docs/science.md section 4).
     pub predicted_false_crossings: Vec<f64>,
     /// Candidates opened (one per flash).
     pub candidates: u64,
@@ -231,7 +231,7 @@ struct StreamClock {
 ///
 /// # Search, candidates, assessment
 ///
-/// Every released photon seeds one test per timescale (SCIENCE.md section 4) unless its window touches dead
+/// Every released photon seeds one test per timescale (docs/science.md section 4) unless its window touches dead
 /// time or reaches before the stream began (counted in `skipped_dead`). No test runs until the warm-up rule
 /// is met: the acceptance map holds `warmup_photons` of decayed weight (a configured cos-power prior counts
 /// as that much weight; a loaded map meets it at once) and half the rate window was live. Thresholds are
@@ -692,7 +692,7 @@ impl Engine {
         }
     }
 
-    /// The seeded test of one released photon on every timescale (SCIENCE.md section 4).
+    /// The seeded test of one released photon on every timescale (docs/science.md section 4).
     fn seed(&mut self, i: usize, out: &mut dyn FindingSink) {
         let g = self.group[i];
         let k_all = self.p.k;

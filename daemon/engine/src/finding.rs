@@ -53,7 +53,7 @@ pub struct Flash {
     /// Declination of the position, degrees.
     pub dec_deg: f64,
     /// 90% error radius: 2.146 sigma_PSF(median energy) / sqrt(counts), the systematic error added in
-    /// quadrature (SCIENCE.md section 4), degrees.
+    /// quadrature (docs/science.md section 4), degrees.
     pub error_radius_deg: f64,
     /// Search radius of the disc, degrees.
     pub search_radius_deg: f64,

@@ -177,7 +177,7 @@ pub(crate) enum FitProblem {
 /// * `B f(E)`: the background, rate `background_rate_hz`, `f ~ E^-index` normalised over the instrument's
 ///   reconstructed energy range;
 /// * `q = (1 pc / d)^2`, the only way the distance d enters; `c = psf_containment / (4 pi (1 pc)^2) * K` with
-///   `K = 4.5e35 T1^-3/2` from `d2N/(dtau dE) = K tau^-1/2 E^-3/2 for E < T1 tau^-1/3` (SCIENCE.md section 2;
+///   `K = 4.5e35 T1^-3/2` from `d2N/(dtau dE) = K tau^-1/2 E^-3/2 for E < T1 tau^-1/3` (docs/science.md section 2;
 ///   `hawking::joint_density`);
 /// * `F(E, Ecut) = integral_0^Ecut A_eff(E', zenith) E'^-3/2 R(E | E') dE'`: the emitted spectrum, cut at the
 ///   temperature, times the effective area, folded with the energy resolution R (Gaussian in ln E with the

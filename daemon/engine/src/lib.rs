@@ -3,7 +3,7 @@
 //! clock, no random numbers, no hash-map order in the outputs: live runs and replays give the same findings.
 //!
 //! Pipeline: reorder (watermark) -> sky index + background model -> seeded multi-timescale test
-//! (SCIENCE.md section 4) -> candidates -> assessment (with the evaporation fit in [`fit`]).
+//! (docs/science.md section 4) -> candidates -> assessment (with the evaporation fit in [`fit`]).
 
 mod assess;
 mod background;

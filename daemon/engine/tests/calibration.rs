@@ -1,5 +1,5 @@
 //! Calibration of the trigger on background only: the number of distinct candidates per timescale must agree
-//! with the engine's own prediction, the sum over tested seeds of P(N >= n*(b) - 1 | b) (SCIENCE.md
+//! with the engine's own prediction, the sum over tested seeds of P(N >= n*(b) - 1 | b) (docs/science.md
 //! section 4), and at the design false-alarm rate of one per year an hour of background gives nothing.
 #![allow(missing_docs)]
 #![allow(clippy::unwrap_used)] // tests may unwrap
@@ -9,7 +9,7 @@ use common::*;
 use glint_engine::{Engine, EngineStats, Finding};
 use glint_science::poisson::{ln_cdf, ln_sf};
 
-/// One-sided 3-sigma tail probability, Phi(-3) (SCIENCE.md section 3 check value).
+/// One-sided 3-sigma tail probability, Phi(-3) (docs/science.md section 3 check value).
 const TAIL_3SIGMA: f64 = 1.349_898e-3;
 
 fn run(far_per_year: f64, ph: &[Ph], end: i64) -> (EngineStats, Vec<Finding>) {

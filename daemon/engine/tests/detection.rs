@@ -20,7 +20,7 @@ struct Injection {
 #[test]
 fn injected_clusters_are_found_once_at_their_position_and_time() {
     let mut r = rng(11);
-    let sigma = 0.5 / 1.515; // PSF 68% radius 0.5 deg (SCIENCE.md section 4: r68 = 1.515 sigma)
+    let sigma = 0.5 / 1.515; // PSF 68% radius 0.5 deg (docs/science.md section 4: r68 = 1.515 sigma)
     // (photons, duration, zenith): from 10 ms to 10 s, near the zenith to near the edge of the field.
     let kinds: [(usize, f64, f64, bool); 5] = [
         (16, 0.01, 10.0, true),

@@ -56,7 +56,7 @@ mod tests {
 
     #[test]
     fn gps_minus_utc_is_18_seconds_since_2017() {
-        // GPS - UTC = 18 s since 2017-01-01 (IERS Bulletin C). 2020-01-01T00:00:00 UTC is 1262304000 s after
+        // GPS - UTC = 18 s since 2017-01-01 (IERS Bulletin C). 2020-01-01T00:00:00 UTC is 1577836800 s after
         // the Unix epoch [calc], so its GPS time is that minus 315964800 (Unix time of the GPS epoch) plus 18.
         let unix_ns = 1_577_836_800_i64 * 1_000_000_000;
         let gps_ns = unix_ns_to_gps_ns(unix_ns);

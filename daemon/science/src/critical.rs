@@ -1,4 +1,4 @@
-//! The trigger threshold of SCIENCE.md section 4: the per-seed p-value bound `F / (K R)` and the critical
+//! The trigger threshold of docs/science.md section 4: the per-seed p-value bound `F / (K R)` and the critical
 //! count `n*(b)`, tabulated over the background so the engine's hot path is one table read and an integer
 //! compare. The table rounds the background up to its next grid point, so its threshold is never below the
 //! exact one.
@@ -219,7 +219,7 @@ mod tests {
 
     #[test]
     fn bound_is_far_over_trials() {
-        // SCIENCE.md sec. 4: bound = F / (K R).
+        // docs/science.md section 4: bound = F / (K R).
         let b = per_seed_bound(1.0 / 3.15576e7, 8, 250.0).unwrap();
         assert!((b - 1.0 / (3.15576e7 * 8.0 * 250.0)).abs() < 1e-25);
         assert!(per_seed_bound(0.0, 8, 250.0).is_err());
@@ -230,7 +230,7 @@ mod tests {
 
     #[test]
     fn critical_count_definition() {
-        // SCIENCE.md sec. 4: smallest n with P(N >= n - 1 | b) <= bound.
+        // docs/science.md section 4: smallest n with P(N >= n - 1 | b) <= bound.
         for &(b, bound) in &[
             (0.01, 1e-9),
             (0.5, 1e-6),

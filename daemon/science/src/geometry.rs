@@ -3,7 +3,7 @@
 //! candidate's centroid.
 
 /// 68.27% containment radius of a 2-D Gaussian PSF in units of its sigma: `sqrt(-2 ln(1 - 0.6827))`
-/// (the "1.515 sigma" of SCIENCE.md section 4).
+/// (the "1.515 sigma" of docs/science.md section 4).
 pub const R68_PER_SIGMA: f64 = 1.515_172_903_961_338_6;
 
 /// 90% containment radius of a 2-D Gaussian in units of its sigma: `sqrt(2 ln 10)`.
@@ -35,7 +35,7 @@ pub fn gaussian_containment(radius_deg: f64, sigma_deg: f64) -> f64 {
 }
 
 /// 90% error radius of the centroid of `n` photons from a Gaussian PSF of width `psf_sigma_deg`,
-/// `2.146 sigma / sqrt(n)`, added in quadrature to the instrument's `systematic_deg` (SCIENCE.md sec. 4).
+/// `2.146 sigma / sqrt(n)`, added in quadrature to the instrument's `systematic_deg` (docs/science.md section 4).
 /// `n = 0` is treated as one photon; negative or NaN widths count as 0.
 pub fn error_radius90_deg(psf_sigma_deg: f64, n: u64, systematic_deg: f64) -> f64 {
     let sigma = psf_sigma_deg.max(0.0);
@@ -52,7 +52,7 @@ mod tests {
 
     #[test]
     fn containment_constants() {
-        // [calc] from the formula, SCIENCE.md sec. 4: r68 = 1.515 sigma, centroid r90 = 2.146 sigma / sqrt(n).
+        // [calc] from the formula, docs/science.md section 4: r68 = 1.515 sigma, centroid r90 = 2.146 sigma / sqrt(n).
         assert!((R68_PER_SIGMA - 1.515).abs() < 5e-4);
         assert!((R90_PER_SIGMA - 2.146).abs() < 5e-4);
         assert!((gaussian_containment(R68_PER_SIGMA, 1.0) - 0.682_689_492).abs() < 1e-9);

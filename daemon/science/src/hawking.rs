@@ -1,4 +1,4 @@
-//! Hawking evaporation and the final-burst photon spectrum (SCIENCE.md sections 1 and 2): temperature,
+//! Hawking evaporation and the final-burst photon spectrum (docs/science.md sections 1 and 2): temperature,
 //! lifetime and remaining mass of a black hole against its time-to-go, the photons it emits in its last
 //! seconds, and those an instrument detects at a given distance. The simulator draws bursts from the
 //! joint density here; the reach and the engine's distance fit fold the same spectrum through a response.
@@ -463,7 +463,7 @@ mod tests {
 
     #[test]
     fn temperature_check_values() {
-        // SCIENCE.md sec. 1 [calc, CODATA 2018]: 1.0573e13 GeV and 1.2269e26 K for 1 g.
+        // docs/science.md section 1 [calc, CODATA 2018]: 1.0573e13 GeV and 1.2269e26 K for 1 g.
         assert!(rel(temperature_gev(1.0).unwrap(), 1.0573e13) < 1e-4);
         assert!(rel(temperature_k(1.0).unwrap(), 1.2269e26) < 1e-4);
         // One solar mass: 6.170e-8 K [calc]; 6.17e-8 K is the textbook value.
@@ -472,7 +472,7 @@ mod tests {
 
     #[test]
     fn lifetime_check_values() {
-        // SCIENCE.md sec. 1 (MacGibbon 1991, from memory): tau = 6.24e-27 M^3 / f s.
+        // docs/science.md section 1 (MacGibbon 1991, from memory): tau = 6.24e-27 M^3 / f s.
         assert!(rel(lifetime_s(1.0, 1.0).unwrap(), 6.24e-27) < 1e-3);
         // [calc]: with f = 15.35, tau = 407 s (406.7 s) for 1e10 g.
         assert!((lifetime_s(1e10, F_ALL_SPECIES).unwrap() - 406.7).abs() < 0.1);
@@ -508,7 +508,7 @@ mod tests {
 
     #[test]
     fn solar_mass_lifetime_order_of_magnitude() {
-        // SCIENCE.md sec. 1: pure photon blackbody 2.10e67 yr [calc]; about 1e67 yr counting photons only,
+        // docs/science.md section 1: pure photon blackbody 2.10e67 yr [calc]; about 1e67 yr counting photons only,
         // sources differ by up to 10x (Page 1976 ~2e66 yr with neutrinos): order of magnitude only.
         let bb = photon_blackbody_lifetime_s(SOLAR_MASS_G).unwrap() / YEAR_S;
         assert!(rel(bb, 2.10e67) < 0.01, "{bb:e}");
@@ -518,7 +518,7 @@ mod tests {
 
     #[test]
     fn last_seconds_check_values() {
-        // SCIENCE.md sec. 1 [calc], f = 15.35.
+        // docs/science.md section 1 [calc], f = 15.35.
         assert!(rel(mass_at_time_to_go_g(1.0).unwrap(), 1.350e9) < 1e-3);
         assert!(rel(temperature_at_time_to_go_gev(1.0).unwrap(), 7830.0) < 1e-3);
         assert!(rel(energy_released_j(1.0).unwrap(), 1.21e23) < 3e-3);
@@ -539,7 +539,7 @@ mod tests {
 
     #[test]
     fn burst_spectrum_check_values() {
-        // SCIENCE.md sec. 2 [calc]: photons of the last 1 s above 100 GeV, 1 TeV, 10 TeV.
+        // docs/science.md section 2 [calc]: photons of the last 1 s above 100 GeV, 1 TeV, 10 TeV.
         assert!(rel(counts_above(100.0, 1.0).unwrap(), 2.39e29) < 2e-3);
         assert!(rel(counts_above(1000.0, 1.0).unwrap(), 6.04e28) < 2e-3);
         assert!(rel(counts_above(10_000.0, 1.0).unwrap(), 4.5e27) < 2e-3);
@@ -615,7 +615,7 @@ mod tests {
 
     #[test]
     fn detected_counts_check_value() {
-        // SCIENCE.md sec. 2 [calc]: 0.1 pc, a flat 1e5 m^2 above 1 TeV, the last 1 s: about 50 photons.
+        // docs/science.md section 2 [calc]: 0.1 pc, a flat 1e5 m^2 above 1 TeV, the last 1 s: about 50 photons.
         let r = flat_above_1tev();
         let n = detected_counts(&r, 10.0, 0.1, 1.0).unwrap();
         assert!((n - 50.0).abs() < 1.0, "{n}");

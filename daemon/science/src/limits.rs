@@ -180,7 +180,7 @@ mod tests {
     use super::*;
 
     /// Gehrels 1986, Table 1 (upper) and Table 2 (lower), n = 0..5, CL 0.8413, 0.90, 0.95, 0.99
-    /// (SCIENCE.md sec. 3; computed from the exact chi2 relation, matching the printed table from memory).
+    /// (docs/science.md section 3; computed from the exact chi2 relation, matching the printed table from memory).
     const CLS: [f64; 4] = [0.841_344_746, 0.90, 0.95, 0.99];
     const UPPER: [[f64; 4]; 6] = [
         [1.841, 2.303, 2.996, 4.605],
@@ -223,7 +223,7 @@ mod tests {
 
     #[test]
     fn feldman_cousins_values() {
-        // Feldman & Cousins 1998, zero background, 90% (SCIENCE.md sec. 3 [calc], tolerance 0.005).
+        // Feldman & Cousins 1998, zero background, 90% (docs/science.md section 3 [calc], tolerance 0.005).
         let zero_b = [(0, 0.00, 2.44), (1, 0.11, 4.36), (2, 0.53, 5.91), (3, 1.10, 7.42)];
         for (n, lo, hi) in zero_b {
             let (l, h) = feldman_cousins(n, 0.0, 0.9).unwrap();
@@ -247,13 +247,13 @@ mod tests {
 
     #[test]
     fn rate_density_check_values() {
-        // SCIENCE.md sec. 5 [calc]: r_max 0.1 pc, Omega 2 sr, 1 yr, 99% -> 6.9e3; 0.05 pc -> 5.5e4.
+        // docs/science.md section 5 [calc]: r_max 0.1 pc, Omega 2 sr, 1 yr, 99% -> 6.9e3; 0.05 pc -> 5.5e4.
         let mu = gehrels_upper(0, 0.99).unwrap();
         let v = sharp_reach_volume_pc3(2.0, 0.1).unwrap();
         assert!((rate_density_upper_limit(mu, v, 1.0).unwrap() / 6.9e3 - 1.0).abs() < 0.01);
         let v = sharp_reach_volume_pc3(2.0, 0.05).unwrap();
         assert!((rate_density_upper_limit(mu, v, 1.0).unwrap() / 5.5e4 - 1.0).abs() < 0.01);
-        // SCIENCE.md sec. 5: mu_UL = 2.303 (90%), 2.996 (95%), 4.605 (99%) for zero observed.
+        // docs/science.md section 5: mu_UL = 2.303 (90%), 2.996 (95%), 4.605 (99%) for zero observed.
         for (cl, want) in [(0.9, 2.303), (0.95, 2.996), (0.99, 4.605)] {
             assert!((gehrels_upper(0, cl).unwrap() - want).abs() < 5e-4);
         }

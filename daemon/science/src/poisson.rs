@@ -486,7 +486,7 @@ mod tests {
 
     #[test]
     fn gaussian_check_values() {
-        // SCIENCE.md sec. 3 [calc]: Z = 1..6 <-> p.
+        // docs/science.md section 3 [calc]: Z = 1..6 <-> p.
         // Each p is printed to its last digit; the tolerance is half of that digit.
         let table = [
             (1.0, 0.158655, 5e-7),
@@ -528,11 +528,11 @@ mod tests {
 
     #[test]
     fn li_ma_check_values() {
-        // Li & Ma 1983, eqs. 17 and 5 (SCIENCE.md sec. 3 [src], reproduced to 1e-6).
+        // Li & Ma 1983, eqs. 17 and 5 (docs/science.md section 3 [src], reproduced to 1e-6).
         assert!((li_ma_17(10.0, 20.0, 0.1).unwrap() - 3.6850322).abs() < 1e-6);
         assert!((li_ma_17(10.0, 8.0, 1.0).unwrap() - 0.4718917).abs() < 1e-6);
         assert!((li_ma_5(10.0, 20.0, 0.1).unwrap() - 2.5048972).abs() < 1e-6);
-        // Known-background limit (SCIENCE.md sec. 3 [src]).
+        // Known-background limit (docs/science.md section 3 [src]).
         assert!((li_ma_known_background(10.0, 2.0).unwrap() - 4.0235256).abs() < 1e-6);
         assert!((li_ma_known_background(11.0, 9.0).unwrap() - 0.6440150).abs() < 1e-6);
         assert!((li_ma_known_background(7.0, 9.0).unwrap() + 0.693973).abs() < 1e-6);

@@ -1,5 +1,5 @@
 //! How far an instrument can see a final burst, and the rate limit a year without one would set
-//! (SCIENCE.md section 5); this is what `glint reach` prints. For each timescale of the ladder: the
+//! (docs/science.md section 5); this is what `glint reach` prints. For each timescale of the ladder: the
 //! expected background in the search disc, the critical count of the seeded test at the target false-alarm
 //! rate, the burst photons in the disc at each distance, and the distances of 50% and 90% detection
 //! probability; then the effective volume over the field of view and the 99% rate-density upper limit.

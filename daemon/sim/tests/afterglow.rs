@@ -40,7 +40,7 @@ fn mean_photons_is_the_integral_of_the_rate() {
 #[test]
 fn tail_keeps_the_power_law_fraction() {
     // For a t^-alpha decay a fraction 10^(1 - alpha) of the fluence after the onset time T comes after
-    // 10 T (SCIENCE.md section 7, [calc] from the formula; decay indices as in Nousek et al. 2006, ApJ 642,
+    // 10 T (docs/science.md section 7, [calc] from the formula; decay indices as in Nousek et al. 2006, ApJ 642,
     // 389). Here y = 1 + t/r plays t/T, and the tail is cut at y_end, so the fraction is
     // (10^(1-a) - y_end^(1-a)) / (1 - y_end^(1-a)).
     let (r, a, d) = (1.0, 1.5, 1e6);

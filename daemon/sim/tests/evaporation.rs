@@ -151,7 +151,7 @@ value = [0.1]
         above.len()
     );
     // Time-integrated spectrum: E^-1.5 below the temperature of the window's start and E^-3 above it
-    // (Petkov et al. 2008, Astron. Lett. 34, 509; SCIENCE.md section 2, from memory). Statistical error
+    // (Petkov et al. 2008, Astron. Lett. 34, 509; docs/science.md section 2, from memory). Statistical error
     // of the index is about (s - 1) / sqrt(n): 0.001 and 0.025 here; the bounds are about 4 sigma.
     let s_below = truncated_power_law_index(&below, 10.0, t_max);
     let s_above = truncated_power_law_index(&above, t_max, 1e6);
@@ -165,7 +165,7 @@ fn simulator_sends_the_expected_burst_photons() {
     // window's expectation is glint-science's detected_counts at zenith 0.
     let (d, tau_max) = (0.004, 100.0);
     let text = format!(
-        "{}{}\n[[source]]\nkind = \"evaporation\"\nra_deg = 120.0\ndec_deg = 25.0\ndistance_pc = {d}\n\
+        "{}{}\n[[source]]\nkind = \"evaporation\"\nra_deg = 212.0\ndec_deg = -8.5\ndistance_pc = {d}\n\
          t_offset_s = 150.0\nmax_time_to_go_s = {tau_max}\n",
         common::header("burst", 200.0),
         common::SPACE_FIXED

@@ -158,6 +158,14 @@ async fn session(
                 welcomed = true;
                 tracing::debug!(server = %w.server, last_seq = w.last_seq, "welcomed");
             }
+            // Dropped for reading too slowly: every alert queued before the refusal has been read, so
+            // resuming after the last one seen loses nothing.
+            Some(subscriber_frame::Body::Refusal(r)) if r.code == pb::RefusalCode::SlowConsumer as i32 => {
+                return Err(SessionError::Lost(
+                    anyhow!("{} dropped this subscriber: {}", opts.addr, r.detail),
+                    welcomed,
+                ));
+            }
             Some(subscriber_frame::Body::Refusal(r)) => {
                 return Err(SessionError::Refused(anyhow!(
                     "{} refused: {} ({})",

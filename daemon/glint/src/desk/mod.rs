@@ -539,6 +539,16 @@ pub(crate) mod tests {
 
     /// Issues `n` made-up flash alerts straight through the commit path (no engine needed).
     pub(crate) fn issue_test_flashes(desk: &Desk, n: usize, received_unix_ns: i64) -> Vec<Arc<pb::Alert>> {
+        issue_test_flashes_with_photons(desk, n, 0, received_unix_ns)
+    }
+
+    /// Test flashes carrying `photons` photons each (about 28 bytes apiece on the wire).
+    pub(crate) fn issue_test_flashes_with_photons(
+        desk: &Desk,
+        n: usize,
+        photons: usize,
+        received_unix_ns: i64,
+    ) -> Vec<Arc<pb::Alert>> {
         let mut g = desk.room_for(n).unwrap();
         let now = now_unix_ns();
         let mut alerts = Vec::new();
@@ -552,6 +562,12 @@ pub(crate) mod tests {
             a.trigger = Some(pb::Trigger {
                 sigma: 4.0 + (seq % 5) as f64,
                 end_gps_ns: 1_400_000_000_000_000_000,
+                photon_time_gps_ns: (0..photons as i64)
+                    .map(|i| 1_400_000_000_000_000_000 - i)
+                    .collect(),
+                photon_ra_deg: vec![10.0; photons],
+                photon_dec_deg: vec![-20.0; photons],
+                photon_energy_gev: vec![500.0; photons],
                 ..Default::default()
             });
             alerts::stamp(&mut a, seq, unix_ns_to_gps_ns(now));

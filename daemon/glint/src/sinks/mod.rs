@@ -1,4 +1,181 @@
-//! Sinks: consumers of the alert journal, each with its own cursor, so a slow or absent one never holds back
-//! the desk or another sink.
+//! Sinks: the consumers of the alert journal. Every sink keeps one contract, [`Sink`]: its own cursor into
+//! the desk, a stated overflow policy, and a bounded shutdown. [`drive`] runs that contract for any sink, so
+//! a slow or absent sink never holds back the desk, ingest or another sink, and a new sink (email, a message
+//! bus) is one file beside `subscribers.rs` that implements the trait.
+
+use std::sync::Arc;
+use std::time::Duration;
+
+use glint_wire::pb;
+use tokio_util::sync::CancellationToken;
+
+use crate::desk::Desk;
 
 pub(crate) mod subscribers;
+
+/// Alerts read from the desk per step of a cursor; bounds the memory one sink holds at a time.
+const READ_CHUNK: usize = 256;
+
+/// What a sink does when it cannot keep up with the journal. Nothing queues in memory without bound: the
+/// journal is the queue, and each sink only holds its cursor into it.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub(crate) enum Overflow {
+    /// Dropped when no alert could be handed over for this long (time without progress, not time per
+    /// chunk, so a slow but steady reader is never dropped); the peer resumes later from its own cursor.
+    DropWhenStalled(Duration),
+}
+
+/// Why a sink stopped.
+#[derive(Debug, thiserror::Error)]
+pub(crate) enum SinkError {
+    /// No alert could be handed over for the overflow policy's time; the sink's cursor says where it got to.
+    #[error("no progress for {:.1} s; dropped (resume after seq {resume_after})", .stalled.as_secs_f64())]
+    Stalled {
+        /// The stall limit that was reached.
+        stalled: Duration,
+        /// The last sequence number handed over before the stall.
+        resume_after: u64,
+    },
+    /// The peer went away or its connection failed.
+    #[error("{0:#}")]
+    Peer(anyhow::Error),
+    /// The journal could not be read.
+    #[error("reading the journal: {0:#}")]
+    Journal(anyhow::Error),
+}
+
+/// What woke an idle sink.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub(crate) enum Idle {
+    /// Its own timer fired (a heartbeat went out, say); keep going.
+    Ticked,
+    /// The peer closed its side; the sink ends normally.
+    PeerClosed,
+}
+
+/// The contract of a journal consumer. [`drive`] calls `deliver` for each wanted alert in sequence order,
+/// `commit` after each chunk, `idle` while caught up, and `close` once on shutdown.
+pub(crate) trait Sink {
+    /// How the sink is named in logs.
+    fn name(&self) -> &str;
+
+    /// The sink's overflow policy.
+    fn overflow(&self) -> Overflow;
+
+    /// Whether the sink wants this alert at all; alerts it does not want still move its cursor.
+    fn wants(&self, alert: &pb::Alert) -> bool;
+
+    /// Hands one alert over (written to a socket's buffer, sent, published). Progress is measured per
+    /// alert, so this must return as soon as this one alert is taken.
+    async fn deliver(&mut self, alert: &pb::Alert) -> anyhow::Result<()>;
+
+    /// Everything up to `seq` has been delivered: flush, and keep the cursor if the sink keeps one.
+    async fn commit(&mut self, seq: u64) -> anyhow::Result<()>;
+
+    /// Waits, while caught up, for something of the sink's own (a heartbeat due, the peer gone).
+    async fn idle(&mut self) -> Result<Idle, SinkError>;
+
+    /// Stalled under its overflow policy: a last word to the peer saying why and where to resume,
+    /// best effort and bounded.
+    async fn stalled(&mut self, err: &SinkError);
+
+    /// The daemon is closing: last words and close, bounded in time.
+    async fn close(&mut self) -> anyhow::Result<()>;
+}
+
+/// Runs `sink` from `cursor` (the last sequence number it has) until the peer leaves, the sink stalls, or
+/// `closing` is cancelled (then everything journalled so far is delivered before `close`). `cursor` is
+/// left at the last sequence number handed over.
+pub(crate) async fn drive<S: Sink>(
+    sink: &mut S,
+    desk: &Arc<Desk>,
+    cursor: &mut u64,
+    closing: &CancellationToken,
+) -> Result<(), SinkError> {
+    let Overflow::DropWhenStalled(stall) = sink.overflow();
+    let mut watch = desk.watch();
+    let mut shutting_down = false;
+    loop {
+        // Catch up to the newest published alert, one bounded chunk at a time.
+        while *cursor < desk.last_seq() {
+            let chunk = read_chunk(desk, *cursor).await?;
+            let Some(newest) = chunk.last().map(|a| a.seq) else {
+                // Nothing readable although the journal is ahead (deleted by retention or corrupt): skip on.
+                tracing::warn!(
+                    sink = sink.name(),
+                    from = *cursor,
+                    "alerts after seq {} are no longer in the journal",
+                    *cursor
+                );
+                *cursor = desk.last_seq();
+                break;
+            };
+            for a in &chunk {
+                if !sink.wants(a) {
+                    continue;
+                }
+                if let Err(e) = within(stall, *cursor, sink.deliver(a)).await {
+                    return Err(last_word(sink, e).await);
+                }
+                // Handed over: a stall from here on resumes after this one.
+                *cursor = a.seq;
+            }
+            if let Err(e) = within(stall, *cursor, sink.commit(newest)).await {
+                return Err(last_word(sink, e).await);
+            }
+            *cursor = newest;
+        }
+        if shutting_down {
+            return sink.close().await.map_err(SinkError::Peer);
+        }
+        tokio::select! {
+            changed = watch.changed() => {
+                if changed.is_err() {
+                    shutting_down = true;
+                }
+            }
+            idle = sink.idle() => match idle {
+                Ok(Idle::Ticked) => {}
+                Ok(Idle::PeerClosed) => return Ok(()),
+                Err(e) => return Err(last_word(sink, e).await),
+            },
+            () = closing.cancelled() => shutting_down = true,
+        }
+    }
+}
+
+/// One step of a sink, which must finish within the stall limit.
+async fn within(
+    stall: Duration,
+    cursor: u64,
+    step: impl Future<Output = anyhow::Result<()>>,
+) -> Result<(), SinkError> {
+    match tokio::time::timeout(stall, step).await {
+        Ok(r) => r.map_err(SinkError::Peer),
+        Err(_) => Err(SinkError::Stalled {
+            stalled: stall,
+            resume_after: cursor,
+        }),
+    }
+}
+
+/// A stalled sink says why to its peer before it is dropped.
+async fn last_word<S: Sink>(sink: &mut S, err: SinkError) -> SinkError {
+    if matches!(err, SinkError::Stalled { .. }) {
+        sink.stalled(&err).await;
+    }
+    err
+}
+
+/// The next chunk after `after`: from the desk's in-memory tail when it still holds it, else from disk on a
+/// blocking thread.
+async fn read_chunk(desk: &Arc<Desk>, after: u64) -> Result<Vec<Arc<pb::Alert>>, SinkError> {
+    if let Some(c) = desk.read_cached(after, READ_CHUNK) {
+        return Ok(c);
+    }
+    let desk = desk.clone();
+    tokio::task::spawn_blocking(move || desk.read_from_disk(after, READ_CHUNK))
+        .await
+        .map_err(|e| SinkError::Journal(e.into()))?
+        .map_err(|e| SinkError::Journal(e.into()))
+}
