@@ -4,6 +4,8 @@
 #![allow(clippy::unwrap_used)] // tests may unwrap: a panic is the failure report
 
 mod cli;
+mod hostile;
+mod journal;
 mod layout;
 mod live;
 mod replay;

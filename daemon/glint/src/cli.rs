@@ -48,6 +48,8 @@ enum Command {
     Listen(crate::commands::listen::ListenArgs),
     /// Withdraw an alert (needs the operator token).
     Withdraw(crate::commands::withdraw::WithdrawArgs),
+    /// Read a state directory's alert journal offline: verify, list, show, export (never modifies it).
+    Journal(crate::commands::journal::JournalArgs),
 }
 
 /// Runs the chosen subcommand.
@@ -63,6 +65,7 @@ pub(crate) fn dispatch(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Feed(a) => crate::commands::feed::run(a),
         Command::Listen(a) => crate::commands::listen::run(a),
         Command::Withdraw(a) => crate::commands::withdraw::run(a),
+        Command::Journal(a) => crate::commands::journal::run(&a),
     };
     match result {
         // A configuration or a scenario that does not compile is the operator's to mend: exit code 2.

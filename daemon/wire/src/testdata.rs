@@ -100,6 +100,7 @@ pub(crate) fn ingest_replies() -> Vec<pb::IngestReply> {
                 seq: 5,
                 photons: 5000,
                 refused: 3,
+                late: 2,
             })),
         },
     ]

@@ -5,6 +5,7 @@ pub(crate) mod bench_live;
 pub(crate) mod check_config;
 pub(crate) mod demo;
 pub(crate) mod feed;
+pub(crate) mod journal;
 pub(crate) mod listen;
 pub(crate) mod reach;
 pub(crate) mod replay;
