@@ -238,8 +238,15 @@ pub(crate) struct AssessSettings {
     pub(crate) all_sky_sigma_max: f64,
     /// `instrumental` when more than this fraction of the flash photons share one timestamp.
     pub(crate) identical_fraction_max: f64,
-    /// `instrumental` when the photons' spread exceeds the PSF's by this factor.
+    /// No longer read by any rule (kept so configurations naming it still load).
     pub(crate) spread_ratio_max: f64,
+    /// `instrumental` when the flash window's photons are spread wider than the PSF at this significance.
+    pub(crate) spread_sigma_max: f64,
+    /// `persistent` (decaying shape) when a decaying light curve beats the evaporation template by more than
+    /// this in 2 Delta ln L ...
+    pub(crate) shape_log_ratio_min: f64,
+    /// ... and the template's goodness-of-fit p-value is below this.
+    pub(crate) shape_p_max: f64,
     /// `undecided` when dead time covers more than this fraction of the persistence window.
     pub(crate) max_dead_fraction: f64,
 }
@@ -998,12 +1005,15 @@ impl Reader {
         let assess = AssessSettings {
             persistence_min_s: num(self, "persistence_min_s", 30.0, 0.1, 86_400.0),
             persistence_timescale_factor: num(self, "persistence_timescale_factor", 10.0, 1.0, 1000.0),
-            pre_window_s: num(self, "pre_window_s", 30.0, 0.0, 3600.0),
+            pre_window_s: num(self, "pre_window_s", 120.0, 0.0, 3600.0),
             post_sigma_max: num(self, "post_sigma_max", 3.0, 0.0, 100.0),
             pre_sigma_max: num(self, "pre_sigma_max", 3.0, 0.0, 100.0),
             all_sky_sigma_max: num(self, "all_sky_sigma_max", 5.0, 0.0, 100.0),
             identical_fraction_max: num(self, "identical_fraction_max", 0.5, 0.0, 1.0),
             spread_ratio_max: num(self, "spread_ratio_max", 2.5, 1.0, 100.0),
+            spread_sigma_max: num(self, "spread_sigma_max", 3.5, 0.0, 100.0),
+            shape_log_ratio_min: num(self, "shape_log_ratio_min", 10.0, -1000.0, 1000.0),
+            shape_p_max: num(self, "shape_p_max", 1.0, 0.0, 1.0),
             max_dead_fraction: num(self, "max_dead_fraction", 0.1, 0.0, 1.0),
         };
         self.finish(a);
