@@ -48,6 +48,8 @@ enum Command {
     Listen(crate::commands::listen::ListenArgs),
     /// Withdraw an alert (needs the operator token).
     Withdraw(crate::commands::withdraw::WithdrawArgs),
+    /// Ask a running daemon for a TEST alert through every sink (needs the operator token).
+    TestAlert(crate::commands::test_alert::TestAlertArgs),
 }
 
 /// Runs the chosen subcommand.
@@ -63,6 +65,7 @@ pub(crate) fn dispatch(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Feed(a) => crate::commands::feed::run(a),
         Command::Listen(a) => crate::commands::listen::run(a),
         Command::Withdraw(a) => crate::commands::withdraw::run(a),
+        Command::TestAlert(a) => crate::commands::test_alert::run(a),
     };
     match result {
         Err(e) if e.downcast_ref::<crate::config::BadConfig>().is_some() => {

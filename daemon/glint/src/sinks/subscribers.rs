@@ -134,6 +134,7 @@ async fn handle(mut framed: Conn, peer: SocketAddr, hub: &Hub) -> anyhow::Result
     match req.body {
         Some(subscriber_request::Body::Subscribe(s)) => subscribe(framed, peer, s, hub).await,
         Some(subscriber_request::Body::Withdraw(w)) => withdraw(framed, w, hub).await,
+        Some(subscriber_request::Body::TestAlert(t)) => test_alert(framed, t, hub).await,
         None => {
             refuse(
                 &mut framed,
@@ -162,6 +163,35 @@ async fn withdraw(mut framed: Conn, w: pb::WithdrawRequest, hub: &Hub) -> anyhow
     let desk = hub.desk.clone();
     let (id, reason, operator) = (w.alert_id.clone(), w.reason.clone(), w.operator.clone());
     let result = tokio::task::spawn_blocking(move || desk.withdraw(&id, &reason, &operator)).await?;
+    match result {
+        Ok(alert) => {
+            let frame = pb::SubscriberFrame {
+                body: Some(subscriber_frame::Body::Alert((*alert).clone())),
+            };
+            tokio::time::timeout(REQUEST_TIMEOUT, framed.send(frame)).await??;
+            Ok(())
+        }
+        Err(e) => refuse(&mut framed, pb::RefusalCode::BadRequest, e.to_string()).await,
+    }
+}
+
+/// An operator's TEST alert: issued through the desk (journalled, then every sink sees it) and sent back.
+async fn test_alert(mut framed: Conn, t: pb::TestAlertRequest, hub: &Hub) -> anyhow::Result<()> {
+    let allowed = hub
+        .cfg
+        .operator_token
+        .as_ref()
+        .is_some_and(|tok| token_matches(&t.token, tok));
+    if !allowed {
+        return refuse(
+            &mut framed,
+            pb::RefusalCode::BadToken,
+            "test alerts need the operator token".into(),
+        )
+        .await;
+    }
+    let desk = hub.desk.clone();
+    let result = tokio::task::spawn_blocking(move || desk.issue_test(&t.operator, &t.note)).await?;
     match result {
         Ok(alert) => {
             let frame = pb::SubscriberFrame {
