@@ -17,7 +17,7 @@ pub(crate) const EXIT_CONFIG: u8 = 2;
     name = "glint",
     version,
     about,
-    after_help = "Exit codes: 0 success, 1 error while running, 2 configuration problems."
+    after_help = "Exit codes: 0 success, 1 error while running, 2 configuration problems, 3 (listen --exec) a handler failed after its retries."
 )]
 pub(crate) struct Cli {
     #[command(subcommand)]
