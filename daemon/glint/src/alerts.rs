@@ -461,7 +461,11 @@ impl Sequencer {
     pub(crate) fn test_alert(&mut self, operator: &str, note: &str, issued_gps_ns: i64) -> pb::Alert {
         let seq = self.next_seq();
         self.next_seq = seq + 1;
-        let who = if operator.trim().is_empty() { "an operator" } else { operator.trim() };
+        let who = if operator.trim().is_empty() {
+            "an operator"
+        } else {
+            operator.trim()
+        };
         let note = note.trim();
         let reason = if note.is_empty() {
             format!("TEST alert requested by {who}; not a detection")

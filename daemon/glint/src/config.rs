@@ -803,7 +803,10 @@ impl Reader {
                 (h.trim_matches(['[', ']']).to_string(), p.parse().unwrap_or(25))
             }
             Some((r, _)) => {
-                self.problem(s.key("relay"), format!("'{r}' is not HOST:PORT, e.g. smtp.example.org:587"));
+                self.problem(
+                    s.key("relay"),
+                    format!("'{r}' is not HOST:PORT, e.g. smtp.example.org:587"),
+                );
                 (String::new(), 0)
             }
             None => (String::new(), 0),
@@ -816,12 +819,17 @@ impl Reader {
             "implicit" => EmailTls::Implicit,
             "none" => EmailTls::None,
             other => {
-                self.problem(s.key("tls"), format!("'{other}' is not one of starttls, implicit, none"));
+                self.problem(
+                    s.key("tls"),
+                    format!("'{other}' is not one of starttls, implicit, none"),
+                );
                 EmailTls::StartTls
             }
         };
         let loopback = relay_host == "localhost"
-            || relay_host.parse::<std::net::IpAddr>().is_ok_and(|ip| ip.is_loopback());
+            || relay_host
+                .parse::<std::net::IpAddr>()
+                .is_ok_and(|ip| ip.is_loopback());
         let allow_plain: bool = self.get(&mut s, "allow_plain_remote", false);
         if tls == EmailTls::None && !loopback && !relay_host.is_empty() && !allow_plain {
             self.problem(
@@ -833,7 +841,10 @@ impl Reader {
         let tls_ca_file = (!ca.is_empty()).then(|| self.path(&ca));
         if let Some(p) = &tls_ca_file {
             if !p.is_file() {
-                self.problem(s.key("tls_ca_file"), format!("{} is not a readable file", p.display()));
+                self.problem(
+                    s.key("tls_ca_file"),
+                    format!("{} is not a readable file", p.display()),
+                );
             }
         }
         let user: String = self.get(&mut s, "username", String::new());
@@ -843,24 +854,35 @@ impl Reader {
             (false, false) => {
                 let p = self.path(&pw_file);
                 match std::fs::read_to_string(&p) {
-                    Ok(t) if !t.trim().is_empty() => Some((user, Secret(t.trim_end_matches(['\r', '\n']).to_string()))),
+                    Ok(t) if !t.trim().is_empty() => {
+                        Some((user, Secret(t.trim_end_matches(['\r', '\n']).to_string())))
+                    }
                     Ok(_) => {
                         self.problem(s.key("password_file"), format!("{} is empty", p.display()));
                         None
                     }
                     Err(e) => {
-                        self.problem(s.key("password_file"), format!("cannot read {}: {e}", p.display()));
+                        self.problem(
+                            s.key("password_file"),
+                            format!("cannot read {}: {e}", p.display()),
+                        );
                         None
                     }
                 }
             }
             _ => {
-                self.problem(s.key("username"), "username and password_file must be given together");
+                self.problem(
+                    s.key("username"),
+                    "username and password_file must be given together",
+                );
                 None
             }
         };
         if auth.is_some() && tls == EmailTls::None && !loopback {
-            self.problem(s.key("password_file"), "a password is never sent without TLS to a remote relay");
+            self.problem(
+                s.key("password_file"),
+                "a password is never sent without TLS to a remote relay",
+            );
         }
         let timeout = self.seconds(&mut s, "timeout_s", 30.0);
         let retry_max = self.seconds(&mut s, "retry_max_s", 300.0);
@@ -875,7 +897,9 @@ impl Reader {
                                 recipients.push(r);
                             }
                         }
-                        other => self.problem(prefix, format!("expected a table, found {}", other.type_str())),
+                        other => {
+                            self.problem(prefix, format!("expected a table, found {}", other.type_str()))
+                        }
                     }
                 }
             }
@@ -916,7 +940,12 @@ impl Reader {
         let names: Vec<String> = self.get(
             &mut s,
             "kinds",
-            vec!["flash".into(), "assessment".into(), "withdrawal".into(), "test".into()],
+            vec![
+                "flash".into(),
+                "assessment".into(),
+                "withdrawal".into(),
+                "test".into(),
+            ],
         );
         let mut kinds = Vec::new();
         for n in &names {

@@ -147,7 +147,10 @@ mod tests {
         let (_, b) = icrs_to_galactic_deg(192.859_48, 27.128_25);
         assert!((b - 90.0).abs() < 1e-9, "pole latitude {b}");
         let (l, b) = icrs_to_galactic_deg(0.0, 90.0);
-        assert!((l - 122.931_92).abs() < 1e-4 && (b - 27.128_25).abs() < 1e-4, "NCP at {l} {b}");
+        assert!(
+            (l - 122.931_92).abs() < 1e-4 && (b - 27.128_25).abs() < 1e-4,
+            "NCP at {l} {b}"
+        );
         // The galactic centre (l = 0, b = 0) is at RA 266.40500, Dec -28.93617 in that realisation.
         let (l, b) = icrs_to_galactic_deg(266.405, -28.936_17);
         assert!(sep_deg(l, b, 0.0, 0.0) < 2e-4, "centre at {l} {b}");
@@ -168,7 +171,12 @@ mod tests {
         let m = icrs_to_galactic_matrix();
         for i in 0..3 {
             for j in 0..3 {
-                assert!((m[i][j] - printed[i][j]).abs() < 1e-9, "[{i}][{j}] {} vs {}", m[i][j], printed[i][j]);
+                assert!(
+                    (m[i][j] - printed[i][j]).abs() < 1e-9,
+                    "[{i}][{j}] {} vs {}",
+                    m[i][j],
+                    printed[i][j]
+                );
             }
         }
         // [calc] a rotation: rows of unit length, mutually orthogonal.

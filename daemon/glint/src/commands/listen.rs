@@ -190,7 +190,8 @@ pub(crate) fn run(args: ListenArgs) -> anyhow::Result<ExitCode> {
                 "glint listen: {} handler(s) failed: {}; the state file stops at {}",
                 r.failed.len(),
                 ids.join(" "),
-                r.committed.map_or("its old value".to_string(), |s| format!("seq {s}"))
+                r.committed
+                    .map_or("its old value".to_string(), |s| format!("seq {s}"))
             );
             return Ok(ExitCode::from(EXIT_HANDLER_FAILED));
         }

@@ -283,8 +283,14 @@ impl Daemon {
         if let Some(email) = &cfg.email {
             // A quarter of the shutdown deadline to mail what the last stages journalled; the rest waits for
             // the next start, the cursors being on disk.
+            let responses = cfg
+                .instruments
+                .iter()
+                .map(|i| (i.id.clone(), i.response.clone()))
+                .collect();
             crate::sinks::email::start(
                 email,
+                responses,
                 &state_dir,
                 &desk,
                 &metrics,

@@ -144,7 +144,13 @@ fn sexagesimal(ra_deg: f64, dec_deg: f64) -> String {
 /// The document of one alert.
 pub(crate) fn alert_doc(a: &pb::Alert) -> Doc {
     let mut doc = Doc {
-        title: format!("{} from {}: {} (seq {})", kind_label(a), a.instrument, a.id, a.seq),
+        title: format!(
+            "{} from {}: {} (seq {})",
+            kind_label(a),
+            a.instrument,
+            a.id,
+            a.seq
+        ),
         sections: Vec::new(),
     };
     let mut what = Section::new("What happened");
@@ -242,7 +248,10 @@ pub(crate) fn alert_doc(a: &pb::Alert) -> Doc {
             )
             .row(
                 "All sky in the window",
-                format!("{} photons on {:.2} expected", x.all_sky_counts, x.all_sky_expected),
+                format!(
+                    "{} photons on {:.2} expected",
+                    x.all_sky_counts, x.all_sky_expected
+                ),
             )
             .row("Dead time", format!("{:.2} s", x.dead_seconds));
         match x.fit.as_ref() {
@@ -327,12 +336,12 @@ pub(crate) fn render_text(doc: &Doc) -> String {
     let _ = writeln!(s, "{}\n", doc.title);
     for sec in &doc.sections {
         let _ = writeln!(s, "{}", sec.heading);
+        for p in &sec.paras {
+            let _ = writeln!(s, "  {}", wrap(p, 76).join("\n  "));
+        }
         let width = sec.rows.iter().map(|(l, _)| l.len()).max().unwrap_or(0);
         for (label, value) in &sec.rows {
             let _ = writeln!(s, "  {label:<width$}  {value}");
-        }
-        for p in &sec.paras {
-            let _ = writeln!(s, "  {}", wrap(p, 76).join("\n  "));
         }
         s.push('\n');
     }
@@ -371,6 +380,9 @@ pub(crate) fn render_html(doc: &Doc) -> String {
     let _ = writeln!(s, "<h2>{}</h2>", escape(&doc.title));
     for sec in &doc.sections {
         let _ = writeln!(s, "<h3>{}</h3>", escape(&sec.heading));
+        for p in &sec.paras {
+            let _ = writeln!(s, "<p>{}</p>", escape(p));
+        }
         if !sec.rows.is_empty() {
             s.push_str("<table>\n");
             for (label, value) in &sec.rows {
@@ -382,9 +394,6 @@ pub(crate) fn render_html(doc: &Doc) -> String {
                 );
             }
             s.push_str("</table>\n");
-        }
-        for p in &sec.paras {
-            let _ = writeln!(s, "<p>{}</p>", escape(p));
         }
     }
     s.push_str("</body></html>\n");

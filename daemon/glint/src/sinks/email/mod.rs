@@ -11,12 +11,14 @@ pub(crate) mod message;
 pub(crate) mod plot;
 pub(crate) mod storm;
 
+use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
 use std::sync::atomic::Ordering;
 use std::time::Duration;
 
 use anyhow::Context;
+use glint_science::instrument::InstrumentResponse;
 use glint_wire::pb;
 use lettre::message::header::ContentType;
 use lettre::message::{Attachment, Mailbox, MultiPart};
@@ -45,6 +47,8 @@ struct Mailer {
     transport: AsyncSmtpTransport<Tokio1Executor>,
     from: Mailbox,
     retry_max: Duration,
+    /// Each instrument's response, for the shape of the fitted curve in the light curve.
+    responses: BTreeMap<String, InstrumentResponse>,
 }
 
 /// Builds the SMTP transport from `[email]`.
@@ -90,7 +94,13 @@ fn state_file(dir: &Path, address: &Mailbox) -> PathBuf {
         .to_string()
         .to_lowercase()
         .chars()
-        .map(|c| if c.is_ascii_alphanumeric() || c == '.' || c == '-' { c } else { '_' })
+        .map(|c| {
+            if c.is_ascii_alphanumeric() || c == '.' || c == '-' {
+                c
+            } else {
+                '_'
+            }
+        })
         .collect();
     dir.join(format!("{slug}.json"))
 }
@@ -124,6 +134,7 @@ fn sigma_of(a: &pb::Alert) -> f64 {
 /// At shutdown (`closing`) each gets `grace` to send what was journalled, then stops where it is.
 pub(crate) fn start(
     cfg: &EmailConfig,
+    responses: BTreeMap<String, InstrumentResponse>,
     state_dir: &Path,
     desk: &Arc<Desk>,
     metrics: &Arc<Metrics>,
@@ -137,6 +148,7 @@ pub(crate) fn start(
         transport: transport(cfg)?,
         from: cfg.from.clone(),
         retry_max: cfg.retry_max,
+        responses,
     });
     for r in &cfg.recipients {
         let path = state_file(&dir, &r.address);
@@ -251,7 +263,11 @@ impl RecipientSink {
     async fn send_alert(&self, a: &pb::Alert) -> Outcome {
         let ids = vec![a.id.clone()];
         let alert = a.clone();
-        let png = tokio::task::spawn_blocking(move || plot::light_curve_png(&alert)).await;
+        let mailer = self.mailer.clone();
+        let png = tokio::task::spawn_blocking(move || {
+            plot::light_curve_png(&alert, mailer.responses.get(&alert.instrument))
+        })
+        .await;
         let png = match png {
             Ok(Ok(p)) => p,
             Ok(Err(e)) => {
@@ -269,7 +285,10 @@ impl RecipientSink {
                 message::render_text(&doc),
                 message::render_html(&doc),
             ))
-            .singlepart(Attachment::new("lightcurve.png".to_string()).body(png, ContentType::parse("image/png").unwrap_or(ContentType::TEXT_PLAIN)));
+            .singlepart(Attachment::new("lightcurve.png".to_string()).body(
+                png,
+                ContentType::parse("image/png").unwrap_or(ContentType::TEXT_PLAIN),
+            ));
         let msg = Message::builder()
             .from(self.mailer.from.clone())
             .to(self.r.address.clone())
@@ -328,7 +347,9 @@ impl RecipientSink {
             .from(self.mailer.from.clone())
             .to(self.r.address.clone())
             .subject(message::digest_subject(&held, &now_utc))
-            .message_id(Some(self.message_id(&format!("digest-{}-{}", first.seq, last.seq))))
+            .message_id(Some(
+                self.message_id(&format!("digest-{}-{}", first.seq, last.seq)),
+            ))
             .multipart(MultiPart::alternative_plain_html(
                 message::render_text(&doc),
                 message::render_html(&doc),

@@ -5,6 +5,8 @@
 
 use std::sync::OnceLock;
 
+use glint_science::hawking;
+use glint_science::instrument::InstrumentResponse;
 use glint_wire::pb;
 use plotters::prelude::*;
 use plotters::style::{FontStyle, register_font};
@@ -40,37 +42,64 @@ fn draw_err<E: std::fmt::Debug>(e: E) -> PlotError {
     PlotError::Draw(format!("{e:?}"))
 }
 
-/// Expected photons per bin of `[a, b]` (seconds from the window end) from the fit: a flat background plus
-/// a final burst whose rate rises as `(t_explosion - t)^(-1/2)` and stops dead at the explosion
-/// (docs/science.md section 2), scaled so the window holds the fitted signal count.
-fn fitted_counts(fit: &pb::EvaporationFit, t: &pb::Trigger, a: f64, b: f64) -> f64 {
+/// Expected photons per bin of `[a, b]` (seconds from the window end) under the fit: the trigger's
+/// background spread evenly, plus the burst. With the instrument's response the burst is the exact detected
+/// count of a black hole at the fitted distance exploding at the fitted time
+/// ([`glint_science::hawking::detected_counts_between`], the model the fit itself uses; all of it taken as
+/// inside the disc). Without it, the fitted signal count is shared out over the window as the emitted rate
+/// `(t_explosion - t)^(-1/2)` (docs/science.md section 2). Either way it stops dead at the explosion.
+fn fitted_counts(
+    fit: &pb::EvaporationFit,
+    t: &pb::Trigger,
+    response: Option<&InstrumentResponse>,
+    a: f64,
+    b: f64,
+) -> f64 {
     let window = (t.end_gps_ns - t.start_gps_ns) as f64 / 1e9;
     if window <= 0.0 {
         return 0.0;
     }
     let te = (fit.explosion_gps_ns - t.end_gps_ns) as f64 / 1e9;
-    let start = -window;
-    // Integral of (te - t)^(-1/2) from x to y (both below te) is 2 (sqrt(te - x) - sqrt(te - y)).
-    let integral = |x: f64, y: f64| {
-        let (x, y) = (x.min(te), y.min(te));
-        if y <= x {
-            0.0
-        } else {
-            2.0 * ((te - x).sqrt() - (te - y).sqrt())
+    let clip = |x: f64, y: f64| (x.min(te), y.min(te));
+    let background = t.background * (b - a) / window;
+    let signal = match response {
+        Some(r) if fit.distance_pc > 0.0 => {
+            let (x, y) = clip(a, b);
+            if y <= x {
+                0.0
+            } else {
+                hawking::detected_counts_between(r, t.zenith_deg, fit.distance_pc, te - y, te - x)
+                    .unwrap_or(0.0)
+            }
+        }
+        _ => {
+            // Integral of (te - t)^(-1/2) from x to y (both before te) is 2 (sqrt(te - x) - sqrt(te - y)).
+            let integral = |x: f64, y: f64| {
+                let (x, y) = clip(x, y);
+                if y <= x {
+                    0.0
+                } else {
+                    2.0 * ((te - x).sqrt() - (te - y).sqrt())
+                }
+            };
+            let whole = integral(-window, 0.0);
+            if whole > 0.0 {
+                fit.signal_counts * integral(a, b) / whole
+            } else {
+                0.0
+            }
         }
     };
-    let whole = integral(start, 0.0);
-    let signal = if whole > 0.0 {
-        fit.signal_counts * integral(a, b) / whole
-    } else {
-        0.0
-    };
-    fit.background_counts * (b - a) / window + signal
+    background + signal
 }
 
-/// Draws the light curve of an alert as a PNG of [`WIDTH`] x [`HEIGHT`]. An alert without photons (a test,
-/// a withdrawal of one) gets a frame saying so.
-pub(crate) fn light_curve_png(a: &pb::Alert) -> Result<Vec<u8>, PlotError> {
+/// Draws the light curve of an alert as a PNG of [`WIDTH`] x [`HEIGHT`]; `response` is the instrument's,
+/// when known, for the shape of the fitted curve. An alert without photons (a test, a withdrawal of one)
+/// gets a frame saying so.
+pub(crate) fn light_curve_png(
+    a: &pb::Alert,
+    response: Option<&InstrumentResponse>,
+) -> Result<Vec<u8>, PlotError> {
     if !font_ready() {
         return Err(PlotError::Font);
     }
@@ -83,7 +112,7 @@ pub(crate) fn light_curve_png(a: &pb::Alert) -> Result<Vec<u8>, PlotError> {
             .as_ref()
             .filter(|t| a.kind != pb::AlertKind::Test as i32 && t.end_gps_ns > t.start_gps_ns);
         match trigger {
-            Some(t) => draw_curve(&root, a, t)?,
+            Some(t) => draw_curve(&root, a, t, response)?,
             None => {
                 let what = if a.kind == pb::AlertKind::Test as i32 {
                     "TEST alert: no photons, no science"
@@ -121,6 +150,7 @@ fn draw_curve<DB: DrawingBackend>(
     root: &DrawingArea<DB, plotters::coord::Shift>,
     a: &pb::Alert,
     t: &pb::Trigger,
+    response: Option<&InstrumentResponse>,
 ) -> Result<(), PlotError> {
     let window = (t.end_gps_ns - t.start_gps_ns) as f64 / 1e9;
     let n = t.photon_time_gps_ns.len();
@@ -143,7 +173,7 @@ fn draw_curve<DB: DrawingBackend>(
     let fitted: Vec<f64> = fit
         .map(|f| {
             (0..bins)
-                .map(|i| fitted_counts(f, t, edge(i), edge(i + 1)))
+                .map(|i| fitted_counts(f, t, response, edge(i), edge(i + 1)))
                 .collect()
         })
         .unwrap_or_default();
@@ -200,18 +230,14 @@ fn draw_curve<DB: DrawingBackend>(
         .legend(move |(x, y)| PathElement::new([(x, y), (x + 14, y)], grey.stroke_width(2)));
     if let Some(f) = fit {
         let red = RGBColor(200, 40, 40);
-        let steps = (0..bins).flat_map(|i| {
-            [
-                (edge(i) * unit, fitted[i]),
-                (edge(i + 1) * unit, fitted[i]),
-            ]
-        });
+        let steps = (0..bins).flat_map(|i| [(edge(i) * unit, fitted[i]), (edge(i + 1) * unit, fitted[i])]);
         chart
             .draw_series(LineSeries::new(steps, red.stroke_width(3)))
             .map_err(draw_err)?
             .label(format!(
-                "evaporation fit: {:.4} pc, {:.1} signal photons",
-                f.distance_pc, f.signal_counts
+                "evaporation fit: {:.4} pc, explosion {:+.3} s",
+                f.distance_pc,
+                (f.explosion_gps_ns - t.end_gps_ns) as f64 / 1e9
             ))
             .legend(move |(x, y)| PathElement::new([(x, y), (x + 14, y)], red.stroke_width(3)));
     }
@@ -251,6 +277,7 @@ mod tests {
         let t = pb::Trigger {
             start_gps_ns: 0,
             end_gps_ns: 1_000_000_000,
+            background: 2.0,
             ..Default::default()
         };
         let fit = pb::EvaporationFit {
@@ -261,12 +288,51 @@ mod tests {
             ..Default::default()
         };
         let total: f64 = (0..100)
-            .map(|i| fitted_counts(&fit, &t, -1.0 + f64::from(i) * 0.01, -1.0 + f64::from(i + 1) * 0.01))
+            .map(|i| {
+                fitted_counts(
+                    &fit,
+                    &t,
+                    None,
+                    -1.0 + f64::from(i) * 0.01,
+                    -1.0 + f64::from(i + 1) * 0.01,
+                )
+            })
             .sum();
         assert!((total - 22.0).abs() < 1e-9, "{total}");
         // Nothing but background after the explosion; the burst peaks just before it.
-        assert!((fitted_counts(&fit, &t, -0.05, 0.0) - 0.1).abs() < 1e-12);
-        assert!(fitted_counts(&fit, &t, -0.11, -0.1) > fitted_counts(&fit, &t, -0.5, -0.49));
+        assert!((fitted_counts(&fit, &t, None, -0.05, 0.0) - 0.1).abs() < 1e-12);
+        assert!(fitted_counts(&fit, &t, None, -0.11, -0.1) > fitted_counts(&fit, &t, None, -0.5, -0.49));
+    }
+
+    #[test]
+    fn with_the_response_the_burst_rises_to_the_explosion_and_stops() {
+        let cfg = crate::config::Config::from_toml(
+            crate::config::EMBEDDED_DEFAULT,
+            "test",
+            std::path::Path::new("."),
+            false,
+        )
+        .unwrap();
+        let r = &cfg.instruments[0].response;
+        let t = pb::Trigger {
+            start_gps_ns: 0,
+            end_gps_ns: 10_000_000_000,
+            background: 1.0,
+            zenith_deg: 10.0,
+            ..Default::default()
+        };
+        let fit = pb::EvaporationFit {
+            converged: true,
+            explosion_gps_ns: 9_000_000_000,
+            distance_pc: 0.04,
+            ..Default::default()
+        };
+        let bin = |a: f64| fitted_counts(&fit, &t, Some(r), a, a + 0.5);
+        assert!(
+            (bin(-0.5) - 0.05).abs() < 1e-12,
+            "only background after the explosion"
+        );
+        assert!(bin(-1.5) > bin(-3.0) && bin(-3.0) > bin(-8.0) && bin(-8.0) > 0.05);
     }
 
     #[test]
@@ -283,7 +349,7 @@ mod tests {
             ..Default::default()
         };
         for alert in [a, pb::Alert::default()] {
-            let bytes = light_curve_png(&alert).unwrap();
+            let bytes = light_curve_png(&alert, None).unwrap();
             let dec = png::Decoder::new(std::io::Cursor::new(bytes));
             let reader = dec.read_info().unwrap();
             assert_eq!((reader.info().width, reader.info().height), (WIDTH, HEIGHT));

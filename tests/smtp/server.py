@@ -1,0 +1,109 @@
+#!/usr/bin/env python3
+"""A real SMTP server for glint's email tests (aiosmtpd on 127.0.0.1).
+
+Every message it accepts is stored whole (`NNN.eml`) and, decoded with Python's email package, as
+`NNN.json` (envelope recipients, subject, Message-ID, plain and HTML parts, attachments saved beside it), so
+the tests can check what a person would receive. Recipients named with --reject get
+`550 5.1.1` at RCPT TO. It prints `ready PORT` on stdout once listening and runs until SIGTERM/SIGINT.
+Usage: server.py --port PORT --dir DIR [--reject ADDR ...]
+"""
+
+import argparse
+import asyncio
+import email
+import email.policy
+import json
+import os
+import signal
+import sys
+import time
+
+from aiosmtpd.smtp import SMTP
+
+
+class Store:
+    def __init__(self, out_dir, reject):
+        self.out_dir = out_dir
+        self.reject = {a.lower() for a in reject}
+        self.count = 0
+
+    async def handle_RCPT(self, server, session, envelope, address, rcpt_options):
+        if address.lower() in self.reject:
+            return "550 5.1.1 <%s>: mailbox unavailable (rejected by the test server)" % address
+        envelope.rcpt_tos.append(address)
+        return "250 OK"
+
+    async def handle_DATA(self, server, session, envelope):
+        self.count += 1
+        # Nanoseconds first, so names sort in the order messages were accepted, across restarts too.
+        stem = os.path.join(self.out_dir, "%020d-%06d" % (time.time_ns(), self.count))
+        raw = envelope.original_content or envelope.content
+        if isinstance(raw, str):
+            raw = raw.encode()
+        msg = email.message_from_bytes(raw, policy=email.policy.default)
+        summary = {
+            "envelope_to": list(envelope.rcpt_tos),
+            "mail_from": envelope.mail_from,
+            "subject": str(msg.get("Subject", "")),
+            "message_id": str(msg.get("Message-ID", "")),
+            "to": str(msg.get("To", "")),
+            "text": None,
+            "html": None,
+            "attachments": [],
+        }
+        n = 0
+        for part in msg.walk():
+            if part.is_multipart():
+                continue
+            ctype = part.get_content_type()
+            if part.get_filename():
+                n += 1
+                path = "%s-att%d-%s" % (stem, n, os.path.basename(part.get_filename()))
+                with open(path, "wb") as f:
+                    f.write(part.get_payload(decode=True))
+                summary["attachments"].append(
+                    {"filename": part.get_filename(), "content_type": ctype, "path": path}
+                )
+            elif ctype == "text/plain" and summary["text"] is None:
+                summary["text"] = part.get_content()
+            elif ctype == "text/html" and summary["html"] is None:
+                summary["html"] = part.get_content()
+        with open(stem + ".eml", "wb") as f:
+            f.write(raw)
+        # The JSON last and by rename: a test that sees it sees a whole message.
+        with open(stem + ".json.tmp", "w") as f:
+            json.dump(summary, f)
+        os.rename(stem + ".json.tmp", stem + ".json")
+        return "250 Message accepted for delivery"
+
+
+async def main():
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--port", type=int, required=True)
+    ap.add_argument("--dir", required=True)
+    ap.add_argument("--reject", action="append", default=[])
+    args = ap.parse_args()
+    os.makedirs(args.dir, exist_ok=True)
+    handler = Store(args.dir, args.reject)
+    loop = asyncio.get_running_loop()
+    server = await loop.create_server(
+        lambda: SMTP(handler, hostname="glint-test-smtp", decode_data=False),
+        host="127.0.0.1",
+        port=args.port,
+        reuse_address=True,
+    )
+    stop = asyncio.Event()
+    for sig in (signal.SIGTERM, signal.SIGINT):
+        loop.add_signal_handler(sig, stop.set)
+    port = server.sockets[0].getsockname()[1]
+    print("ready %d" % port, flush=True)
+    await stop.wait()
+    server.close()
+    await server.wait_closed()
+
+
+if __name__ == "__main__":
+    try:
+        asyncio.run(main())
+    except KeyboardInterrupt:
+        sys.exit(0)
