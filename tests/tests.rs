@@ -4,7 +4,9 @@
 #![allow(clippy::unwrap_used)] // tests may unwrap: a panic is the failure report
 
 mod cli;
+mod email;
 mod layout;
+mod listen_exec;
 mod live;
 mod replay;
 mod util;
