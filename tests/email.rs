@@ -106,9 +106,7 @@ impl Smtp {
     /// Stops it (SIGTERM, then waits).
     pub(crate) fn down(&mut self) {
         let mut c = self.child.take().expect("running");
-        let _ = Command::new("kill")
-            .args(["-TERM", &c.id().to_string()])
-            .status();
+        let _ = Command::new("kill").args(["-TERM", &c.id().to_string()]).status();
         let deadline = Instant::now() + Duration::from_secs(10);
         while c.try_wait().unwrap().is_none() {
             if Instant::now() > deadline {
@@ -245,7 +243,14 @@ fn email_every_alert_kind_arrives_with_subject_both_parts_and_a_png() {
     // One test alert through the command an operator uses.
     let op = util::token_file(dir.path(), "op.token", OPERATOR_TOKEN);
     let out = Command::new(util::glint_bin())
-        .args(["test-alert", "--from", &d.subs.to_string(), "--note", "email check", "--token-file"])
+        .args([
+            "test-alert",
+            "--from",
+            &d.subs.to_string(),
+            "--note",
+            "email check",
+            "--token-file",
+        ])
         .arg(&op)
         .output()
         .unwrap();
@@ -291,7 +296,10 @@ fn email_every_alert_kind_arrives_with_subject_both_parts_and_a_png() {
             let pos = format!("RA {:.2} Dec {:+.2} {:.1} sigma", t.ra_deg, t.dec_deg, t.sigma);
             assert!(subject.ends_with(&pos), "{subject} lacks {pos}");
             for body in [text, html] {
-                assert!(body.contains("Galactic") && body.contains("False-alarm rate"), "{body}");
+                assert!(
+                    body.contains("Galactic") && body.contains("False-alarm rate"),
+                    "{body}"
+                );
             }
         }
         if kind == pb::AlertKind::Assessment {
@@ -300,7 +308,9 @@ fn email_every_alert_kind_arrives_with_subject_both_parts_and_a_png() {
             assert!(text.contains(&verdict), "{text}");
         }
         if kind == pb::AlertKind::Test {
-            assert!(subject.starts_with("TEST") && text.contains("TEST ALERT") && html.contains("TEST ALERT"));
+            assert!(
+                subject.starts_with("TEST") && text.contains("TEST ALERT") && html.contains("TEST ALERT")
+            );
             assert!(text.contains("email check"));
             assert!(!text.contains("Galactic"), "a test alert carries no science");
         }
@@ -364,7 +374,9 @@ fn email_storm_two_per_minute_then_one_digest_naming_the_other_28() {
         dir.path(),
         &email_section(smtp.port, &[(ONCALL, "max_per_window = 2\nwindow_s = 60")]),
     );
-    let sent: Vec<String> = (0..30).map(|i| test_alert(&d, &format!("storm {i}")).id).collect();
+    let sent: Vec<String> = (0..30)
+        .map(|i| test_alert(&d, &format!("storm {i}")).id)
+        .collect();
     let first = smtp.wait_for(ONCALL, 2, Duration::from_secs(20));
     assert_eq!(ids(&first), sent[..2].to_vec());
     // The window of the first message closes 60 s after it; the digest goes then.
@@ -396,7 +408,10 @@ fn email_550_for_one_recipient_does_not_delay_another() {
         "{}\n[metrics]\nlisten = \"127.0.0.1:0\"\n",
         email_section(
             smtp.port,
-            &[("bad@example.org", "max_per_window = 100"), ("good@example.org", "max_per_window = 100")]
+            &[
+                ("bad@example.org", "max_per_window = 100"),
+                ("good@example.org", "max_per_window = 100")
+            ]
         )
     );
     let d = Daemon::start(dir.path(), &extra);
@@ -405,7 +420,10 @@ fn email_550_for_one_recipient_does_not_delay_another() {
     let good = smtp.wait_for("good@example.org", 5, Duration::from_secs(30));
     let took = started.elapsed();
     assert_eq!(ids(&good), sent);
-    assert!(took < Duration::from_secs(20), "the good recipient waited {took:?}");
+    assert!(
+        took < Duration::from_secs(20),
+        "the good recipient waited {took:?}"
+    );
     assert!(smtp.messages_to("bad@example.org").is_empty());
     // Each rejection is logged with recipient and alert id, counted, and moved past (no retries).
     let deadline = Instant::now() + Duration::from_secs(20);
@@ -449,7 +467,9 @@ fn email_sigkill_with_emails_pending_then_restart_loses_none_and_repeats_none() 
     let mut smtp = Smtp::start(&dir.path().join("mail"), &[]);
     let section = email_section(smtp.port, &[(ONCALL, "max_per_window = 1000")]);
     let mut d = Daemon::start(dir.path(), &section);
-    let mut sent: Vec<String> = (0..3).map(|i| test_alert(&d, &format!("before {i}")).id).collect();
+    let mut sent: Vec<String> = (0..3)
+        .map(|i| test_alert(&d, &format!("before {i}")).id)
+        .collect();
     assert_eq!(smtp.wait_for(ONCALL, 3, Duration::from_secs(30)).len(), 3);
     // The relay goes away; four more alerts are journalled and wait in the sink's retries.
     smtp.down();
@@ -461,6 +481,10 @@ fn email_sigkill_with_emails_pending_then_restart_loses_none_and_repeats_none() 
     let msgs = smtp.wait_for(ONCALL, 7, Duration::from_secs(60));
     assert_eq!(ids(&msgs), sent, "every alert once, in order, across the kill");
     std::thread::sleep(Duration::from_secs(2));
-    assert_eq!(smtp.messages_to(ONCALL).len(), 7, "the ones sent before the kill were not sent again");
+    assert_eq!(
+        smtp.messages_to(ONCALL).len(),
+        7,
+        "the ones sent before the kill were not sent again"
+    );
     drop(d2);
 }

@@ -23,7 +23,14 @@ fn daemon_with_alerts(dir: &Path, n: usize) -> Daemon {
 fn listen(d: &Daemon, dir: &Path, n: usize, cmd: &str, extra: &[&str]) -> Output {
     let token = util::token_file(dir, "sub.token", SUBSCRIBER_TOKEN);
     Command::new(util::glint_bin())
-        .args(["listen", "--from", &d.subs.to_string(), "--json", "--timeout-s", "60"])
+        .args([
+            "listen",
+            "--from",
+            &d.subs.to_string(),
+            "--json",
+            "--timeout-s",
+            "60",
+        ])
         .args(["--max-alerts", &n.to_string(), "--exec", cmd, "--token-file"])
         .arg(&token)
         .arg("--state-file")
@@ -52,12 +59,21 @@ fn exec_handlers_run_concurrently_up_to_the_limit_with_json_and_environment() {
          echo \"end $(date +%s%N)\" >> $o/t-$GLINT_ALERT_SEQ",
         o = out_dir.display()
     );
-    let out = listen(&d, dir.path(), 8, &cmd, &["--replay-all", "--exec-concurrency", "4"]);
+    let out = listen(
+        &d,
+        dir.path(),
+        8,
+        &cmd,
+        &["--replay-all", "--exec-concurrency", "4"],
+    );
     assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
     let mut spans = Vec::new();
     for seq in 1..=8u64 {
         let t = std::fs::read_to_string(out_dir.join(format!("t-{seq}"))).unwrap();
-        let v: Vec<u128> = t.lines().map(|l| l.split(' ').nth(1).unwrap().parse().unwrap()).collect();
+        let v: Vec<u128> = t
+            .lines()
+            .map(|l| l.split(' ').nth(1).unwrap().parse().unwrap())
+            .collect();
         assert_eq!(v.len(), 2, "handler {seq} ran once: {t}");
         spans.push((v[0], v[1]));
         let json: serde_json::Value =
@@ -102,8 +118,15 @@ fn exec_handler_past_its_timeout_is_killed_and_the_exit_code_says_so() {
     assert_eq!(out.status.code(), Some(3), "{stderr}");
     assert!(stderr.contains("timed out after 0.5 s"), "{stderr}");
     assert!(stderr.contains("2 handler(s) failed"), "{stderr}");
-    assert!(took < Duration::from_secs(20), "took {took:?}: the handlers were not killed");
-    assert_eq!(state(dir.path()), None, "the state file moved past a failed handler");
+    assert!(
+        took < Duration::from_secs(20),
+        "took {took:?}: the handlers were not killed"
+    );
+    assert_eq!(
+        state(dir.path()),
+        None,
+        "the state file moved past a failed handler"
+    );
 }
 
 #[test]
@@ -119,7 +142,11 @@ fn exec_failed_handler_is_retried_with_backoff_and_succeeds() {
     let out = listen(&d, dir.path(), 3, &cmd, &["--replay-all", "--exec-retries", "2"]);
     let stderr = String::from_utf8_lossy(&out.stderr);
     assert!(out.status.success(), "{stderr}");
-    assert_eq!(stderr.matches("failed (exited with exit status: 75)").count(), 6, "{stderr}");
+    assert_eq!(
+        stderr.matches("failed (exited with exit status: 75)").count(),
+        6,
+        "{stderr}"
+    );
     let mut seqs: Vec<u64> = std::fs::read_to_string(&done)
         .unwrap()
         .lines()
@@ -140,7 +167,13 @@ fn exec_state_file_moves_only_past_handlers_that_succeeded_in_order() {
         "if [ \"$GLINT_ALERT_SEQ\" = 3 ]; then exit 1; fi; echo $GLINT_ALERT_SEQ >> {}",
         log.display()
     );
-    let out = listen(&d, dir.path(), 5, &failing, &["--replay-all", "--exec-retries", "1"]);
+    let out = listen(
+        &d,
+        dir.path(),
+        5,
+        &failing,
+        &["--replay-all", "--exec-retries", "1"],
+    );
     let stderr = String::from_utf8_lossy(&out.stderr);
     assert_eq!(out.status.code(), Some(3), "{stderr}");
     assert!(stderr.contains("the state file stops at seq 2"), "{stderr}");

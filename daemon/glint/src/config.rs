@@ -1299,4 +1299,77 @@ mod tests {
         let ok = text.replace("[ingest]", "[ingest]\nallow_plain_remote = true");
         Config::from_toml(&ok, "x.toml", Path::new("."), false).unwrap_or_else(|e| panic!("{e}"));
     }
+
+    /// The reference configuration with its commented-out `[email]` block switched on.
+    fn reference_with_email() -> String {
+        include_str!("../../../deploy/glint.toml")
+            .lines()
+            .map(|l| match l.strip_prefix('#') {
+                Some(rest) if rest.starts_with(|c: char| c.is_ascii_lowercase() || c == '[') => rest,
+                _ => l,
+            })
+            .collect::<Vec<_>>()
+            .join("\n")
+    }
+
+    fn deploy_dir() -> PathBuf {
+        Path::new(env!("CARGO_MANIFEST_DIR")).join("../../deploy")
+    }
+
+    #[test]
+    fn reference_email_block_compiles() {
+        let cfg = Config::from_toml(&reference_with_email(), "ref", &deploy_dir(), false).unwrap();
+        let e = cfg.email.unwrap();
+        assert_eq!((e.relay_host.as_str(), e.relay_port), ("smtp.example.org", 587));
+        assert_eq!(e.tls, EmailTls::StartTls);
+        assert_eq!(e.recipients.len(), 1);
+        let r = &e.recipients[0];
+        assert_eq!(r.address.email.to_string(), "oncall@example.org");
+        assert_eq!((r.max_per_window, r.window), (10, Duration::from_secs(3600)));
+        let q = r.quiet.unwrap();
+        assert_eq!((q.start_min, q.end_min, q.min_sigma), (22 * 60, 6 * 60, 7.0));
+        assert!(q.contains(23 * 60) && q.contains(0) && !q.contains(6 * 60) && !q.contains(12 * 60));
+    }
+
+    #[test]
+    fn email_problems_are_all_reported() {
+        let text = reference_with_email()
+            .replace("relay = \"smtp.example.org:587\"", "relay = \"smtp.example.org\"")
+            .replace(
+                "from = \"glint <glint@example.org>\"",
+                "from = \"not an address\"",
+            )
+            .replace("# tls_ca_file", "tls_ca_file")
+            .replace("# username", "username")
+            .replace(
+                "# password_file = \"/etc/glint/smtp.password\"",
+                "password_file = \"/nowhere/pw\"",
+            )
+            .replace("min_sigma = 0.0", "min_sigma = 0.0\nmax_per_minute = 2")
+            .replace("\"22:00-06:00\"", "\"25:00-06:00\"")
+            .replace(
+                "kinds = [\"flash\", \"assessment\", \"withdrawal\", \"test\"]",
+                "kinds = [\"heartbeat\"]",
+            );
+        let err = Config::from_toml(&text, "ref", &deploy_dir(), false).unwrap_err();
+        let keys: Vec<&str> = err.problems.iter().map(|p| p.key.as_str()).collect();
+        for want in [
+            "email.relay",
+            "email.from",
+            "email.tls_ca_file",
+            "email.password_file",
+            "email.recipient[0].max_per_minute",
+            "email.recipient[0].quiet_hours_utc",
+            "email.recipient[0].kinds",
+        ] {
+            assert!(keys.contains(&want), "{want} not reported: {err}");
+        }
+        // Plain SMTP to a remote relay needs saying so.
+        let plain = reference_with_email().replace("tls = \"starttls\"", "tls = \"none\"");
+        let err = Config::from_toml(&plain, "ref", &deploy_dir(), false).unwrap_err();
+        assert_eq!(err.problems.len(), 1, "{err}");
+        assert_eq!(err.problems[0].key, "email.tls");
+        let allowed = plain.replace("allow_plain_remote = false", "allow_plain_remote = true");
+        assert!(Config::from_toml(&allowed, "ref", &deploy_dir(), false).is_ok());
+    }
 }

@@ -292,10 +292,12 @@ impl Daemon {
                 email,
                 responses,
                 &state_dir,
-                &desk,
-                &metrics,
-                &closing,
-                &email_tasks,
+                &crate::sinks::email::Wiring {
+                    desk: &desk,
+                    metrics: &metrics,
+                    closing: &closing,
+                    tracker: &email_tasks,
+                },
                 cfg.daemon.shutdown_deadline / 4,
             )
             .context("cannot start the email sink")?;

@@ -129,6 +129,19 @@ fn sigma_of(a: &pb::Alert) -> f64 {
     a.trigger.as_ref().map_or(0.0, |t| t.sigma)
 }
 
+/// What the sink's tasks share with the rest of the daemon.
+#[derive(Clone, Copy)]
+pub(crate) struct Wiring<'a> {
+    /// The alert desk, whose journal the sink reads.
+    pub(crate) desk: &'a Arc<Desk>,
+    /// Counters.
+    pub(crate) metrics: &'a Arc<Metrics>,
+    /// Cancelled when the daemon says goodbye.
+    pub(crate) closing: &'a CancellationToken,
+    /// Where the tasks are spawned, to be waited for at shutdown.
+    pub(crate) tracker: &'a TaskTracker,
+}
+
 /// Starts one task per recipient on `tracker`. Each resumes from its cursor in `state_dir/email/`; a
 /// recipient seen for the first time starts at the newest alert (the journal's history is not mailed).
 /// At shutdown (`closing`) each gets `grace` to send what was journalled, then stops where it is.
@@ -136,12 +149,15 @@ pub(crate) fn start(
     cfg: &EmailConfig,
     responses: BTreeMap<String, InstrumentResponse>,
     state_dir: &Path,
-    desk: &Arc<Desk>,
-    metrics: &Arc<Metrics>,
-    closing: &CancellationToken,
-    tracker: &TaskTracker,
+    wiring: &Wiring<'_>,
     grace: Duration,
 ) -> anyhow::Result<()> {
+    let Wiring {
+        desk,
+        metrics,
+        closing,
+        tracker,
+    } = *wiring;
     let dir = state_dir.join("email");
     std::fs::create_dir_all(&dir).with_context(|| format!("cannot create {}", dir.display()))?;
     let mailer = Arc::new(Mailer {

@@ -79,7 +79,8 @@ impl Storm {
         if quiet && !urgent {
             return Route::Hold;
         }
-        if !self.held.is_empty() && !(quiet && !self.digest_due_ignoring_rate(r, now)) {
+        // Behind a waiting digest unless quiet hours (not the rate) keep that digest back.
+        if !self.held.is_empty() && (!quiet || self.digest_due_ignoring_rate(r, now)) {
             return Route::Hold;
         }
         if self.slot_free(r, now) {
