@@ -134,3 +134,31 @@ fn reach_json_has_the_documented_fields() {
         assert!(t["critical_count"].as_u64().unwrap() >= 2);
     }
 }
+
+#[test]
+fn a_broken_scenario_is_a_configuration_problem() {
+    // README: configuration problems exit 2; a scenario file is configuration the operator writes.
+    let dir = tempfile::tempdir().unwrap();
+    let bad = dir.path().join("bad.toml");
+    std::fs::write(&bad, "[scenario]\nname = \"x\"\nduration_s = \"long\"\n").unwrap();
+    let out = Command::new(glint_bin())
+        .args(["simulate", "--scenario"])
+        .arg(&bad)
+        .arg("--out")
+        .arg(dir.path().join("x.glrec"))
+        .output()
+        .unwrap();
+    assert_eq!(
+        out.status.code(),
+        Some(2),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let missing = Command::new(glint_bin())
+        .args(["simulate", "--scenario", "/nonexistent/scenario.toml", "--out"])
+        .arg(dir.path().join("y.glrec"))
+        .output()
+        .unwrap();
+    assert_eq!(missing.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&missing.stderr).contains("scenario.toml"));
+}

@@ -96,9 +96,9 @@ fn bad_producer_token_is_refused_and_others_unaffected() {
 #[test]
 fn unknown_instrument_is_refused_and_others_unaffected() {
     refused_while_others_run(|addr| {
-        let (mut c, r) = util::producer(addr, "orbiter-lat", PRODUCER_TOKEN, 1);
+        let (mut c, r) = util::producer(addr, "lumen-drift", PRODUCER_TOKEN, 1);
         let detail = util::assert_refused_and_closed(&mut c, Some(r), RefusalCode::UnknownInstrument);
-        assert!(detail.contains("orbiter-lat"), "{detail}");
+        assert!(detail.contains("lumen-drift"), "{detail}");
     });
 }
 

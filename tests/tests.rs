@@ -9,4 +9,5 @@ mod layout;
 mod listen_exec;
 mod live;
 mod replay;
+mod service;
 mod util;

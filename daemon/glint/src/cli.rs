@@ -68,7 +68,11 @@ pub(crate) fn dispatch(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::TestAlert(a) => crate::commands::test_alert::run(a),
     };
     match result {
-        Err(e) if e.downcast_ref::<crate::config::BadConfig>().is_some() => {
+        // A configuration or a scenario that does not compile is the operator's to mend: exit code 2.
+        Err(e)
+            if e.chain()
+                .any(|c| c.is::<crate::config::BadConfig>() || c.is::<glint_sim::SimError>()) =>
+        {
             eprintln!("{e}");
             Ok(ExitCode::from(EXIT_CONFIG))
         }

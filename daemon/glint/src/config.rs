@@ -27,8 +27,8 @@ const BUILTIN_INSTRUMENTS: &[(&str, &str)] = &[
         include_str!("../../../deploy/instruments/ventisca-array.toml"),
     ),
     (
-        "orbiter-lat",
-        include_str!("../../../deploy/instruments/orbiter-lat.toml"),
+        "lumen-drift",
+        include_str!("../../../deploy/instruments/lumen-drift.toml"),
     ),
 ];
 

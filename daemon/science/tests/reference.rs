@@ -183,7 +183,7 @@ fn params(radius_deg: f64) -> ReachParams {
 
 #[test]
 fn demo_instruments_load_and_pass_their_checks() {
-    for id in ["ventisca-array", "orbiter-lat"] {
+    for id in ["ventisca-array", "lumen-drift"] {
         let spec = demo(id);
         let mut problems = Vec::new();
         assert!(spec.check(id, &mut problems), "{id}: {problems:?}");
@@ -197,7 +197,7 @@ fn demo_instruments_reach_the_trade_distances() {
     // Common practice, no source (docs/science.md section 2): ground arrays see a final burst to about 0.1 pc, space
     // pair-conversion telescopes to about 0.03 pc. FAR 1/yr, the eight-step ladder, search radius 0.5 deg
     // (ground) and 1.0 deg (space), about the PSF near where most detected burst photons are.
-    for (id, radius, trade_pc) in [("ventisca-array", 0.5, 0.1), ("orbiter-lat", 1.0, 0.03)] {
+    for (id, radius, trade_pc) in [("ventisca-array", 0.5, 0.1), ("lumen-drift", 1.0, 0.03)] {
         let report = reach_report(id, &demo(id), &params(radius)).unwrap();
         let r50 = report.best_r50_pc;
         assert!(
@@ -233,7 +233,7 @@ fn demo_instruments_reach_the_trade_distances() {
 fn reach_scales_as_the_square_root_of_the_area() {
     // docs/science.md section 5 [calc]: background-free, r_max grows as A_eff^(1/2); the background (set by the
     // rate, not the area) and so the critical counts stay the same, so quadrupling the area doubles r50.
-    let spec = demo("orbiter-lat");
+    let spec = demo("lumen-drift");
     let mut big = spec.clone();
     for row in &mut big.response.effective_area.area_m2 {
         for a in row.iter_mut() {

@@ -165,7 +165,7 @@ fn simulator_sends_the_expected_burst_photons() {
     // window's expectation is glint-science's detected_counts at zenith 0.
     let (d, tau_max) = (0.004, 100.0);
     let text = format!(
-        "{}{}\n[[source]]\nkind = \"evaporation\"\nra_deg = 120.0\ndec_deg = 25.0\ndistance_pc = {d}\n\
+        "{}{}\n[[source]]\nkind = \"evaporation\"\nra_deg = 212.0\ndec_deg = -8.5\ndistance_pc = {d}\n\
          t_offset_s = 150.0\nmax_time_to_go_s = {tau_max}\n",
         common::header("burst", 200.0),
         common::SPACE_FIXED

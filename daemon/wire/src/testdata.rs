@@ -220,7 +220,7 @@ pub(crate) fn subscriber_frames() -> Vec<pb::SubscriberFrame> {
             body: Some(subscriber_frame::Body::Heartbeat(pb::Heartbeat {
                 unix_ns: 1_790_000_000_000_000_000,
                 last_seq: 42,
-                instruments: vec!["ventisca-array".into(), "orbiter-lat".into()],
+                instruments: vec!["ventisca-array".into(), "lumen-drift".into()],
                 watermark_gps_ns: vec![1_480_289_520_000_000_000, 1_480_289_519_000_000_000],
                 closing: true,
             })),

@@ -20,7 +20,7 @@ use crate::serve::loopback::{demo_simulator, loopback_config};
 /// Arguments of `glint demo`.
 #[derive(Debug, clap::Args)]
 pub(crate) struct DemoArgs {
-    /// About how long the demo runs, wall seconds (the five-minute scenario is sped up to fit).
+    /// About how long the demo runs, wall seconds (the twelve-minute scenario is sped up to fit).
     #[arg(long, default_value_t = 40.0)]
     seconds: f64,
     /// Print alerts as JSON lines instead of readable summaries.

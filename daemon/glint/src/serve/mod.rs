@@ -10,6 +10,7 @@ pub(crate) mod driver;
 pub(crate) mod hostprobe;
 pub(crate) mod ingest;
 pub(crate) mod loopback;
+pub(crate) mod notify;
 #[cfg(test)]
 mod tests;
 
@@ -38,10 +39,19 @@ use ingest::{EngineMsg, IngestShared, Slot};
 /// Runs the daemon until `shutdown` resolves (or a fatal error), then stops in stages.
 pub(crate) async fn run(cfg: Config, shutdown: impl Future<Output = ()>) -> anyhow::Result<()> {
     let daemon = Daemon::start(cfg).await?;
+    notify::ready(&format!(
+        "ingest {}, subscribers {}",
+        daemon.ingest_addr, daemon.subscribers_addr
+    ));
+    let pings = CancellationToken::new();
+    let fatal = daemon.fatal.clone();
+    tokio::spawn(notify::watchdog(pings.clone(), move || !fatal.is_cancelled()));
     tokio::select! {
         () = shutdown => {}
         () = daemon.fatal.cancelled() => tracing::error!("stopping after a fatal error"),
     }
+    notify::stopping();
+    pings.cancel();
     let fatal = daemon.fatal.is_cancelled();
     daemon.shutdown().await?;
     if fatal {

@@ -41,32 +41,32 @@ spectral_index = 2.6
 /// A space telescope that does not drift: a source at its pointing stays on axis. Almost no background.
 pub(crate) const SPACE_FIXED: &str = r#"
 [instrument]
-id = "test-orbiter"
+id = "test-space"
 token = "test-token"
 [instrument.site]
 kind = "space"
-pointing_ra_deg = 120.0
-pointing_dec_deg = 25.0
+pointing_ra_deg = 212.0
+pointing_dec_deg = -8.5
 ra_drift_deg_per_s = 0.0
 [instrument.response]
-max_zenith_deg = 65.0
-energy_min_gev = 0.1
-energy_max_gev = 300.0
-clock_precision_ns = 1000
+max_zenith_deg = 58.0
+energy_min_gev = 0.05
+energy_max_gev = 150.0
+clock_precision_ns = 500
 [instrument.response.effective_area]
-energy_gev = [0.1, 1.0, 10.0, 300.0]
-zenith_deg = [0.0, 40.0, 65.0]
-area_m2 = [[0.3, 0.7, 0.85, 0.8], [0.2, 0.5, 0.6, 0.55], [0.05, 0.1, 0.12, 0.1]]
+energy_gev = [0.05, 0.7, 8.0, 150.0]
+zenith_deg = [0.0, 40.0, 58.0]
+area_m2 = [[0.12, 0.5, 0.61, 0.49], [0.08, 0.36, 0.44, 0.35], [0.01, 0.07, 0.09, 0.07]]
 [instrument.response.psf68_deg]
-energy_gev = [0.1, 1.0, 10.0]
-value = [3.0, 0.8, 0.1]
+energy_gev = [0.05, 0.7, 8.0]
+value = [4.2, 1.1, 0.2]
 [instrument.response.energy_resolution]
-energy_gev = [0.1, 300.0]
-value = [0.15, 0.1]
+energy_gev = [0.05, 150.0]
+value = [0.25, 0.14]
 [instrument.background]
 rate_hz = 0.01
-zenith_cos_power = 1.5
-spectral_index = 2.4
+zenith_cos_power = 1.3
+spectral_index = 2.3
 "#;
 
 /// A `[scenario]` header.
