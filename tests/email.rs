@@ -59,16 +59,23 @@ pub(crate) struct Smtp {
     /// Where it stores messages.
     pub(crate) dir: PathBuf,
     reject: Vec<String>,
+    args: Vec<String>,
 }
 
 impl Smtp {
     /// Starts a server storing into `dir`, rejecting `reject` with 550.
     pub(crate) fn start(dir: &Path, reject: &[&str]) -> Self {
+        Self::start_with(dir, reject, &[])
+    }
+
+    /// Like [`start`](Self::start), with more arguments for the server (TLS, AUTH).
+    pub(crate) fn start_with(dir: &Path, reject: &[&str], args: &[String]) -> Self {
         let mut s = Self {
             child: None,
             port: free_port(),
             dir: dir.to_path_buf(),
             reject: reject.iter().map(|r| (*r).to_string()).collect(),
+            args: args.to_vec(),
         };
         s.up();
         s
@@ -86,6 +93,7 @@ impl Smtp {
         for r in &self.reject {
             cmd.args(["--reject", r]);
         }
+        cmd.args(&self.args);
         let mut child = cmd.spawn().expect("start tests/smtp/server.py");
         let out = child.stdout.take().unwrap();
         let (tx, rx) = mpsc::channel();
@@ -487,4 +495,47 @@ fn email_sigkill_with_emails_pending_then_restart_loses_none_and_repeats_none() 
         "the ones sent before the kill were not sent again"
     );
     drop(d2);
+}
+
+#[test]
+fn email_over_starttls_and_implicit_tls_with_auth() {
+    if !smtp_available("email_over_starttls_and_implicit_tls_with_auth") {
+        return;
+    }
+    let dir = tempfile::tempdir().unwrap();
+    let ck = rcgen::generate_simple_self_signed(vec!["localhost".to_string()]).unwrap();
+    let (cert, key) = (dir.path().join("cert.pem"), dir.path().join("key.pem"));
+    std::fs::write(&cert, ck.cert.pem()).unwrap();
+    std::fs::write(&key, ck.signing_key.serialize_pem()).unwrap();
+    let pw = dir.path().join("smtp.password");
+    std::fs::write(&pw, "s3cret-pass\n").unwrap();
+    for (mode, extra) in [
+        ("starttls", vec![]),
+        ("implicit", vec!["--implicit-tls".to_string()]),
+    ] {
+        let run = dir.path().join(mode);
+        let mut args = vec![
+            "--tls-cert".to_string(),
+            cert.display().to_string(),
+            "--tls-key".to_string(),
+            key.display().to_string(),
+            "--auth".to_string(),
+            "glint:s3cret-pass".to_string(),
+        ];
+        args.extend(extra);
+        let smtp = Smtp::start_with(&run.join("mail"), &[], &args);
+        let section = format!(
+            "\n[email]\nrelay = \"localhost:{}\"\nfrom = \"glint <glint@example.org>\"\ntls = \"{mode}\"\n\
+             tls_ca_file = \"{}\"\nusername = \"glint\"\npassword_file = \"{}\"\nretry_max_s = 1.0\n\
+             \n[[email.recipient]]\naddress = \"{ONCALL}\"\n",
+            smtp.port,
+            cert.display(),
+            pw.display()
+        );
+        let d = Daemon::start(&run, &section);
+        let id = test_alert(&d, mode).id;
+        let msgs = smtp.wait_for(ONCALL, 1, Duration::from_secs(30));
+        assert_eq!(ids(&msgs), vec![id], "{mode}:\n{}", d.log_text());
+        assert!(msgs[0]["text"].as_str().unwrap().contains(mode));
+    }
 }

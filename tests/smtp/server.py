@@ -4,8 +4,11 @@
 Every message it accepts is stored whole (`NNN.eml`) and, decoded with Python's email package, as
 `NNN.json` (envelope recipients, subject, Message-ID, plain and HTML parts, attachments saved beside it), so
 the tests can check what a person would receive. Recipients named with --reject get
-`550 5.1.1` at RCPT TO. It prints `ready PORT` on stdout once listening and runs until SIGTERM/SIGINT.
-Usage: server.py --port PORT --dir DIR [--reject ADDR ...]
+`550 5.1.1` at RCPT TO. With --tls-cert/--tls-key it requires STARTTLS (or, with --implicit-tls, speaks
+TLS from the first byte); with --auth USER:PASSWORD it requires AUTH (over TLS). It prints `ready PORT` on
+stdout once listening and runs until SIGTERM/SIGINT.
+Usage: server.py --port PORT --dir DIR [--reject ADDR ...] [--tls-cert PEM --tls-key PEM [--implicit-tls]]
+                 [--auth USER:PASSWORD]
 """
 
 import argparse
@@ -15,10 +18,11 @@ import email.policy
 import json
 import os
 import signal
+import ssl
 import sys
 import time
 
-from aiosmtpd.smtp import SMTP
+from aiosmtpd.smtp import SMTP, AuthResult, LoginPassword
 
 
 class Store:
@@ -82,15 +86,45 @@ async def main():
     ap.add_argument("--port", type=int, required=True)
     ap.add_argument("--dir", required=True)
     ap.add_argument("--reject", action="append", default=[])
+    ap.add_argument("--tls-cert")
+    ap.add_argument("--tls-key")
+    ap.add_argument("--implicit-tls", action="store_true")
+    ap.add_argument("--auth")
     args = ap.parse_args()
     os.makedirs(args.dir, exist_ok=True)
     handler = Store(args.dir, args.reject)
+    ctx = None
+    if args.tls_cert:
+        ctx = ssl.create_default_context(ssl.Purpose.CLIENT_AUTH)
+        ctx.load_cert_chain(args.tls_cert, args.tls_key)
+    kwargs = {"hostname": "glint-test-smtp", "decode_data": False}
+    if ctx is not None and not args.implicit_tls:
+        kwargs.update(tls_context=ctx, require_starttls=True)
+    if args.auth:
+        user, password = args.auth.split(":", 1)
+
+        def check(server, session, envelope, mechanism, auth_data):
+            ok = (
+                isinstance(auth_data, LoginPassword)
+                and auth_data.login.decode() == user
+                and auth_data.password.decode() == password
+            )
+            return AuthResult(success=ok)
+
+        # Under implicit TLS the whole session is encrypted, but aiosmtpd only knows of STARTTLS: it would
+        # never offer AUTH if told to require TLS.
+        kwargs.update(
+            authenticator=check,
+            auth_required=True,
+            auth_require_tls=ctx is not None and not args.implicit_tls,
+        )
     loop = asyncio.get_running_loop()
     server = await loop.create_server(
-        lambda: SMTP(handler, hostname="glint-test-smtp", decode_data=False),
+        lambda: SMTP(handler, **kwargs),
         host="127.0.0.1",
         port=args.port,
         reuse_address=True,
+        ssl=ctx if args.implicit_tls else None,
     )
     stop = asyncio.Event()
     for sig in (signal.SIGTERM, signal.SIGINT):
