@@ -4,7 +4,7 @@
 //! relay that goes away and comes back; a rate limit that turns a storm into one digest; a 550 for one
 //! recipient that does not delay another; SIGKILL with emails pending, then a restart.
 //!
-//! The tests need python3 with aiosmtpd (`.ci/run` installs it). Without it they skip with a loud message,
+//! The tests need python3 with aiosmtpd and trustme (`.ci/run` installs them). Without it they skip with a loud message,
 //! except under CI (`CI` set), where they fail: CI must run them.
 
 use std::io::{BufRead, BufReader, Read, Write};
@@ -22,7 +22,7 @@ use crate::util::{self, Conn, Daemon, Got, OPERATOR_TOKEN, SUBSCRIBER_TOKEN};
 /// Whether the SMTP server can run here; `false` (with a loud message) means the test should return.
 pub(crate) fn smtp_available(test: &str) -> bool {
     let ok = Command::new("python3")
-        .args(["-c", "import aiosmtpd"])
+        .args(["-c", "import aiosmtpd, trustme"])
         .stdout(Stdio::null())
         .stderr(Stdio::null())
         .status()
@@ -30,12 +30,12 @@ pub(crate) fn smtp_available(test: &str) -> bool {
     if !ok {
         assert!(
             std::env::var_os("CI").is_none(),
-            "python3 with aiosmtpd is required under CI (.ci/run installs it)"
+            "python3 with aiosmtpd and trustme is required under CI (.ci/run installs them)"
         );
         eprintln!(
             "\n!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!\n\
-             !!! SKIPPED {test}: python3 lacks aiosmtpd; install it with\n\
-             !!!     python3 -m pip install aiosmtpd==1.4.6\n\
+             !!! SKIPPED {test}: python3 lacks aiosmtpd or trustme; install them with\n\
+             !!!     python3 -m pip install aiosmtpd==1.4.6 trustme==1.2.1\n\
              !!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!!\n"
         );
     }
@@ -503,33 +503,26 @@ fn email_over_starttls_and_implicit_tls_with_auth() {
         return;
     }
     let dir = tempfile::tempdir().unwrap();
-    let ck = rcgen::generate_simple_self_signed(vec!["localhost".to_string()]).unwrap();
-    let (cert, key) = (dir.path().join("cert.pem"), dir.path().join("key.pem"));
-    std::fs::write(&cert, ck.cert.pem()).unwrap();
-    std::fs::write(&key, ck.signing_key.serialize_pem()).unwrap();
     let pw = dir.path().join("smtp.password");
     std::fs::write(&pw, "s3cret-pass\n").unwrap();
-    for (mode, extra) in [
-        ("starttls", vec![]),
-        ("implicit", vec!["--implicit-tls".to_string()]),
-    ] {
+    for (mode, extra) in [("starttls", None), ("implicit", Some("--implicit-tls"))] {
         let run = dir.path().join(mode);
+        // The server makes a test CA and a certificate for localhost; the daemon trusts that CA only.
+        let ca = run.join("ca.pem");
         let mut args = vec![
-            "--tls-cert".to_string(),
-            cert.display().to_string(),
-            "--tls-key".to_string(),
-            key.display().to_string(),
+            "--tls-ca-out".to_string(),
+            ca.display().to_string(),
             "--auth".to_string(),
             "glint:s3cret-pass".to_string(),
         ];
-        args.extend(extra);
+        args.extend(extra.map(String::from));
         let smtp = Smtp::start_with(&run.join("mail"), &[], &args);
         let section = format!(
             "\n[email]\nrelay = \"localhost:{}\"\nfrom = \"glint <glint@example.org>\"\ntls = \"{mode}\"\n\
              tls_ca_file = \"{}\"\nusername = \"glint\"\npassword_file = \"{}\"\nretry_max_s = 1.0\n\
              \n[[email.recipient]]\naddress = \"{ONCALL}\"\n",
             smtp.port,
-            cert.display(),
+            ca.display(),
             pw.display()
         );
         let d = Daemon::start(&run, &section);

@@ -4,10 +4,11 @@
 Every message it accepts is stored whole (`NNN.eml`) and, decoded with Python's email package, as
 `NNN.json` (envelope recipients, subject, Message-ID, plain and HTML parts, attachments saved beside it), so
 the tests can check what a person would receive. Recipients named with --reject get
-`550 5.1.1` at RCPT TO. With --tls-cert/--tls-key it requires STARTTLS (or, with --implicit-tls, speaks
-TLS from the first byte); with --auth USER:PASSWORD it requires AUTH (over TLS). It prints `ready PORT` on
-stdout once listening and runs until SIGTERM/SIGINT.
-Usage: server.py --port PORT --dir DIR [--reject ADDR ...] [--tls-cert PEM --tls-key PEM [--implicit-tls]]
+`550 5.1.1` at RCPT TO. With --tls-ca-out FILE it makes a test CA and a certificate for "localhost" (trustme),
+writes the CA to FILE and requires STARTTLS (or, with --implicit-tls, speaks TLS from the first byte); with
+--auth USER:PASSWORD it requires AUTH. It prints `ready PORT` on stdout once listening and runs until
+SIGTERM/SIGINT.
+Usage: server.py --port PORT --dir DIR [--reject ADDR ...] [--tls-ca-out PEM [--implicit-tls]]
                  [--auth USER:PASSWORD]
 """
 
@@ -86,17 +87,20 @@ async def main():
     ap.add_argument("--port", type=int, required=True)
     ap.add_argument("--dir", required=True)
     ap.add_argument("--reject", action="append", default=[])
-    ap.add_argument("--tls-cert")
-    ap.add_argument("--tls-key")
+    ap.add_argument("--tls-ca-out")
     ap.add_argument("--implicit-tls", action="store_true")
     ap.add_argument("--auth")
     args = ap.parse_args()
     os.makedirs(args.dir, exist_ok=True)
     handler = Store(args.dir, args.reject)
     ctx = None
-    if args.tls_cert:
+    if args.tls_ca_out:
+        import trustme
+
+        ca = trustme.CA()
         ctx = ssl.create_default_context(ssl.Purpose.CLIENT_AUTH)
-        ctx.load_cert_chain(args.tls_cert, args.tls_key)
+        ca.issue_cert("localhost").configure_cert(ctx)
+        ca.cert_pem.write_to_path(args.tls_ca_out)
     kwargs = {"hostname": "glint-test-smtp", "decode_data": False}
     if ctx is not None and not args.implicit_tls:
         kwargs.update(tls_context=ctx, require_starttls=True)
