@@ -162,3 +162,64 @@ fn a_broken_scenario_is_a_configuration_problem() {
     assert_eq!(missing.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&missing.stderr).contains("scenario.toml"));
 }
+
+#[test]
+fn calibrate_writes_a_calibration_that_the_configuration_reads_and_checks() {
+    // Half an hour of simulated background at a loose nominal rate: about 80 candidates reach 1e7 per
+    // year nominal with the trials fraction of about 0.15 (README), so at least one level has 20.
+    let dir = tempfile::tempdir().unwrap();
+    let cfg_path = dir.path().join("glint.toml");
+    std::fs::write(&cfg_path, crate::util::config_text(dir.path(), "")).unwrap();
+    let out = Command::new(glint_bin())
+        .args(["calibrate", "--config"])
+        .arg(&cfg_path)
+        .arg("--scenario")
+        .arg(repo_root().join("deploy/scenarios/quiet-hour.toml"))
+        .args(["--hours", "0.5", "--instrument", crate::util::INSTRUMENT])
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "stderr: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let path = dir
+        .path()
+        .join("calibration")
+        .join(format!("{}.toml", crate::util::INSTRUMENT));
+    let text = std::fs::read_to_string(&path).unwrap();
+    let cal: toml::Table = toml::from_str(&text).unwrap();
+    assert_eq!(cal["format"].as_integer(), Some(1));
+    let points = cal["points"].as_array().unwrap();
+    assert!(!points.is_empty());
+    for p in points {
+        let f = p["fraction"].as_float().unwrap();
+        assert!(
+            f > 0.0 && f < 0.5,
+            "trials fraction {f}: fewer real trials than nominal"
+        );
+    }
+    let check = |expect_ok: bool| {
+        let out = Command::new(glint_bin())
+            .arg("check-config")
+            .arg(&cfg_path)
+            .output()
+            .unwrap();
+        assert_eq!(
+            out.status.success(),
+            expect_ok,
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        String::from_utf8_lossy(&out.stdout).to_string() + &String::from_utf8_lossy(&out.stderr)
+    };
+    check(true);
+    // A calibration made for another search radius is refused, naming the file.
+    std::fs::write(
+        &path,
+        text.replace("search_radius_deg = 0.5", "search_radius_deg = 0.7"),
+    )
+    .unwrap();
+    let msg = check(false);
+    assert!(msg.contains("calibration") && msg.contains("radius"), "{msg}");
+}

@@ -5,6 +5,8 @@
 
 mod cli;
 mod email;
+mod hostile;
+mod journal;
 mod layout;
 mod listen_exec;
 mod live;

@@ -58,6 +58,17 @@ pub(crate) fn glint_bin() -> PathBuf {
 
 /// A test configuration: loopback port 0 everywhere, JSON logs, short heartbeats and timeouts.
 pub(crate) fn config_text(state_dir: &Path, extra_subscribers: &str) -> String {
+    config_text_with(state_dir, "", extra_subscribers, "")
+}
+
+/// [`config_text`] with lines added to `[ingest]`, to `[subscribers]`, and after `[journal]` (e.g. a
+/// `[metrics]` section).
+pub(crate) fn config_text_with(
+    state_dir: &Path,
+    extra_ingest: &str,
+    extra_subscribers: &str,
+    extra_sections: &str,
+) -> String {
     format!(
         r#"
 [daemon]
@@ -71,6 +82,7 @@ shutdown_deadline_s = 30.0
 listen = "127.0.0.1:0"
 queue_batches = 64
 ack_every = 16
+{extra_ingest}
 
 [subscribers]
 listen = "127.0.0.1:0"
@@ -80,6 +92,8 @@ heartbeat_s = 0.5
 {extra_subscribers}
 
 [journal]
+
+{extra_sections}
 
 [[instrument]]
 id = "{INSTRUMENT}"
@@ -97,18 +111,31 @@ pub(crate) struct Daemon {
     pub(crate) ingest: SocketAddr,
     /// Subscriber address.
     pub(crate) subs: SocketAddr,
+    /// Metrics address, when the configuration has one.
+    pub(crate) metrics: Option<SocketAddr>,
     log: PathBuf,
 }
 
 impl Daemon {
     /// Starts a daemon with its state in `dir/state` (kept across restarts) and waits for its ports.
     pub(crate) fn start(dir: &Path, extra_subscribers: &str) -> Self {
+        Self::start_edited(dir, extra_subscribers, &|t| t.to_string())
+    }
+
+    /// Like [`start`](Self::start), with the configuration text passed through `edit` first.
+    pub(crate) fn start_edited(dir: &Path, extra_subscribers: &str, edit: &dyn Fn(&str) -> String) -> Self {
+        let state = dir.join("state");
+        Self::start_with(dir, &edit(&config_text(&state, extra_subscribers)))
+    }
+
+    /// Starts a daemon with this configuration text (its state_dir should be `dir/state`).
+    pub(crate) fn start_with(dir: &Path, config: &str) -> Self {
         let state = dir.join("state");
         std::fs::create_dir_all(&state).unwrap();
         let ports = state.join("ports.json");
         let _ = std::fs::remove_file(&ports);
         let cfg = dir.join("glint.toml");
-        std::fs::write(&cfg, config_text(&state, extra_subscribers)).unwrap();
+        std::fs::write(&cfg, config).unwrap();
         // One log per start, so a restarted daemon's lines can be told from the first one's.
         let n = (0..)
             .find(|i| !dir.join(format!("daemon-{i}.log")).exists())
@@ -126,6 +153,7 @@ impl Daemon {
             child: Some(child),
             ingest: "127.0.0.1:1".parse().unwrap(),
             subs: "127.0.0.1:1".parse().unwrap(),
+            metrics: None,
             log,
         };
         let deadline = Instant::now() + Duration::from_secs(30);
@@ -134,6 +162,7 @@ impl Daemon {
                 let v: serde_json::Value = serde_json::from_str(&text).unwrap();
                 d.ingest = v["ingest"].as_str().unwrap().parse().unwrap();
                 d.subs = v["subscribers"].as_str().unwrap().parse().unwrap();
+                d.metrics = v["metrics"].as_str().map(|a| a.parse().unwrap());
                 return d;
             }
             if let Some(status) = d.child.as_mut().unwrap().try_wait().unwrap() {
@@ -149,6 +178,34 @@ impl Daemon {
             );
             std::thread::sleep(Duration::from_millis(20));
         }
+    }
+
+    /// The daemon's process id.
+    pub(crate) fn pid(&self) -> u32 {
+        self.child.as_ref().expect("daemon running").id()
+    }
+
+    /// The daemon's resident memory, bytes (VmRSS of /proc/PID/status).
+    pub(crate) fn rss_bytes(&self) -> u64 {
+        let status = std::fs::read_to_string(format!("/proc/{}/status", self.pid())).unwrap();
+        let kb: u64 = status
+            .lines()
+            .find_map(|l| l.strip_prefix("VmRSS:"))
+            .and_then(|v| v.trim().trim_end_matches("kB").trim().parse().ok())
+            .expect("VmRSS in /proc/PID/status");
+        kb * 1024
+    }
+
+    /// The metrics endpoint's text.
+    pub(crate) fn metrics_text(&self) -> String {
+        let addr = self.metrics.expect("metrics configured");
+        let mut s = TcpStream::connect_timeout(&addr, Duration::from_secs(10)).unwrap();
+        s.set_read_timeout(Some(Duration::from_secs(10))).unwrap();
+        s.write_all(b"GET /metrics HTTP/1.0\r\nHost: localhost\r\n\r\n")
+            .unwrap();
+        let mut out = String::new();
+        s.read_to_string(&mut out).unwrap();
+        out
     }
 
     /// Everything the daemon logged so far.

@@ -253,6 +253,8 @@ fn fit(inp: &AssessInput<'_>, frac: f64) -> FitJob {
         window_start_ns: start,
         window_end_ns: end,
         psf_containment: containment,
+        disc_radius_deg: inp.search_radius_deg,
+        disc_offset_deg: angle_deg(c.pos0, unit_vector(c.best.ra_deg, c.best.dec_deg)),
     }
 }
 

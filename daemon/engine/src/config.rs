@@ -3,6 +3,8 @@
 
 use glint_science::instrument::InstrumentResponse;
 
+use glint_science::calibration::TrialsCalibration;
+
 use crate::error::EngineError;
 
 /// Everything one instrument's engine needs.
@@ -41,6 +43,10 @@ pub struct EngineConfig {
     /// the engine runs the fit itself (replays). The verdict never depends on the fit, and a job's
     /// [`run`](crate::FitJob::run) gives exactly what the engine would have, so both give the same findings.
     pub defer_fit: bool,
+    /// The effective-trials calibration measured on this instrument's background (`glint calibrate`): with
+    /// it the thresholds and every alert's `far_per_year` use the measured trials; without it the nominal
+    /// K x R per second, an upper estimate (docs/science.md section 4).
+    pub trials: Option<TrialsCalibration>,
 }
 
 /// Assessment settings and verdict thresholds (defaults as in `deploy/glint.toml`).
@@ -116,12 +122,18 @@ impl EngineConfig {
             assess: AssessConfig::default(),
             search_enabled: true,
             defer_fit: false,
+            trials: None,
         }
     }
 
     /// Checks every field; the error lists every problem, each naming its key.
     pub fn check(&self) -> Result<(), EngineError> {
         let mut p = Vec::new();
+        if let Some(t) = &self.trials {
+            if let Err(e) = t.check(&self.instrument, &self.ladder_s, self.search_radius_deg) {
+                p.push(format!("trials calibration: {e}"));
+            }
+        }
         let mut range = |key: &str, v: f64, lo: f64, hi: f64| {
             if !v.is_finite() || v < lo || v > hi {
                 p.push(format!("{key}: {v} is outside [{lo}, {hi}]"));

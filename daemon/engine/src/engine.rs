@@ -3,8 +3,9 @@
 //! the candidates and their assessment. Everything happens in event time as released photons and the
 //! watermark pass; nothing reads a clock.
 
+use glint_science::calibration::sigma_post_trials;
 use glint_science::critical::{CriticalTable, false_crossing_probability, per_seed_bound};
-use glint_science::geometry::{disc_solid_angle_sr, error_radius90_deg};
+use glint_science::geometry::disc_solid_angle_sr;
 use glint_science::poisson::{ln_sf, sigma_from_ln_p};
 use glint_wire::pb::{PhotonBatch, StreamStatus};
 
@@ -15,17 +16,16 @@ use crate::config::EngineConfig;
 use crate::dead::DeadTime;
 use crate::error::EngineError;
 use crate::finding::{Finding, FindingSink, Flash, PhotonRec};
+use crate::localise::{LocPhoton, Localisation, localise};
 use crate::reorder::{Photon, Reorder};
 use crate::sky::{Disc, SkyIndex, Step, radec_of, unit_vector};
-use crate::stats::{clamp_sigma, median_sorted};
+use crate::stats::clamp_sigma;
 
 /// Seconds in a Julian year (365.25 days): the unit of every false-alarm rate.
 pub const SECONDS_PER_YEAR: f64 = 31_557_600.0;
 /// Critical tables span the backgrounds the current model can produce, widened by this factor each way
 /// (a lower b uses the first entry, a higher threshold: conservative; a higher b is computed exactly).
 const TABLE_MARGIN: f64 = 2.0;
-/// Mean-shift steps refining a flash's position.
-const RECENTRE_STEPS: usize = 4;
 /// Grid density of the critical tables.
 const TABLE_POINTS_PER_DECADE: u32 = 50;
 /// The thresholds are rebuilt when the all-sky rate has moved by more than this fraction since the last
@@ -666,6 +666,12 @@ impl Engine {
             (1e-6, 1.0)
         };
         let built = per_seed_bound(self.p.far_per_s, self.p.k, r)
+            .map(|nominal| {
+                self.cfg
+                    .trials
+                    .as_ref()
+                    .map_or(nominal, |c| c.bound(self.p.far_per_s, self.p.k, r))
+            })
             .and_then(|bound| CriticalTable::new(bound, b_lo, b_hi, TABLE_POINTS_PER_DECADE));
         match built {
             Ok(table) => {
@@ -1011,16 +1017,14 @@ impl Engine {
         for (_, v) in &buf {
             sum = [sum[0] + v[0], sum[1] + v[1], sum[2] + v[2]];
         }
-        let centre = self.recentre(normalise(sum), t.saturating_sub(dt), t);
-        let (ra, dec) = radec_of(centre);
-        let mut energies: Vec<f64> = buf.iter().map(|x| x.0.energy_gev).collect();
-        energies.sort_by(f64::total_cmp);
-        let median = median_sorted(&energies);
+        let loc = self.localise_window(normalise(sum), b, t.saturating_sub(dt), t);
+        let (ra, dec) = radec_of(loc.centre);
         let resp = &self.cfg.response;
-        let sigma_psf = resp.psf_sigma_deg(median);
         let rate = self.model.as_ref().map_or(0.0, |m| m.rate_hz);
         let ln_trials = (self.p.k as f64 * rate * SECONDS_PER_YEAR).ln();
-        let far = (ln_p.min(0.0) + ln_trials).exp();
+        let fraction = self.cfg.trials.as_ref().map_or(1.0, |c| c.fraction(ln_p));
+        let far = (ln_p.min(0.0) + ln_trials).exp() * fraction;
+        let far = if far.is_finite() { far } else { 0.0 };
         let photons: Vec<PhotonRec> = buf.iter().map(|x| x.0).collect();
         self.flash_buf = buf;
         Flash {
@@ -1029,7 +1033,7 @@ impl Engine {
             end_ns: t,
             ra_deg: ra,
             dec_deg: dec,
-            error_radius_deg: error_radius90_deg(sigma_psf, n, resp.systematic_deg()),
+            error_radius_deg: loc.radius90_deg.hypot(resp.systematic_deg()),
             search_radius_deg: self.cfg.search_radius_deg,
             timescale_s: self.cfg.ladder_s[k],
             counts: n,
@@ -1037,42 +1041,31 @@ impl Engine {
             p_value: ln_p.exp(),
             ln_p,
             sigma: clamp_sigma(sigma_from_ln_p(ln_p)),
-            far_per_year: if far.is_finite() { far } else { 0.0 },
+            far_per_year: far,
+            sigma_post_trials: clamp_sigma(sigma_post_trials(far)),
             zenith_deg: f64::from(g.p.zenith),
             photons,
         }
     }
 
-    /// The disc photons are picked around the seed, which lies a PSF width or so from the source, so their
-    /// mean is pulled toward the seed. A few mean-shift steps (the unit-vector mean of the window's photons
-    /// within twice the search radius of the current estimate) move it back toward the source. Measured on
-    /// injected bursts (tests/detection.rs) the source then lies inside the 90% error radius in 92-96% of
-    /// trials, against about 70% for the plain mean of the disc photons.
-    fn recentre(&self, mut c: [f64; 3], after: i64, until: i64) -> [f64; 3] {
-        let r = 2.0 * self.cfg.search_radius_deg;
-        let cos_k = r.to_radians().cos();
-        for _ in 0..RECENTRE_STEPS {
-            let (ra, dec) = radec_of(c);
-            let mut sum = [0.0f64; 3];
-            let mut n = 0u32;
-            self.sky
-                .for_each_hot_in_cone(ra, dec, r, after.saturating_add(1), |h| {
-                    if h.t <= until && dot(h.v, c) >= cos_k {
-                        sum = [sum[0] + h.v[0], sum[1] + h.v[1], sum[2] + h.v[2]];
-                        n += 1;
-                    }
-                });
-            if n == 0 {
-                break;
-            }
-            let next = normalise(sum);
-            let moved = dot(next, c);
-            c = next;
-            if moved >= 1.0 - 1e-15 {
-                break;
-            }
-        }
-        c
+    /// The flash's position and 90% region by the mixture likelihood (`localise.rs`, docs/science.md section
+    /// 4) over the window's photons within twice the search radius of the disc photons' mean, the background
+    /// density the disc's `b` over its solid angle.
+    fn localise_window(&self, start: [f64; 3], b: f64, after: i64, until: i64) -> Localisation {
+        let region = 2.0 * self.cfg.search_radius_deg;
+        let (ra, dec) = radec_of(start);
+        let resp = &self.cfg.response;
+        let mut ph = Vec::new();
+        self.sky
+            .for_each_in_cone(ra, dec, region, after.saturating_add(1), |h, c| {
+                if h.t <= until {
+                    ph.push(LocPhoton {
+                        v: h.v,
+                        sigma_rad: resp.psf_sigma_deg(f64::from(c.energy)).to_radians(),
+                    });
+                }
+            });
+        localise(&ph, start, region, b / self.p.omega_r)
     }
 
     fn persistence_ns(&self, c: &Candidate) -> i64 {

@@ -47,13 +47,14 @@ pub struct Flash {
     pub start_ns: i64,
     /// Window end (inclusive), GPS ns: the seed photon's time.
     pub end_ns: i64,
-    /// Position, ICRS degrees: the unit-vector mean of the disc photons, refined by a few mean-shift steps
-    /// (mean of the window's photons within twice the search radius) that undo the pull toward the seed.
+    /// Position, ICRS degrees: the maximum of the mixture likelihood (PSF-shaped signal plus flat background)
+    /// over the window's photons within twice the search radius (docs/science.md section 4).
     pub ra_deg: f64,
     /// Declination of the position, degrees.
     pub dec_deg: f64,
-    /// 90% error radius: 2.146 sigma_PSF(median energy) / sqrt(counts), the systematic error added in
-    /// quadrature (docs/science.md section 4), degrees.
+    /// 90% error radius, degrees: the radius of the region 2 Delta ln L <= 4.605 of the mixture likelihood
+    /// (root mean square over eight directions), the systematic error added in quadrature (docs/science.md
+    /// section 4).
     pub error_radius_deg: f64,
     /// Search radius of the disc, degrees.
     pub search_radius_deg: f64,
@@ -67,11 +68,16 @@ pub struct Flash {
     pub p_value: f64,
     /// Natural log of the p-value, exact far below the smallest f64.
     pub ln_p: f64,
-    /// One-sided Gaussian significance of the p-value.
+    /// One-sided Gaussian significance of the per-seed p-value, before any trials: `sigma_per_seed` on the
+    /// wire. Never read it as the alert's significance; that is `sigma_post_trials`.
     pub sigma: f64,
-    /// Predicted rate of crossings at least this rare, per year: min(p, 1) x K x R x 3.15576e7 s (Julian
-    /// year), i.e. the p-value times the seeded trials per year; at most the rate of all seeded tests.
+    /// Rate of background alerts at least this rare, per year: min(p, 1) x K x R x 3.15576e7 s (Julian
+    /// year) x the effective fraction of those trials measured by the instrument's calibration (1 without
+    /// one, an upper estimate); docs/science.md section 4.
     pub far_per_year: f64,
+    /// Post-trials significance: Z of P = 1 - exp(-far_per_year x 1 yr), the chance of a background alert at
+    /// least this rare within a year (clamped to [-40, 1000]).
+    pub sigma_post_trials: f64,
     /// Zenith (or off-axis) angle of the seed photon, degrees.
     pub zenith_deg: f64,
     /// The photons in the disc and window, in time order.

@@ -3,6 +3,7 @@
 //! hole. It gives the explosion time, the distance with a 90% profile-likelihood interval, the fitted counts
 //! and a goodness-of-fit p-value. Pure and bounded: bad input gives `converged = false` with a reason.
 
+use glint_science::geometry::offset_gaussian_containment;
 use glint_science::hawking::{self, PARSEC_M, SPECTRUM_T1_GEV};
 use glint_science::instrument::InstrumentResponse;
 use glint_science::poisson::p_from_sigma;
@@ -62,8 +63,18 @@ pub struct FitInput<'a> {
     pub window_start_ns: i64,
     /// End of the window, GPS nanoseconds; must be after the start.
     pub window_end_ns: i64,
-    /// Fraction of a point source's photons that fall in the disc, in (0, 1].
+    /// Fraction of a point source's photons that fall in the disc, in (0, 1]; used only when
+    /// `disc_radius_deg` is 0.
     pub psf_containment: f64,
+    /// Radius of the disc the photons were taken from, degrees: when positive, the containment is the PSF's
+    /// at each true energy, 1 - exp(-r^2 / 2 sigma(E)^2), folded with the effective area. A single
+    /// containment at the flash photons' median energy counts the soft photons, which mostly fall outside
+    /// the disc, as if they were inside, and the fitted distance comes out too far.
+    pub disc_radius_deg: f64,
+    /// Angle between the disc's centre and the best estimate of the source's position, degrees: the
+    /// containment is then the offset Gaussian's (the disc is centred on the first flash, whose position
+    /// from its first few photons can lie a PSF width from the source).
+    pub disc_offset_deg: f64,
 }
 
 /// The fit's answer. When `converged` is false the numbers are zero and `reason` says what was wrong.
@@ -92,7 +103,24 @@ pub struct FitResult {
     pub signal_counts: f64,
     /// Expected number of background photons in the window (the rate is given, not fitted).
     pub background_counts: f64,
+    /// ln of the likelihood ratio of the burst against background alone, ln L(best q) - ln L(q = 0) at the
+    /// fitted explosion time, the photon it is anchored on left out (its tau^-1/2 density is unbounded).
+    pub ln_likelihood_ratio: f64,
+    /// Its one-sided significance, sqrt(2 ln LR): Chernoff's half chi-square of one degree of freedom for a
+    /// strength on its boundary (docs/science.md section 4). The explosion time is searched too and exists
+    /// only under the burst, so this is optimistic by the look-elsewhere factor of that search.
+    pub lr_sigma: f64,
+    /// The burst model is preferred: `lr_sigma` at least 3 and the goodness of fit `template_p` at least 0.01
+    /// (`BURST_PREFERRED_*`). False means the photons are background, or something the template does not
+    /// describe (an afterglow, a steady source, a glitch), whatever the distance says.
+    pub burst_preferred: bool,
 }
+
+/// `FitResult::burst_preferred` needs the likelihood ratio at least this many sigma (common practice, no
+/// source) ...
+pub const BURST_PREFERRED_LR_SIGMA: f64 = 3.0;
+/// ... and the goodness of fit at least this p-value.
+pub const BURST_PREFERRED_MIN_P: f64 = 0.01;
 
 impl FitResult {
     /// A fit not run yet: what an assessment carries while its `fit_job` waits for the caller
@@ -118,6 +146,9 @@ impl FitResult {
             gof_test: GOF_TEST.to_owned(),
             signal_counts: 0.0,
             background_counts: 0.0,
+            ln_likelihood_ratio: 0.0,
+            lr_sigma: 0.0,
+            burst_preferred: false,
         }
     }
 }
@@ -298,6 +329,9 @@ fn fit(input: &FitInput<'_>, full_search_max: usize) -> Result<FitResult, FitPro
         }
     }
     let anchor_ns = photons.times_ns[best.anchor];
+    let ln_lr = search.ln_ratio_without_anchor(&best, &mut scratch)?;
+    let lr_sigma = (2.0 * ln_lr).sqrt();
+    let burst_preferred = lr_sigma >= BURST_PREFERRED_LR_SIGMA && template_p >= BURST_PREFERRED_MIN_P;
     Ok(FitResult {
         converged: true,
         reason: format!(
@@ -314,6 +348,9 @@ fn fit(input: &FitInput<'_>, full_search_max: usize) -> Result<FitResult, FitPro
         gof_test: GOF_TEST.to_owned(),
         signal_counts,
         background_counts,
+        ln_likelihood_ratio: ln_lr,
+        lr_sigma,
+        burst_preferred,
     })
 }
 
@@ -561,7 +598,12 @@ impl Model {
                 what: "the burst's joint density",
             });
         }
-        let c = input.psf_containment / (4.0 * std::f64::consts::PI * PARSEC_M * PARSEC_M) * k;
+        let containment = if input.disc_radius_deg > 0.0 {
+            1.0
+        } else {
+            input.psf_containment
+        };
+        let c = containment / (4.0 * std::f64::consts::PI * PARSEC_M * PARSEC_M) * k;
 
         // The acceptance-weighted spectrum over true energy, wide enough to hold every energy that can be
         // reconstructed inside [e_min, e_max].
@@ -585,7 +627,7 @@ impl Model {
             // P(e_min < E_reco < e_max | E) with ln E_reco ~ N(u, s).
             let accept = p_from_sigma((ln_min - u) / s) - p_from_sigma((ln_max - u) / s);
             // dE = E du, so A E^-3/2 dE = A E^-1/2 du.
-            integrand.push(area(response, e, input.zenith_deg) * (-0.5 * u).exp() * accept.max(0.0));
+            integrand.push(area_in_disc(input, e, input.zenith_deg) * (-0.5 * u).exp() * accept.max(0.0));
         }
         let g = Cumulative::from_samples(u0, du, &integrand);
         if g.total().is_nan() || g.total() <= 0.0 {
@@ -647,6 +689,17 @@ fn area(response: &InstrumentResponse, e_gev: f64, zenith_deg: f64) -> f64 {
     if a.is_finite() && a > 0.0 { a } else { 0.0 }
 }
 
+/// The effective area times the PSF's containment in the disc at true energy `e_gev` (1 without a disc).
+fn area_in_disc(input: &FitInput<'_>, e_gev: f64, zenith_deg: f64) -> f64 {
+    let a = area(input.response, e_gev, zenith_deg);
+    if input.disc_radius_deg > 0.0 && a > 0.0 {
+        let sigma = input.response.psf_sigma_deg(e_gev);
+        a * offset_gaussian_containment(input.disc_radius_deg, input.disc_offset_deg, sigma)
+    } else {
+        a
+    }
+}
+
 fn sigma_at(response: &InstrumentResponse, e_gev: f64) -> f64 {
     let s = response.energy_sigma_ln(e_gev);
     if s.is_finite() {
@@ -703,7 +756,7 @@ impl PhotonCurves {
                 let s = sigma_at(input.response, e_true);
                 let z = (x - u) / s;
                 // R(E | E') in E: phi(z) / (s E); times A E'^-3/2 dE' = A E'^-1/2 du.
-                *slot = area(input.response, e_true, model.zenith_deg)
+                *slot = area_in_disc(input, e_true, model.zenith_deg)
                     * (-0.5 * u).exp()
                     * inv_sqrt_2pi
                     * (-0.5 * z * z).exp()
@@ -820,6 +873,19 @@ impl Search<'_> {
             });
         }
         Ok((q_lo, q_hi))
+    }
+
+    /// ln LR of the burst against background alone at the fitted explosion time, the anchor group left out
+    /// and the strength fitted again. The photon the explosion is anchored on sits a clock step before it,
+    /// where tau^-1/2 makes its density ratio huge: with it, one background photon alone "prefers" a burst.
+    /// Conditioning on it, as the trigger's p-value leaves the seed out, removes that.
+    fn ln_ratio_without_anchor(&self, best: &AnchorFit, scratch: &mut Vec<f64>) -> Result<f64, FitProblem> {
+        let norm = self.ratios(best.anchor, scratch);
+        let t = &self.photons.times_ns;
+        let group = t.iter().filter(|&&x| x == t[best.anchor]).count();
+        scratch.truncate(scratch.len().saturating_sub(group));
+        let q = best_strength(scratch, norm)?;
+        Ok(ln_likelihood(scratch, norm, q).max(0.0))
     }
 
     /// KS p-value of the photon times, anchor group left out, against the fitted model over the window.
@@ -1045,6 +1111,8 @@ pub struct FitJob {
     pub(crate) window_start_ns: i64,
     pub(crate) window_end_ns: i64,
     pub(crate) psf_containment: f64,
+    pub(crate) disc_radius_deg: f64,
+    pub(crate) disc_offset_deg: f64,
 }
 
 impl FitJob {
@@ -1060,6 +1128,8 @@ impl FitJob {
             window_start_ns: self.window_start_ns,
             window_end_ns: self.window_end_ns,
             psf_containment: self.psf_containment,
+            disc_radius_deg: self.disc_radius_deg,
+            disc_offset_deg: self.disc_offset_deg,
         })
     }
 
@@ -1135,6 +1205,8 @@ mod tests {
             window_start_ns: START,
             window_end_ns: START + 30 * S,
             psf_containment: 0.68,
+            disc_radius_deg: 0.0,
+            disc_offset_deg: 0.0,
         }
     }
 

@@ -14,9 +14,11 @@ mod engine;
 mod error;
 mod finding;
 pub mod fit;
+mod localise;
 mod reorder;
 mod sky;
 mod stats;
+pub mod trials;
 
 pub use config::{AssessConfig, EngineConfig};
 pub use engine::{Engine, EngineStats, SECONDS_PER_YEAR};

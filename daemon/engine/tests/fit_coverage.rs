@@ -74,6 +74,8 @@ impl Scenario {
             window_start_ns: start,
             window_end_ns: end,
             psf_containment: self.psf_containment,
+            disc_radius_deg: 0.0,
+            disc_offset_deg: 0.0,
         }
     }
 }
@@ -585,4 +587,61 @@ fn bad_input_is_refused_with_a_specific_reason() {
             assert!(!v.is_nan(), "{name}: NaN in a refused result");
         }
     }
+}
+
+#[test]
+fn likelihood_ratio_prefers_the_burst_only_for_bursts() {
+    // The fit's likelihood ratio against background alone (docs/science.md section 4) with its goodness of
+    // fit: `burst_preferred` for true bursts, rarely for background alone or an afterglow-like curve.
+    let s = Scenario::standard();
+    let c = calibration();
+    let bursts = burst_trials(&s, c.distance_pc, 7);
+    let preferred = fraction(&bursts, |r| r.burst_preferred);
+    let min_sigma = bursts
+        .iter()
+        .map(|t| t.fit.lr_sigma)
+        .fold(f64::INFINITY, f64::min);
+    for t in &bursts {
+        // sqrt(2 ln LR) by definition (computed).
+        assert!((t.fit.lr_sigma - (2.0 * t.fit.ln_likelihood_ratio).sqrt()).abs() < 1e-9);
+    }
+
+    // Background only: 30 photons (1 Hz over the 30 s window).
+    let quiet = Scenario {
+        background_rate_hz: 1.0,
+        ..Scenario::standard()
+    };
+    let mut rng = Pcg64::seed_from_u64(8);
+    let (mut times, mut energies) = (Vec::new(), Vec::new());
+    let mut bkg_preferred = 0;
+    let mut bkg_fitted = 0;
+    for _ in 0..TRIALS {
+        times.clear();
+        energies.clear();
+        draw_background(&quiet, &mut rng, &mut times, &mut energies);
+        let r = fit_evaporation(&quiet.input(&times, &energies));
+        bkg_fitted += usize::from(r.converged);
+        bkg_preferred += usize::from(r.burst_preferred);
+    }
+    let mut glow_preferred = 0;
+    for _ in 0..TRIALS {
+        times.clear();
+        energies.clear();
+        draw_afterglow(&s, SIGNAL_PHOTONS, 10.0, 3.0, &mut rng, &mut times, &mut energies);
+        draw_background(&s, &mut rng, &mut times, &mut energies);
+        glow_preferred += usize::from(fit_evaporation(&s.input(&times, &energies)).burst_preferred);
+    }
+    let bkg = bkg_preferred as f64 / TRIALS as f64;
+    let glow = glow_preferred as f64 / TRIALS as f64;
+    eprintln!(
+        "burst preferred: bursts {preferred:.3} (lowest LR {min_sigma:.1} sigma), background {bkg:.3} \
+         ({bkg_fitted} of {TRIALS} converged), afterglow-like {glow:.3}"
+    );
+    // Bursts: only a goodness of fit below 0.01 (about 1%) un-prefers them; >= 0.9 is far inside.
+    assert!(preferred >= 0.9, "bursts preferred in {preferred}");
+    // Background: 3 sigma is 0.13% for one explosion time; the search over times raises it, so up to 5%
+    // (binomial sd 1.5% at 200 trials).
+    assert!(bkg <= 0.05, "background preferred in {bkg}");
+    // Afterglow-like: the template's goodness of fit is below 0.05 in >= 80% of them (test above).
+    assert!(glow <= 0.25, "afterglow-like curves preferred in {glow}");
 }

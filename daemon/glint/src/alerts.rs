@@ -30,6 +30,8 @@ fn trigger_of(f: &Flash) -> pb::Trigger {
         photon_dec_deg: f.photons.iter().map(|p| p.dec_deg).collect(),
         photon_energy_gev: f.photons.iter().map(|p| p.energy_gev as f32).collect(),
         zenith_deg: f.zenith_deg,
+        sigma_post_trials: f.sigma_post_trials,
+        sigma_per_seed: f.sigma,
     }
 }
 
@@ -76,6 +78,9 @@ fn assessment_of(a: &Assessment, flash: Option<(u64, &str)>) -> pb::Assessment {
             gof_test: fit.gof_test.clone(),
             signal_counts: fit.signal_counts,
             background_counts: fit.background_counts,
+            ln_likelihood_ratio: fit.ln_likelihood_ratio,
+            lr_sigma: fit.lr_sigma,
+            burst_preferred: fit.burst_preferred,
         }),
         flash_seq: flash.map_or(0, |f| f.0),
         flash_id: flash.map_or(String::new(), |f| f.1.to_string()),
@@ -175,6 +180,8 @@ struct TriggerJson<'a> {
     background: f64,
     p_value: f64,
     sigma: f64,
+    sigma_per_seed: f64,
+    sigma_post_trials: f64,
     far_per_year: f64,
     photons: usize,
 }
@@ -193,6 +200,9 @@ struct FitJson<'a> {
     gof_test: &'a str,
     signal_counts: f64,
     background_counts: f64,
+    ln_likelihood_ratio: f64,
+    lr_sigma: f64,
+    burst_preferred: bool,
 }
 
 #[derive(Serialize)]
@@ -270,6 +280,8 @@ pub(crate) fn alert_json(a: &pb::Alert) -> serde_json::Value {
         background: t.background,
         p_value: t.p_value,
         sigma: t.sigma,
+        sigma_per_seed: t.sigma_per_seed,
+        sigma_post_trials: t.sigma_post_trials,
         far_per_year: t.far_per_year,
         photons: t.photon_time_gps_ns.len(),
     });
@@ -303,6 +315,9 @@ pub(crate) fn alert_json(a: &pb::Alert) -> serde_json::Value {
             gof_test: &f.gof_test,
             signal_counts: f.signal_counts,
             background_counts: f.background_counts,
+            ln_likelihood_ratio: f.ln_likelihood_ratio,
+            lr_sigma: f.lr_sigma,
+            burst_preferred: f.burst_preferred,
         }),
     });
     let latency = a.latency.as_ref().filter(|l| l.received_unix_ns != 0).map(|l| {
@@ -350,7 +365,7 @@ pub(crate) fn alert_summary(a: &pb::Alert) -> String {
     );
     if let Some(t) = &a.trigger {
         s += &format!(
-            "\n    at RA {:.3} Dec {:+.3} (±{:.2}°, 90%)  {}  timescale {} s\n    {} photons on {:.3} expected: p = {:.2e}, {:.1} sigma, FAR {:.2e}/yr",
+            "\n    at RA {:.3} Dec {:+.3} (±{:.2}°, 90%)  {}  timescale {} s\n    {} photons on {:.3} expected: p = {:.2e} ({:.1} sigma per seed), FAR {:.2e}/yr ({:.1} sigma post-trials)",
             t.ra_deg,
             t.dec_deg,
             t.error_radius_deg,
@@ -360,7 +375,8 @@ pub(crate) fn alert_summary(a: &pb::Alert) -> String {
             t.background,
             t.p_value,
             t.sigma,
-            t.far_per_year
+            t.far_per_year,
+            t.sigma_post_trials
         );
     }
     if let Some(x) = &a.assessment {
@@ -383,8 +399,19 @@ pub(crate) fn alert_summary(a: &pb::Alert) -> String {
         if let Some(f) = x.fit.as_ref() {
             if f.converged {
                 s += &format!(
-                    "\n    evaporation fit: explosion {}, distance {:.3} pc (90%: {:.3}-{:.3}), template p = {:.2}",
-                    f.explosion_utc, f.distance_pc, f.distance_pc_lo, f.distance_pc_hi, f.template_p
+                    "\n    evaporation fit: explosion {}, distance {:.3} pc (90%: {:.3}-{:.3}), template p = {:.2}, \
+                     {:.1} sigma over background{}",
+                    f.explosion_utc,
+                    f.distance_pc,
+                    f.distance_pc_lo,
+                    f.distance_pc_hi,
+                    f.template_p,
+                    f.lr_sigma,
+                    if f.burst_preferred {
+                        ""
+                    } else {
+                        "; burst model NOT preferred"
+                    }
                 );
             } else {
                 s += &format!("\n    evaporation fit not converged: {}", f.reason);

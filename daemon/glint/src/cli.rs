@@ -42,6 +42,10 @@ enum Command {
     /// latency percentiles.
     #[command(hide = true)]
     BenchLive(crate::commands::bench_live::BenchArgs),
+    /// Measure an instrument's effective trials on background (recordings or a simulated scenario) and
+    /// write its false-alarm calibration to <state_dir>/calibration/<instrument>.toml.
+    #[command(hide = true)]
+    Calibrate(crate::commands::calibrate::CalibrateArgs),
     /// Play a recording into a running daemon, as a producer would.
     Feed(crate::commands::feed::FeedArgs),
     /// Subscribe to a daemon's alerts and print them (or run a command per alert).
@@ -50,6 +54,8 @@ enum Command {
     Withdraw(crate::commands::withdraw::WithdrawArgs),
     /// Ask a running daemon for a TEST alert through every sink (needs the operator token).
     TestAlert(crate::commands::test_alert::TestAlertArgs),
+    /// Read a state directory's alert journal offline: verify, list, show, export (never modifies it).
+    Journal(crate::commands::journal::JournalArgs),
 }
 
 /// Runs the chosen subcommand.
@@ -62,10 +68,12 @@ pub(crate) fn dispatch(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Run(a) => crate::commands::run::run_command(a),
         Command::Demo(a) => crate::commands::demo::run(a),
         Command::BenchLive(a) => crate::commands::bench_live::bench(a),
+        Command::Calibrate(a) => crate::commands::calibrate::run(&a),
         Command::Feed(a) => crate::commands::feed::run(a),
         Command::Listen(a) => crate::commands::listen::run(a),
         Command::Withdraw(a) => crate::commands::withdraw::run(a),
         Command::TestAlert(a) => crate::commands::test_alert::run(a),
+        Command::Journal(a) => crate::commands::journal::run(&a),
     };
     match result {
         // A configuration or a scenario that does not compile is the operator's to mend: exit code 2.

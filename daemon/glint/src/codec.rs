@@ -47,20 +47,28 @@ impl<In, Out> FrameCodec<In, Out> {
             _types: PhantomData,
         }
     }
+
+    /// Changes the frame size limit (raised from [`PRE_AUTH_MAX_FRAME`] once a peer has authenticated).
+    pub(crate) fn set_max_frame(&mut self, max_frame: usize) {
+        self.decoder = FrameDecoder::new(max_frame);
+    }
 }
+
+/// Largest frame accepted before a peer has authenticated (its Hello, Subscribe or WithdrawRequest), bytes:
+/// those messages are small, and an unauthenticated peer must not make the daemon hold more than this.
+pub(crate) const PRE_AUTH_MAX_FRAME: usize = 4096;
+
+/// Initial read buffer of a connection, bytes; it grows only as bytes arrive.
+pub(crate) const INITIAL_READ_BUFFER: usize = 1024;
 
 impl<In: Message + Default, Out> Decoder for FrameCodec<In, Out> {
     type Item = In;
     type Error = CodecError;
 
     fn decode(&mut self, src: &mut BytesMut) -> Result<Option<In>, CodecError> {
-        // Reserve the whole frame at once so a large batch is read with few reallocations.
-        if let Some(total) = self.decoder.pending_frame_len(src)? {
-            if src.len() < total {
-                src.reserve(total - src.len());
-                return Ok(None);
-            }
-        }
+        // Never reserve the length a peer announces: the buffer grows only as bytes arrive (the framed reader
+        // doubles it when full), so a peer that announces a large frame and stalls holds what it sent, no
+        // more. The prefix is still checked against the limit at once.
         Ok(self.decoder.decode_from(src)?)
     }
 }
@@ -83,6 +91,28 @@ pub(crate) type IngestClientCodec = FrameCodec<pb::IngestReply, pb::ProducerFram
 pub(crate) type SubscriberServerCodec = FrameCodec<pb::SubscriberRequest, pb::SubscriberFrame>;
 /// Subscriber (and operator) side of the subscriber socket.
 pub(crate) type SubscriberClientCodec = FrameCodec<pb::SubscriberFrame, pb::SubscriberRequest>;
+
+/// A refusal decided by a check: the code and detail the peer gets.
+#[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
+#[error("{} (seq {seq}): {detail}", code.as_str_name())]
+pub(crate) struct Refusal {
+    /// Wire code.
+    pub(crate) code: pb::RefusalCode,
+    /// What was wrong; peer text in it has been through [`crate::logging::untrusted`].
+    pub(crate) detail: String,
+    /// The frame's sequence number, 0 when not about one frame.
+    pub(crate) seq: u64,
+}
+
+impl Refusal {
+    pub(crate) fn new(code: pb::RefusalCode, detail: impl Into<String>, seq: u64) -> Self {
+        Self {
+            code,
+            detail: detail.into(),
+            seq,
+        }
+    }
+}
 
 /// A refusal reply for a producer.
 pub(crate) fn ingest_refusal(code: pb::RefusalCode, detail: impl Into<String>, seq: u64) -> pb::IngestReply {

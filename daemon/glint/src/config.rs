@@ -10,10 +10,13 @@ use std::num::NonZeroUsize;
 use std::path::{Path, PathBuf};
 use std::time::Duration;
 
+use glint_science::calibration::TrialsCalibration;
 use glint_science::instrument::{InstrumentResponse, InstrumentSpec};
 use serde::de::DeserializeOwned;
 use subtle::ConstantTimeEq;
 use toml::{Table, Value};
+
+use crate::net::GateLimits;
 
 /// The configuration used when no file is given: loopback addresses, a state directory under the system's
 /// temporary directory, and the invented demo instrument.
@@ -114,6 +117,11 @@ pub(crate) struct DaemonConfig {
     pub(crate) shutdown_deadline: Duration,
     /// How often the engines' acceptance maps are saved.
     pub(crate) state_save_interval: Duration,
+    /// Below this many free bytes on the state directory's file system the daemon warns.
+    pub(crate) disk_warn_free_bytes: u64,
+    /// Below this many free bytes it refuses new alerts and stops (and `glint run` refuses to start), before
+    /// the journal could fail to write.
+    pub(crate) disk_min_free_bytes: u64,
 }
 
 /// TLS material for a listener.
@@ -142,6 +150,17 @@ pub(crate) struct IngestConfig {
     pub(crate) record_rotate_bytes: u64,
     /// Rotate a recording after this much event time.
     pub(crate) record_rotate: Duration,
+    /// Plain TCP on a non-loopback address was allowed explicitly (warned about at start).
+    pub(crate) allow_plain_remote: bool,
+    /// Bounds on connections that have not sent an accepted Hello yet.
+    pub(crate) gate: GateLimits,
+    /// TCP keepalive idle time: a producer whose host died is cut after about twice this.
+    pub(crate) keepalive: Duration,
+    /// A frame a producer has begun must be complete within this, or the connection is closed and the
+    /// instrument released.
+    pub(crate) frame_timeout: Duration,
+    /// A frame whose times lie further than this ahead of the host clock (GPS) is refused.
+    pub(crate) max_future: Duration,
 }
 
 /// `[subscribers]`: the alert listener.
@@ -159,8 +178,14 @@ pub(crate) struct SubscribersConfig {
     pub(crate) heartbeat: Duration,
     /// A subscriber whose socket stays unwritable this long is dropped.
     pub(crate) unwritable_timeout: Duration,
-    /// Most subscribers connected at once.
+    /// Most authenticated subscribers connected at once.
     pub(crate) max_connections: NonZeroUsize,
+    /// Plain TCP on a non-loopback address was allowed explicitly (warned about at start).
+    pub(crate) allow_plain_remote: bool,
+    /// Bounds on connections that have not sent an accepted request yet.
+    pub(crate) gate: GateLimits,
+    /// TCP keepalive idle time.
+    pub(crate) keepalive: Duration,
 }
 
 /// How the email sink talks to its relay.
@@ -307,6 +332,8 @@ pub(crate) struct InstrumentConfig {
     pub(crate) search: SearchConfig,
     /// Assessment settings.
     pub(crate) assess: AssessSettings,
+    /// The effective-trials calibration from `<state_dir>/calibration/<id>.toml`, when that file exists.
+    pub(crate) trials: Option<TrialsCalibration>,
 }
 
 /// The whole checked configuration.
@@ -328,6 +355,8 @@ pub(crate) struct Config {
     pub(crate) email: Option<EmailConfig>,
     /// `[[instrument]]`, in file order.
     pub(crate) instruments: Vec<InstrumentConfig>,
+    /// `GLINT_*` environment variables that name no configuration key, so were not used.
+    pub(crate) ignored_env: Vec<String>,
 }
 
 impl Config {
@@ -364,37 +393,113 @@ impl Config {
                 message,
             }],
         };
-        let mut builder =
-            config::Config::builder().add_source(config::File::from_str(text, config::FileFormat::Toml));
-        if with_env {
-            builder = builder.add_source(
-                config::Environment::with_prefix("GLINT")
-                    .prefix_separator("_")
-                    .separator("__")
-                    .try_parsing(true)
-                    .list_separator(",")
-                    .with_list_parse_key("subscribers.tokens"),
-            );
-        }
-        let raw = builder.build().map_err(|e| fail("(syntax)", e.to_string()))?;
-        let root: Table = raw
-            .try_deserialize()
-            .map_err(|e| fail("(syntax)", e.to_string()))?;
-        let mut r = Reader {
-            problems: Vec::new(),
-            base_dir: base_dir.to_path_buf(),
+        let mut env: BTreeMap<String, String> = if with_env {
+            std::env::vars()
+                .filter(|(k, _)| k.to_ascii_uppercase().starts_with("GLINT_"))
+                .collect()
+        } else {
+            BTreeMap::new()
         };
-        let cfg = r.compile(root);
+        let compile = |env: &BTreeMap<String, String>| -> Result<(Option<Self>, Vec<Problem>), ConfigError> {
+            let mut builder =
+                config::Config::builder().add_source(config::File::from_str(text, config::FileFormat::Toml));
+            if !env.is_empty() {
+                builder = builder.add_source(
+                    config::Environment::with_prefix("GLINT")
+                        .prefix_separator("_")
+                        .separator("__")
+                        .try_parsing(true)
+                        .list_separator(",")
+                        .with_list_parse_key("subscribers.tokens")
+                        .source(Some(env.clone().into_iter().collect())),
+                );
+            }
+            let raw = builder.build().map_err(|e| fail("(syntax)", e.to_string()))?;
+            let root: Table = raw
+                .try_deserialize()
+                .map_err(|e| fail("(syntax)", e.to_string()))?;
+            let mut r = Reader {
+                problems: Vec::new(),
+                base_dir: base_dir.to_path_buf(),
+            };
+            let cfg = r.compile(root);
+            Ok((cfg, r.problems))
+        };
+        let (mut cfg, mut problems) = compile(&env)?;
+        // A GLINT_* variable that names no key (GLINT_HOME, a typo) belongs to something else in the
+        // environment: it is left out and listed, never a reason to refuse to start.
+        let unknown: Vec<String> = problems
+            .iter()
+            .filter(|p| p.message == "unknown key")
+            .map(|p| p.key.clone())
+            .collect();
+        let ignored: Vec<String> = env
+            .keys()
+            .filter(|var| {
+                let key = env_key(var);
+                unknown
+                    .iter()
+                    .any(|u| key == *u || key.starts_with(&format!("{u}.")))
+            })
+            .cloned()
+            .collect();
+        if !ignored.is_empty() {
+            env.retain(|k, _| !ignored.contains(k));
+            (cfg, problems) = compile(&env)?;
+        }
         match cfg {
-            Some(c) if r.problems.is_empty() => Ok(Self {
+            Some(c) if problems.is_empty() => Ok(Self {
                 source_name: source_name.to_string(),
+                ignored_env: ignored,
                 ..c
             }),
             _ => Err(ConfigError {
                 source_name: source_name.to_string(),
-                problems: r.problems,
+                problems,
             }),
         }
+    }
+
+    /// What deserves a warning at start although the configuration is valid: plain listeners on
+    /// non-loopback addresses, a metrics endpoint reachable from other hosts, ignored environment variables.
+    pub(crate) fn startup_warnings(&self) -> Vec<String> {
+        let mut w = Vec::new();
+        for (key, listen, tls, allowed) in [
+            (
+                "ingest",
+                self.ingest.listen,
+                self.ingest.tls.is_some(),
+                self.ingest.allow_plain_remote,
+            ),
+            (
+                "subscribers",
+                self.subscribers.listen,
+                self.subscribers.tls.is_some(),
+                self.subscribers.allow_plain_remote,
+            ),
+        ] {
+            if !tls && allowed && !listen.ip().is_loopback() {
+                w.push(format!(
+                    "{key}.listen = {listen} is plain TCP on a non-loopback address (allow_plain_remote = true): \
+                     tokens and data cross the network unencrypted"
+                ));
+            }
+        }
+        if let Some(m) = self.metrics_listen {
+            if !m.ip().is_loopback() {
+                w.push(format!(
+                    "metrics.listen = {m} is not a loopback address: the metrics endpoint has no authentication \
+                     and reveals instrument ids and rates to anyone who can reach it"
+                ));
+            }
+        }
+        if !self.ignored_env.is_empty() {
+            w.push(format!(
+                "ignored environment variable(s) that name no configuration key: {}",
+                self.ignored_env.join(", ")
+            ));
+        }
+        w
     }
 
     /// The instrument with this id.
@@ -402,6 +507,17 @@ impl Config {
         self.instruments.iter().find(|i| i.id == id)
     }
 }
+
+/// The dotted key a `GLINT_SECTION__KEY` variable stands for, as the `config` crate reads it.
+fn env_key(var: &str) -> String {
+    var.to_lowercase()
+        .strip_prefix("glint_")
+        .unwrap_or_default()
+        .replace("__", ".")
+}
+
+/// Smallest size accepted for byte-count keys whose tiny values make no sense (frame limits, segments).
+const MIN_SIZE_BYTES: i64 = 4096;
 
 /// Walks the raw tree, taking each known key out of its table so that what is left over is unknown.
 struct Reader {
@@ -528,6 +644,52 @@ impl Reader {
         }
     }
 
+    /// A byte count of at least [`MIN_SIZE_BYTES`] and at most `max`, refused (naming the key) otherwise.
+    fn size(&mut self, s: &mut Section, k: &str, default: i64, max: i64) -> u64 {
+        let v: i64 = self.get(s, k, default);
+        if !(MIN_SIZE_BYTES..=max).contains(&v) {
+            self.problem(
+                s.key(k),
+                format!("{v} bytes is outside [{MIN_SIZE_BYTES}, {max}]"),
+            );
+            return default as u64;
+        }
+        v as u64
+    }
+
+    /// A whole number in `[lo, hi]`.
+    fn count(&mut self, s: &mut Section, k: &str, default: usize, lo: usize, hi: usize) -> usize {
+        let v: i64 = self.get(s, k, default as i64);
+        match usize::try_from(v) {
+            Ok(n) if (lo..=hi).contains(&n) => n,
+            _ => {
+                self.problem(s.key(k), format!("{v} is outside [{lo}, {hi}]"));
+                default
+            }
+        }
+    }
+
+    /// The unauthenticated-connection limits of a listener section.
+    fn gate(&mut self, s: &mut Section) -> GateLimits {
+        let max_pending = self.count(s, "max_unauthenticated", 64, 1, 65_536);
+        let per_addr = self.count(s, "max_unauthenticated_per_address", 16, 1, 65_536);
+        if per_addr > max_pending {
+            self.problem(
+                s.key("max_unauthenticated_per_address"),
+                format!("{per_addr} is more than max_unauthenticated ({max_pending})"),
+            );
+        }
+        let auth_timeout = self.seconds(s, "auth_timeout_s", 5.0);
+        if auth_timeout > Duration::from_secs(300) {
+            self.problem(s.key("auth_timeout_s"), "must be at most 300 seconds");
+        }
+        GateLimits {
+            max_pending,
+            max_pending_per_address: per_addr,
+            auth_timeout,
+        }
+    }
+
     fn path(&self, p: &str) -> PathBuf {
         let p = PathBuf::from(p);
         if p.is_absolute() { p } else { self.base_dir.join(p) }
@@ -581,12 +743,22 @@ impl Reader {
         match (cert.filter(|c| !c.is_empty()), key.filter(|k| !k.is_empty())) {
             (Some(c), Some(k)) => {
                 let (cert, key) = (self.path(&c), self.path(&k));
+                let mut readable = true;
                 for (name, p) in [("tls_cert", &cert), ("tls_key", &key)] {
                     if !p.is_file() {
                         self.problem(s.key(name), format!("{} is not a readable file", p.display()));
+                        readable = false;
                     }
                 }
-                Some(TlsConfig { cert, key })
+                let tls = TlsConfig { cert, key };
+                // Loaded now, so check-config refuses what `run` would: a PEM file without a certificate or
+                // key, or a pair that does not match.
+                if readable {
+                    if let Err(e) = crate::tls::acceptor(&tls) {
+                        self.problem(s.key("tls_cert"), format!("{e:#}"));
+                    }
+                }
+                Some(tls)
             }
             (None, None) => None,
             _ => {
@@ -596,14 +768,31 @@ impl Reader {
         }
     }
 
-    /// Plain TCP on a non-loopback address needs an explicit `allow_plain_remote = true`.
-    fn plain_remote_check(&mut self, s: &mut Section, listen: SocketAddr, tls: &Option<TlsConfig>) {
+    /// Plain TCP on a non-loopback address needs an explicit `allow_plain_remote = true`; returns that flag.
+    fn plain_remote_check(&mut self, s: &mut Section, listen: SocketAddr, tls: &Option<TlsConfig>) -> bool {
         let allow: bool = self.get(s, "allow_plain_remote", false);
         if tls.is_none() && !listen.ip().is_loopback() && !allow {
             self.problem(
                 s.key("listen"),
                 format!("{listen} is not loopback and no TLS is configured; set tls_cert/tls_key or allow_plain_remote = true"),
             );
+        }
+        allow
+    }
+
+    /// Two listeners on one port (the same address, or either on every address) cannot both bind.
+    fn port_clashes(&mut self, listeners: &[(&str, Option<SocketAddr>)]) {
+        for (i, (ka, a)) in listeners.iter().enumerate() {
+            for (kb, b) in &listeners[i + 1..] {
+                let (Some(a), Some(b)) = (a, b) else { continue };
+                let overlap = a.ip() == b.ip() || a.ip().is_unspecified() || b.ip().is_unspecified();
+                if a.port() != 0 && a.port() == b.port() && overlap {
+                    self.problem(
+                        *kb,
+                        format!("{b} clashes with {ka} = {a}: one port, two listeners"),
+                    );
+                }
+            }
         }
     }
 
@@ -631,45 +820,61 @@ impl Reader {
                 LogFormat::Text
             }
         };
-        let max_frame_bytes = self.nonzero(
+        let max_frame_bytes = self.size(
             &mut d,
             "max_frame_bytes",
-            glint_wire::framing::DEFAULT_MAX_FRAME_BYTES,
+            glint_wire::framing::DEFAULT_MAX_FRAME_BYTES as i64,
+            256 * 1024 * 1024,
         );
-        if max_frame_bytes.get() > 256 * 1024 * 1024 {
-            self.problem(d.key("max_frame_bytes"), "must be at most 268435456 (256 MiB)");
-        }
         let shutdown_deadline = self.seconds(&mut d, "shutdown_deadline_s", 10.0);
         let state_save_interval = self.seconds(&mut d, "state_save_interval_s", 300.0);
+        let disk_warn: i64 = self.get(&mut d, "disk_warn_free_bytes", 1 << 30);
+        let disk_min: i64 = self.get(&mut d, "disk_min_free_bytes", 64 << 20);
+        if disk_min < 0 {
+            self.problem(d.key("disk_min_free_bytes"), "must be at least 0");
+        }
+        if disk_warn < disk_min {
+            self.problem(
+                d.key("disk_warn_free_bytes"),
+                format!("must be at least disk_min_free_bytes ({disk_min})"),
+            );
+        }
         let daemon = DaemonConfig {
             state_dir: self.path(&expand_tmp(&state_dir)),
             log_level,
             log_format,
-            max_frame_bytes: max_frame_bytes.get(),
+            max_frame_bytes: max_frame_bytes as usize,
             shutdown_deadline,
             state_save_interval,
+            disk_warn_free_bytes: disk_warn.max(0) as u64,
+            disk_min_free_bytes: disk_min.max(0) as u64,
         };
         self.finish(d);
 
         let mut s = self.section(&mut top, "ingest");
         let listen = self.addr(&mut s, "listen", "127.0.0.1:7601");
         let tls = self.tls(&mut s);
-        self.plain_remote_check(&mut s, listen, &tls);
+        let allow_plain_remote = self.plain_remote_check(&mut s, listen, &tls);
         let ingest = IngestConfig {
             listen,
             tls,
             queue_batches: self.nonzero(&mut s, "queue_batches", 256),
             ack_every: self.nonzero(&mut s, "ack_every", 16),
             record: self.get(&mut s, "record", false),
-            record_rotate_bytes: self.get::<i64>(&mut s, "record_rotate_bytes", 256 << 20).max(1) as u64,
+            record_rotate_bytes: self.size(&mut s, "record_rotate_bytes", 256 << 20, i64::MAX),
             record_rotate: self.seconds(&mut s, "record_rotate_s", 3600.0),
+            allow_plain_remote,
+            gate: self.gate(&mut s),
+            keepalive: self.seconds(&mut s, "keepalive_s", 15.0),
+            frame_timeout: self.seconds(&mut s, "frame_timeout_s", 10.0),
+            max_future: self.seconds(&mut s, "max_future_s", 300.0),
         };
         self.finish(s);
 
         let mut s = self.section(&mut top, "subscribers");
         let listen = self.addr(&mut s, "listen", "127.0.0.1:7602");
         let tls = self.tls(&mut s);
-        self.plain_remote_check(&mut s, listen, &tls);
+        let allow_plain_remote = self.plain_remote_check(&mut s, listen, &tls);
         let mut tokens = Vec::new();
         let inline: Vec<String> = self.get(&mut s, "tokens", Vec::new());
         for (i, t) in inline.into_iter().enumerate() {
@@ -697,12 +902,15 @@ impl Reader {
             heartbeat: self.seconds(&mut s, "heartbeat_s", 5.0),
             unwritable_timeout: self.seconds(&mut s, "unwritable_timeout_s", 30.0),
             max_connections: self.nonzero(&mut s, "max_connections", 256),
+            allow_plain_remote,
+            gate: self.gate(&mut s),
+            keepalive: self.seconds(&mut s, "keepalive_s", 15.0),
         };
         self.finish(s);
 
         let mut s = self.section(&mut top, "journal");
         let journal = JournalConfig {
-            segment_bytes: self.get::<i64>(&mut s, "segment_bytes", 64 << 20).max(4096) as u64,
+            segment_bytes: self.size(&mut s, "segment_bytes", 64 << 20, i64::MAX),
             retention: self.seconds(&mut s, "retention_days", 90.0) * 86_400,
         };
         self.finish(s);
@@ -721,6 +929,11 @@ impl Reader {
             }
         };
         self.finish(s);
+        self.port_clashes(&[
+            ("ingest.listen", Some(ingest.listen)),
+            ("subscribers.listen", Some(subscribers.listen)),
+            ("metrics.listen", metrics_listen),
+        ]);
 
         let email = match top.table.remove("email") {
             None => None,
@@ -760,6 +973,19 @@ impl Reader {
         if instruments.is_empty() && !self.problems.iter().any(|p| p.key.starts_with("instrument")) {
             self.problem("instrument", "at least one [[instrument]] is required");
         }
+        for (i, inst) in instruments.iter_mut().enumerate() {
+            let checked = load_calibration(&daemon.state_dir, &inst.id).and_then(|trials| match trials {
+                Some(t) => t
+                    .check(&inst.id, &inst.search.ladder_s, inst.search.search_radius_deg)
+                    .map(|()| Some(t))
+                    .map_err(|e| format!("{}: {e}", calibration_path(&daemon.state_dir, &inst.id).display())),
+                None => Ok(None),
+            });
+            match checked {
+                Ok(trials) => inst.trials = trials,
+                Err(message) => self.problem(format!("instrument[{i}] calibration"), message),
+            }
+        }
         let mut seen = BTreeMap::new();
         for (i, inst) in instruments.iter().enumerate() {
             if let Some(j) = seen.insert(inst.id.clone(), i) {
@@ -780,6 +1006,7 @@ impl Reader {
             metrics_listen,
             email,
             instruments,
+            ignored_env: Vec::new(),
         })
     }
 
@@ -1095,6 +1322,7 @@ impl Reader {
             response,
             search,
             assess,
+            trials: None,
         })
     }
 
@@ -1181,6 +1409,28 @@ impl Reader {
             }
         }
     }
+}
+
+/// Where an instrument's effective-trials calibration lives: `<state_dir>/calibration/<id>.toml`.
+pub(crate) fn calibration_path(state_dir: &Path, instrument: &str) -> PathBuf {
+    state_dir.join("calibration").join(format!("{instrument}.toml"))
+}
+
+/// Reads an instrument's calibration: None when there is no file, an error naming the file when it cannot
+/// be read or parsed. Whether it fits the search is checked with the engine's configuration.
+pub(crate) fn load_calibration(
+    state_dir: &Path,
+    instrument: &str,
+) -> Result<Option<TrialsCalibration>, String> {
+    let path = calibration_path(state_dir, instrument);
+    let text = match std::fs::read_to_string(&path) {
+        Ok(t) => t,
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(None),
+        Err(e) => return Err(format!("cannot read {}: {e}", path.display())),
+    };
+    toml::from_str(&text)
+        .map(Some)
+        .map_err(|e| format!("{} is not a trials calibration: {e}", path.display()))
 }
 
 /// `$TMPDIR` in `state_dir` expands to the system's temporary directory, so the embedded default works for

@@ -118,8 +118,12 @@ pub(crate) struct Metrics {
     pub(crate) refused_photons: AtomicU64,
     /// Frames refused (validation, clock jump, protocol).
     pub(crate) refused_frames: AtomicU64,
-    /// Producer connections refused at Hello.
+    /// Producer connections refused before they authenticated (bad token, no Hello in time, evicted).
     pub(crate) refused_connections: AtomicU64,
+    /// Subscriber connections refused before they authenticated.
+    pub(crate) refused_subscriber_connections: AtomicU64,
+    /// Photons taken but dropped as late (behind the instrument's watermark on arrival).
+    pub(crate) late_photons: AtomicU64,
     /// Alerts issued, by kind: flash, assessment, withdrawal.
     pub(crate) alerts: [AtomicU64; 3],
     /// Producers connected now.
@@ -139,6 +143,12 @@ pub(crate) struct Metrics {
     pub(crate) email_rejected: AtomicU64,
     /// Attempts that failed for a transient reason (4xx, refused, timeout) and were retried.
     pub(crate) email_retries: AtomicU64,
+    /// Damaged stretches of the journal found (and quarantined) when it was opened, torn tail included.
+    pub(crate) journal_damaged: AtomicU64,
+    /// Sequence numbers whose alerts the journal lost (damage, missing segments), found when it was opened.
+    pub(crate) journal_lost_seqs: AtomicU64,
+    /// Free bytes on the state directory's file system at the last check.
+    pub(crate) disk_free_bytes: AtomicI64,
 }
 
 /// Longest latency the histograms track: one hour in nanoseconds (longer values are clamped).
@@ -160,6 +170,8 @@ impl Metrics {
             refused_photons: AtomicU64::new(0),
             refused_frames: AtomicU64::new(0),
             refused_connections: AtomicU64::new(0),
+            refused_subscriber_connections: AtomicU64::new(0),
+            late_photons: AtomicU64::new(0),
             alerts: [AtomicU64::new(0), AtomicU64::new(0), AtomicU64::new(0)],
             producers: AtomicI64::new(0),
             subscribers: AtomicI64::new(0),
@@ -169,6 +181,9 @@ impl Metrics {
             email_digests: AtomicU64::new(0),
             email_rejected: AtomicU64::new(0),
             email_retries: AtomicU64::new(0),
+            journal_damaged: AtomicU64::new(0),
+            journal_lost_seqs: AtomicU64::new(0),
+            disk_free_bytes: AtomicI64::new(0),
         }
     }
 
@@ -243,8 +258,18 @@ impl Metrics {
             ),
             (
                 "glint_refused_connections_total",
-                "Producer connections refused at Hello.",
+                "Producer connections refused before authenticating (bad token, no Hello in time, evicted).",
                 get(&self.refused_connections),
+            ),
+            (
+                "glint_refused_subscriber_connections_total",
+                "Subscriber connections refused before authenticating.",
+                get(&self.refused_subscriber_connections),
+            ),
+            (
+                "glint_late_photons_total",
+                "Photons dropped as late (behind the instrument's watermark on arrival).",
+                get(&self.late_photons),
             ),
             (
                 "glint_subscribers_dropped_total",
@@ -276,6 +301,16 @@ impl Metrics {
                 "Email attempts that failed transiently (4xx, refused, timeout) and were retried.",
                 get(&self.email_retries),
             ),
+            (
+                "glint_journal_damaged_total",
+                "Damaged journal stretches found at open (quarantined, or a torn tail cut).",
+                get(&self.journal_damaged),
+            ),
+            (
+                "glint_journal_lost_seqs_total",
+                "Sequence numbers whose alerts the journal had lost when it was opened.",
+                get(&self.journal_lost_seqs),
+            ),
         ];
         for (name, help, v) in counters {
             let _ = writeln!(s, "# HELP {name} {help}\n# TYPE {name} counter\n{name} {v}");
@@ -301,6 +336,11 @@ impl Metrics {
                 "glint_subscribers",
                 "Subscribers connected.",
                 self.subscribers.load(Ordering::Relaxed),
+            ),
+            (
+                "glint_disk_free_bytes",
+                "Free bytes on the state directory's file system at the last check.",
+                self.disk_free_bytes.load(Ordering::Relaxed),
             ),
         ] {
             let _ = writeln!(s, "# HELP {name} {help}\n# TYPE {name} gauge\n{name} {v}");

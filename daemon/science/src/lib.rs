@@ -2,6 +2,7 @@
 //! tables for the trigger, confidence limits, Hawking evaporation and the final-burst spectrum, instrument
 //! response, and the reach and rate limits that follow from them.
 
+pub mod calibration;
 pub mod critical;
 pub mod error;
 pub mod geometry;

@@ -100,6 +100,7 @@ pub(crate) fn ingest_replies() -> Vec<pb::IngestReply> {
                 seq: 5,
                 photons: 5000,
                 refused: 3,
+                late: 2,
             })),
         },
     ]
@@ -159,6 +160,8 @@ pub(crate) fn full_alert() -> pb::Alert {
             photon_dec_deg: vec![22.0, 22.1, 21.9],
             photon_energy_gev: vec![1.5, 20.0, 300.0],
             zenith_deg: 25.0,
+            sigma_post_trials: 2.3,
+            sigma_per_seed: 5.9,
         }),
         assessment: Some(pb::Assessment {
             verdict: pb::Verdict::Isolated as i32,
@@ -188,6 +191,9 @@ pub(crate) fn full_alert() -> pb::Alert {
                 gof_test: "cash".into(),
                 signal_counts: 8.4,
                 background_counts: 0.6,
+                ln_likelihood_ratio: 20.5,
+                lr_sigma: 6.4,
+                burst_preferred: true,
             }),
             flash_seq: 41,
             flash_id: "GL-ventisca-array-20261201T233113.000-41".into(),

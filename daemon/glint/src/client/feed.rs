@@ -1,7 +1,9 @@
 //! `glint feed FILE --to HOST:PORT`: plays a `.glrec` recording into a running daemon as a producer would,
 //! at real time, a multiple of it, or as fast as the socket takes it. The recording's `Hello` is replaced by
 //! one carrying the given token; the daemon's acks are read alongside and the last one is reported with the
-//! throughput at the end. The same code feeds the in-process demo from the simulator.
+//! throughput at the end. The same code feeds the in-process demo from the simulator. A stream that ends
+//! before the recording does (the daemon went away, the connection was reset or closed before the last ack)
+//! is an error, with a message saying so, never a quiet success: a supervisor must see it and restart.
 
 use std::str::FromStr;
 use std::time::{Duration, Instant};
@@ -64,6 +66,8 @@ pub(crate) struct FeedReport {
     pub(crate) acked_photons: u64,
     /// Photons the daemon refused.
     pub(crate) refused_photons: u64,
+    /// Photons the daemon took but dropped as late.
+    pub(crate) late_photons: u64,
     /// Warnings the daemon sent (code and detail).
     pub(crate) refusals: Vec<String>,
 }
@@ -155,7 +159,8 @@ where
         .send(pb::ProducerFrame {
             body: Some(producer_frame::Body::Hello(hello)),
         })
-        .await?;
+        .await
+        .map_err(|e| anyhow!("sending the Hello to {}: {e}", target.addr))?;
     match tokio::time::timeout(Duration::from_secs(30), framed.next()).await {
         Err(_) => bail!("no reply to the Hello from {} within 30 s", target.addr),
         Ok(None) => bail!("{} closed the connection after the Hello", target.addr),
@@ -183,8 +188,12 @@ where
     let reply_task = tokio::spawn(async move {
         let mut last = pb::Ack::default();
         let mut refusals = Vec::new();
+        // Why the reply stream ended before the last ack, if it did.
+        let mut ended = None;
+        // Highest seq answered: acked, or refused with a warning (a refused frame is never acked).
+        let mut answered = 0;
         loop {
-            if last.seq >= *want_rx.borrow() {
+            if last.seq.max(answered) >= *want_rx.borrow() {
                 break;
             }
             tokio::select! {
@@ -192,19 +201,31 @@ where
                 r = replies.next() => match r {
                     Some(Ok(pb::IngestReply { body: Some(ingest_reply::Body::Ack(a)) })) => last = a,
                     Some(Ok(pb::IngestReply { body: Some(ingest_reply::Body::Refusal(r)) })) => {
+                        answered = answered.max(r.seq);
                         refusals.push(format!("{} (seq {}): {}", refusal_name(r.code), r.seq, r.detail));
                     }
                     Some(Ok(_)) => {}
                     Some(Err(e)) => {
-                        refusals.push(format!("reading replies: {e}"));
+                        ended = Some(format!("reading replies failed: {e}"));
                         break;
                     }
-                    None => break,
+                    None => {
+                        ended = Some("the daemon closed the connection".to_string());
+                        break;
+                    }
                 },
             }
         }
-        (last, refusals)
+        (last, answered, refusals, ended)
     });
+    // A socket error is the daemon going away, never a closed stdout: it must not look like one (the caller
+    // treats a broken pipe on stdout as a normal end), so only its text is kept.
+    let gone = |frames: u64, e: &dyn std::fmt::Display| {
+        anyhow!(
+            "the stream to {} ended after {frames} frames, before the recording did: {e}",
+            target.addr
+        )
+    };
     let start = Instant::now();
     let mut t0: Option<i64> = None;
     let mut report = FeedReport::default();
@@ -217,7 +238,7 @@ where
                 Err(mpsc::error::TryRecvError::Disconnected) => None,
                 Err(mpsc::error::TryRecvError::Empty) => {
                     // Nothing ready: push what is buffered before waiting for the source.
-                    sink.flush().await?;
+                    sink.flush().await.map_err(|e| gone(report.frames, &e))?;
                     rx.recv().await
                 }
             },
@@ -233,7 +254,7 @@ where
             let due = Duration::from_secs_f64(((t - t0).max(0) as f64 / 1e9) / x);
             let elapsed = start.elapsed();
             if due > elapsed {
-                sink.flush().await?;
+                sink.flush().await.map_err(|e| gone(report.frames, &e))?;
                 tokio::time::sleep(due - elapsed).await;
             }
         }
@@ -246,29 +267,38 @@ where
             // The daemon hung up; its refusal, if it sent one, says why.
             let _ = want_tx.send(0);
             let why = match tokio::time::timeout(Duration::from_secs(2), reply_task).await {
-                Ok(Ok((_, refusals))) if !refusals.is_empty() => refusals.join("; "),
+                Ok(Ok((_, _, refusals, _))) if !refusals.is_empty() => refusals.join("; "),
                 _ => e.to_string(),
             };
-            bail!(
-                "{} ended the stream after {} frames: {why}",
-                target.addr,
-                report.frames
-            );
+            return Err(gone(report.frames, &why));
         }
     }
-    sink.flush().await?;
+    sink.flush().await.map_err(|e| gone(report.frames, &e))?;
     let _ = reader.await;
     // Wait for the ack of the last frame (the daemon acks when the producer goes quiet), then hang up.
     let _ = want_tx.send(last_seq);
-    let (ack, refusals) = match tokio::time::timeout(Duration::from_secs(60), reply_task).await {
-        Ok(Ok(r)) => r,
-        Ok(Err(e)) => return Err(anyhow!("reply reader failed: {e}")),
-        Err(_) => bail!("no ack of seq {last_seq} from {} within 60 s", target.addr),
-    };
+    let (ack, answered, refusals, ended) =
+        match tokio::time::timeout(Duration::from_secs(60), reply_task).await {
+            Ok(Ok(r)) => r,
+            Ok(Err(e)) => return Err(anyhow!("reply reader failed: {e}")),
+            Err(_) => bail!("no ack of seq {last_seq} from {} within 60 s", target.addr),
+        };
+    if ack.seq.max(answered) < last_seq {
+        let why = ended.unwrap_or_else(|| "no reason given".into());
+        let told: String = refusals.iter().map(|r| format!("; daemon said: {r}")).collect();
+        return Err(gone(
+            report.frames,
+            &format!(
+                "{why}; the last ack was seq {} of {last_seq}, so frames may not have been taken{told}",
+                ack.seq
+            ),
+        ));
+    }
     report.wall_s = start.elapsed().as_secs_f64();
     report.acked_seq = ack.seq;
     report.acked_photons = ack.photons;
     report.refused_photons = ack.refused;
+    report.late_photons = ack.late;
     report.refusals = refusals;
     let _ = sink.close().await;
     Ok(report)
@@ -277,14 +307,15 @@ where
 /// Prints a feed's figures on stdout.
 pub(crate) fn print_report(name: &str, r: &FeedReport) {
     println!(
-        "fed {name}: {} frames, {} photons in {:.2} s ({:.0} photons/s); daemon acked seq {} ({} photons taken, {} refused)",
+        "fed {name}: {} frames, {} photons in {:.2} s ({:.0} photons/s); daemon acked seq {} ({} photons taken, {} refused, {} late)",
         r.frames,
         r.photons,
         r.wall_s,
         r.photons_per_s(),
         r.acked_seq,
         r.acked_photons,
-        r.refused_photons
+        r.refused_photons,
+        r.late_photons
     );
     for w in &r.refusals {
         println!("  daemon warned: {w}");

@@ -176,6 +176,14 @@ async fn session(
             }
             Some(subscriber_frame::Body::Heartbeat(h)) if h.closing => return Ok(SessionEnd::Closed),
             Some(subscriber_frame::Body::Heartbeat(_)) => {}
+            Some(subscriber_frame::Body::Gap(g)) => {
+                // The daemon cannot deliver these; say so loudly and move on rather than wait for them.
+                eprintln!(
+                    "warning: alerts {}-{} are not available from {}: {}",
+                    g.from_seq, g.to_seq, opts.addr, g.reason
+                );
+                *last_seen = (*last_seen).max(g.to_seq);
+            }
             Some(subscriber_frame::Body::Alert(a)) => {
                 // After a reconnect the daemon resumes after `last_seen`; anything not newer is a duplicate.
                 if a.seq <= *last_seen {

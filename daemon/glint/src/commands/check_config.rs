@@ -1,4 +1,5 @@
-//! `glint check-config`: compiles a configuration and lists every problem in it at once.
+//! `glint check-config`: compiles a configuration and lists every problem in it at once (TLS material is
+//! loaded and listener ports compared, so what passes here also starts), then the warnings `run` would log.
 
 use std::path::PathBuf;
 use std::process::ExitCode;
@@ -24,5 +25,8 @@ pub(crate) fn run(a: &CheckConfigArgs) -> anyhow::Result<ExitCode> {
             .collect::<Vec<_>>()
             .join(", ")
     );
+    for w in cfg.startup_warnings() {
+        println!("warning: {w}");
+    }
     Ok(ExitCode::SUCCESS)
 }

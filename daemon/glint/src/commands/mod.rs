@@ -2,9 +2,11 @@
 //! print. Nothing below this folder imports from it.
 
 pub(crate) mod bench_live;
+pub(crate) mod calibrate;
 pub(crate) mod check_config;
 pub(crate) mod demo;
 pub(crate) mod feed;
+pub(crate) mod journal;
 pub(crate) mod listen;
 pub(crate) mod reach;
 pub(crate) mod replay;

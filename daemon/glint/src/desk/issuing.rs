@@ -312,6 +312,7 @@ pub(crate) mod tests {
             ln_p: -20.7,
             sigma: 6.0,
             far_per_year: 0.1,
+            sigma_post_trials: 1.3,
             zenith_deg: 10.0,
             photons: times
                 .iter()

@@ -21,7 +21,7 @@ use crate::alerts::{self, Sequencer};
 use crate::config::JournalConfig;
 use crate::metrics::{Metrics, Stage};
 use crate::timefmt::{now_unix_ns, unix_ns_to_gps_ns};
-use journal::{Journal, JournalError, OpenReport};
+use journal::{Journal, JournalError, OpenReport, SeqGap};
 
 /// Alerts kept in memory for subscribers that are nearly caught up (older ones are read from disk).
 pub(crate) const TAIL_CAPACITY: usize = 1024;
@@ -47,6 +47,9 @@ pub(crate) enum DeskError {
     /// An earlier journal failure stopped the desk.
     #[error("the alert desk stopped after a journal failure")]
     Stopped,
+    /// The desk refuses new alerts before the journal's disk fills (see `daemon.disk_min_free_bytes`).
+    #[error("the alert desk refuses new alerts: {0}")]
+    Refused(String),
 }
 
 /// Why an operator's withdrawal was refused.
@@ -98,6 +101,8 @@ struct Numbering {
     committed: u64,
     /// The journal failed: nothing more is numbered.
     stopped: bool,
+    /// Why new alerts are refused (the disk is nearly full), if they are.
+    refusing: Option<String>,
     /// The desk is being dropped: the committer drains the queue and ends.
     closing: bool,
 }
@@ -129,6 +134,8 @@ pub(crate) struct Desk {
     shared: Arc<Shared>,
     committer: Option<std::thread::JoinHandle<()>>,
     journal_dir: PathBuf,
+    /// Holes in the sequence found at open, with their reasons, for the gaps subscribers are sent.
+    known_gaps: Vec<SeqGap>,
 }
 
 impl std::fmt::Debug for Desk {
@@ -179,15 +186,18 @@ impl Desk {
         let last = journal.last_seq();
         tail.retain(|a: &Arc<pb::Alert>| a.seq <= last && a.seq >= journal.first_seq());
         let (published, _) = watch::channel(last);
+        // Numbering resumes past every number ever handed out, not just past the newest record kept.
+        let next = journal.next_seq();
         let shared = Arc::new(Shared {
             numbering: Mutex::new(Numbering {
-                sequencer: Sequencer::starting_at(last + 1),
+                sequencer: Sequencer::starting_at(next),
                 withdrawn,
                 queue: Vec::new(),
                 queued_alerts: 0,
-                assigned: last,
-                committed: last,
+                assigned: next - 1,
+                committed: next - 1,
                 stopped: false,
+                refusing: None,
                 closing: false,
             }),
             queued: Condvar::new(),
@@ -213,6 +223,7 @@ impl Desk {
             shared,
             committer: Some(committer),
             journal_dir: dir.to_path_buf(),
+            known_gaps: report.gaps.clone(),
         };
         Ok((desk, report))
     }
@@ -255,6 +266,9 @@ impl Desk {
         loop {
             if g.stopped {
                 return Err(DeskError::Stopped);
+            }
+            if let Some(why) = &g.refusing {
+                return Err(DeskError::Refused(why.clone()));
             }
             if g.queued_alerts == 0 || g.queued_alerts + n <= COMMIT_QUEUE {
                 return Ok(g);
@@ -324,7 +338,8 @@ impl Desk {
     }
 
     /// Waits until every alert numbered so far is journalled, then makes sure the journal is on disk (every
-    /// commit already fsyncs; this is the shutdown stage). Blocking.
+    /// commit already fsyncs; this is the shutdown stage) and records a clean stop, so the next start
+    /// numbers on without a gap. Blocking.
     pub(crate) fn sync(&self) -> Result<(), DeskError> {
         let mut g = lock(&self.shared.numbering);
         while g.committed < g.assigned && !g.stopped {
@@ -334,17 +349,28 @@ impl Desk {
             return Err(DeskError::Stopped);
         }
         drop(g);
-        Ok(lock(&self.shared.journal).sync()?)
+        Ok(lock(&self.shared.journal).mark_clean()?)
+    }
+
+    /// Refuses every new alert from now on with `why` (alerts already numbered are still journalled).
+    pub(crate) fn refuse(&self, why: String) {
+        lock(&self.shared.numbering).refusing = Some(why);
+        self.shared.settled.notify_all();
     }
 }
 
 impl Drop for Desk {
-    /// The committer drains what is queued, then ends.
+    /// The committer drains what is queued, then ends; a desk that did not fail records a clean stop.
     fn drop(&mut self) {
         lock(&self.shared.numbering).closing = true;
         self.shared.queued.notify_all();
         if let Some(h) = self.committer.take() {
             let _ = h.join();
+        }
+        if !lock(&self.shared.numbering).stopped {
+            if let Err(e) = lock(&self.shared.journal).mark_clean() {
+                tracing::warn!("journal: cannot record a clean stop: {e}");
+            }
         }
     }
 }
@@ -390,10 +416,15 @@ impl Shared {
         let now = now_unix_ns();
         let written = {
             let mut j = lock(&self.journal);
-            batch
-                .iter()
-                .flat_map(|p| &p.alerts)
-                .try_for_each(|a| j.append(a, now))
+            let newest = batch.iter().flat_map(|p| &p.alerts).map(|a| a.seq).max();
+            newest
+                .map_or(Ok(()), |n| j.reserve(n))
+                .and_then(|()| {
+                    batch
+                        .iter()
+                        .flat_map(|p| &p.alerts)
+                        .try_for_each(|a| j.append(a, now))
+                })
                 .and_then(|()| j.sync())
         };
         if let Err(e) = written {
@@ -478,9 +509,27 @@ impl Shared {
     }
 }
 
+/// The alerts of `iter` numbered `after + 1`, `after + 2`, ... up to `upto`, at most `max`: the run stops
+/// at the first number missing, so a reader never steps over a gap without being told.
+fn contiguous<'a>(
+    iter: impl Iterator<Item = &'a Arc<pb::Alert>>,
+    after: u64,
+    upto: u64,
+    max: usize,
+) -> Vec<Arc<pb::Alert>> {
+    (after + 1..)
+        .zip(iter)
+        .take_while(|(expect, a)| a.seq == *expect && a.seq <= upto)
+        .take(max)
+        .map(|(_, a)| a.clone())
+        .collect()
+}
+
 impl Desk {
-    /// Up to `max` published alerts with seq > `after`, oldest first, from memory when the tail holds them;
-    /// `None` when they must be read from disk (see [`read_from_disk`](Self::read_from_disk)).
+    /// Published alerts numbered `after + 1`, `after + 2`, ... (at most `max`, stopping at the first number
+    /// missing), from memory when the tail holds them; `None` when they must be read from disk (see
+    /// [`read_from_disk`](Self::read_from_disk)). Empty when `after + 1` is itself missing: a gap, which
+    /// [`gap_after`](Self::gap_after) describes.
     pub(crate) fn read_cached(&self, after: u64, max: usize) -> Option<Vec<Arc<pb::Alert>>> {
         let upto = self.last_seq();
         if after >= upto {
@@ -491,28 +540,66 @@ impl Desk {
             .tail
             .read()
             .unwrap_or_else(std::sync::PoisonError::into_inner);
-        let front = tail.front()?.seq;
-        if front > after + 1 {
+        // Numbers in the tail increase but need not be contiguous: look the position up by number.
+        if tail.front()?.seq > after + 1 {
             return None;
         }
-        let skip = usize::try_from(after + 1 - front).unwrap_or(usize::MAX);
-        Some(
-            tail.iter()
-                .skip(skip)
-                .take_while(|a| a.seq <= upto)
-                .take(max)
-                .cloned()
-                .collect(),
-        )
+        let start = tail.partition_point(|a| a.seq <= after);
+        Some(contiguous(tail.range(start..), after, upto, max))
     }
 
     /// Like [`read_cached`](Self::read_cached) but from the journal files: blocking I/O.
     pub(crate) fn read_from_disk(&self, after: u64, max: usize) -> Result<Vec<Arc<pb::Alert>>, JournalError> {
         let upto = self.last_seq();
-        Ok(journal::read_after(&self.journal_dir, after, upto, max)?
+        let read: Vec<Arc<pb::Alert>> = journal::read_after(&self.journal_dir, after, upto, max)?
             .into_iter()
             .map(Arc::new)
-            .collect())
+            .collect();
+        Ok(contiguous(read.iter(), after, upto, max))
+    }
+
+    /// The gap a reader at `after` has reached: the numbers from `after + 1` up to the next one the journal
+    /// holds (or the newest published), with the reason. `None` when `after + 1` is readable after all (it
+    /// was published meanwhile). Blocking I/O.
+    pub(crate) fn gap_after(&self, after: u64) -> Result<Option<pb::Gap>, JournalError> {
+        let upto = self.last_seq();
+        if after >= upto {
+            return Ok(None);
+        }
+        let cached = {
+            let tail = self
+                .shared
+                .tail
+                .read()
+                .unwrap_or_else(std::sync::PoisonError::into_inner);
+            match tail.front() {
+                Some(f) if f.seq <= after + 1 => Some(tail.iter().map(|a| a.seq).find(|s| *s > after)),
+                _ => None,
+            }
+        };
+        let next_held = match cached {
+            Some(n) => n,
+            None => journal::read_after(&self.journal_dir, after, upto, 1)?
+                .first()
+                .map(|a| a.seq),
+        };
+        let to = match next_held {
+            Some(n) if n == after + 1 => return Ok(None),
+            Some(n) => n - 1,
+            None => upto,
+        };
+        let from = after + 1;
+        let first_kept = lock(&self.shared.journal).first_seq();
+        let reason = match self.known_gaps.iter().find(|g| g.from <= to && from <= g.to) {
+            Some(g) => g.reason.clone(),
+            None if to < first_kept => "older than the journal's retention (deleted)".to_string(),
+            None => "not in the journal (damaged or deleted while the daemon ran)".to_string(),
+        };
+        Ok(Some(pb::Gap {
+            from_seq: from,
+            to_seq: to,
+            reason,
+        }))
     }
 
     /// The alert with this id, from memory or disk (blocking I/O).
@@ -650,6 +737,49 @@ pub(crate) mod tests {
             Err(WithdrawError::AlreadyWithdrawn(_))
         ));
         assert_eq!(issue_test_flashes(&desk, 1, 0)[0].seq, 5);
+    }
+
+    #[test]
+    fn a_lost_segment_is_read_as_an_explicit_gap_from_memory_and_disk() {
+        let tmp = tempfile::tempdir().unwrap();
+        let cfg = JournalConfig {
+            segment_bytes: 4096,
+            retention: Duration::from_secs(86_400),
+        };
+        let m = Arc::new(Metrics::new());
+        let (desk, _) = Desk::open(tmp.path(), &cfg, m.clone(), CancellationToken::new()).unwrap();
+        issue_test_flashes(&desk, 150, 0);
+        drop(desk);
+        let mut segs: Vec<_> = std::fs::read_dir(tmp.path())
+            .unwrap()
+            .map(|e| e.unwrap().path())
+            .filter(|p| p.extension().is_some_and(|x| x == "gjl"))
+            .collect();
+        segs.sort();
+        assert!(segs.len() >= 3, "{segs:?}");
+        let first_of = |p: &Path| -> u64 {
+            let n = p.file_stem().unwrap().to_str().unwrap();
+            n.trim_start_matches("segment-").parse().unwrap()
+        };
+        let (lost_from, lost_to) = (first_of(&segs[1]), first_of(&segs[2]) - 1);
+        std::fs::remove_file(&segs[1]).unwrap();
+        let (desk, rep) = Desk::open(tmp.path(), &cfg, m, CancellationToken::new()).unwrap();
+        assert_eq!(rep.lost_seqs(), lost_to - lost_from + 1);
+        assert_eq!(desk.last_seq(), 150);
+        let before = lost_from - 1;
+        // Memory and disk both stop at the hole rather than step over it.
+        let mem = desk.read_cached(0, 1000).unwrap();
+        assert_eq!(mem.last().unwrap().seq, before);
+        let disk = desk.read_from_disk(0, 1000).unwrap();
+        assert_eq!(disk.len() as u64, before);
+        assert!(desk.read_cached(before, 10).unwrap().is_empty());
+        let gap = desk.gap_after(before).unwrap().unwrap();
+        assert_eq!((gap.from_seq, gap.to_seq), (lost_from, lost_to));
+        assert!(gap.reason.contains("missing"), "{}", gap.reason);
+        assert_eq!(desk.read_cached(lost_to, 1).unwrap()[0].seq, lost_to + 1);
+        assert_eq!(desk.gap_after(lost_to).unwrap(), None);
+        // New alerts number on after 150.
+        assert_eq!(issue_test_flashes(&desk, 1, 0)[0].seq, 151);
     }
 
     #[test]

@@ -42,6 +42,7 @@ pub(crate) fn engine_config(inst: &InstrumentConfig, search_enabled: bool) -> En
         },
         search_enabled,
         defer_fit: false,
+        trials: inst.trials.clone(),
     }
 }
 
@@ -94,6 +95,13 @@ impl InstrumentDriver {
         let mut cfg = engine_config(inst, true);
         cfg.defer_fit = true;
         Self::with_config(cfg)
+    }
+
+    /// A driver that measures the effective trials (`glint calibrate`): the search at a loose nominal rate,
+    /// without the instrument's calibration.
+    pub(crate) fn measuring(inst: &InstrumentConfig, loose_far_per_year: f64) -> Result<Self, EngineError> {
+        let cfg = engine_config(inst, true);
+        Self::with_config(glint_engine::trials::measuring_config(&cfg, loose_far_per_year))
     }
 
     fn with_config(cfg: EngineConfig) -> Result<Self, EngineError> {

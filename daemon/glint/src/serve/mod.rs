@@ -6,6 +6,7 @@
 //! exits at once.
 //! Bound addresses are logged and written to `state_dir/ports.json` (useful with port 0).
 
+pub(crate) mod diskspace;
 pub(crate) mod driver;
 pub(crate) mod hostprobe;
 pub(crate) mod ingest;
@@ -19,6 +20,7 @@ use std::future::Future;
 use std::net::SocketAddr;
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
+use std::sync::atomic::Ordering;
 use std::time::{Duration, Instant};
 
 use anyhow::{Context, anyhow, bail};
@@ -31,7 +33,9 @@ use tokio_util::task::TaskTracker;
 use crate::config::{Config, InstrumentConfig};
 use crate::desk::Desk;
 use crate::desk::issuing::{self, Issuer};
+use crate::desk::journal::{OpenReport, QUARANTINE};
 use crate::metrics::{Metrics, Watermarks};
+use crate::net::{Gate, RefusalLog};
 use crate::serve::driver::InstrumentDriver;
 use crate::sinks::subscribers::{self, Hub};
 use ingest::{EngineMsg, IngestShared, Slot};
@@ -122,18 +126,69 @@ impl Drop for PidLock {
     }
 }
 
+/// Logs what opening the journal found: damage and lost numbers as errors (never silently), a torn tail and
+/// numbers skipped after an unclean stop as warnings.
+fn log_open_report(report: &OpenReport, last_seq: u64) {
+    if let Some(t) = &report.torn {
+        tracing::warn!(
+            segment = %t.path.display(),
+            offset = t.offset,
+            bytes_cut = t.bytes_cut,
+            reason = %t.reason,
+            "journal: cut a torn tail left by a crash (a copy is in the quarantine directory)"
+        );
+    }
+    for d in &report.damaged {
+        tracing::error!(
+            segment = %d.path.display(),
+            offset = d.offset,
+            bytes = d.bytes,
+            reason = %d.reason,
+            quarantined = %d.quarantined.as_ref().map(|q| q.display().to_string()).unwrap_or_default(),
+            "journal: corruption, {} affected; the records after it are kept",
+            d.seqs()
+        );
+    }
+    for g in &report.gaps {
+        if g.lost {
+            tracing::error!(from = g.from, to = g.to, reason = %g.reason, "journal: alerts missing");
+        } else {
+            tracing::warn!(from = g.from, to = g.to, reason = %g.reason, "journal: numbers skipped");
+        }
+    }
+    if let Some(p) = &report.high_water_problem {
+        tracing::error!("journal: {p}; numbering continues from the newest record");
+    }
+    for d in &report.deleted {
+        tracing::info!(segment = %d.display(), "journal: deleted segment past retention");
+    }
+    tracing::info!(
+        records = report.records,
+        segments = report.segments,
+        damaged = report.damaged.len(),
+        lost_seqs = report.lost_seqs(),
+        last_seq,
+        next_seq = report.next_seq,
+        "journal open"
+    );
+}
+
 fn state_path(state_dir: &Path, instrument: &str) -> PathBuf {
     state_dir.join(format!("acceptance-{instrument}.bin"))
 }
 
-/// Writes a file atomically: temporary file, fsync, rename.
+/// Writes a file atomically: temporary file, fsync, rename. A failed write (a full disk, say) removes its
+/// temporary file rather than leave it behind.
 fn write_atomic(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
     use std::io::Write as _;
     let tmp = path.with_extension("tmp");
-    let mut f = File::create(&tmp)?;
-    f.write_all(bytes)?;
-    f.sync_all()?;
-    std::fs::rename(&tmp, path)
+    let written = File::create(&tmp)
+        .and_then(|mut f| f.write_all(bytes).and_then(|()| f.sync_all()))
+        .and_then(|()| std::fs::rename(&tmp, path));
+    if written.is_err() {
+        let _ = std::fs::remove_file(&tmp);
+    }
+    written
 }
 
 impl Daemon {
@@ -144,7 +199,14 @@ impl Daemon {
         std::fs::create_dir_all(&state_dir)
             .with_context(|| format!("cannot create state_dir {}", state_dir.display()))?;
         let lock = PidLock::take(&state_dir.join("glint.pid"))?;
+        let journal_dir = state_dir.join("journal");
+        diskspace::remove_temporaries(&[&state_dir, &journal_dir, &journal_dir.join(QUARANTINE)]);
+        let (disk_warn, disk_min) = (cfg.daemon.disk_warn_free_bytes, cfg.daemon.disk_min_free_bytes);
+        let free = diskspace::check_at_start(&state_dir, disk_warn, disk_min)?;
         let metrics = Arc::new(Metrics::new());
+        metrics
+            .disk_free_bytes
+            .store(i64::try_from(free).unwrap_or(i64::MAX), Ordering::Relaxed);
         // Cancelled by anything that must stop the daemon, a journal failure first among them.
         let fatal = CancellationToken::new();
         let (desk, report) = Desk::open(
@@ -159,28 +221,24 @@ impl Daemon {
                 state_dir.join("journal").display()
             )
         })?;
-        if let Some(t) = &report.torn {
-            tracing::warn!(
-                segment = %t.path.display(),
-                offset = t.offset,
-                bytes_cut = t.bytes_cut,
-                reason = %t.reason,
-                "journal: cut a torn tail left by a crash"
-            );
-        }
-        for c in &report.corrupt_older {
-            tracing::error!("journal: corrupt record in an older segment: {c}");
-        }
-        for d in &report.deleted {
-            tracing::info!(segment = %d.display(), "journal: deleted segment past retention");
-        }
-        tracing::info!(
-            records = report.records,
-            segments = report.segments,
-            last_seq = desk.last_seq(),
-            "journal open"
+        log_open_report(&report, desk.last_seq());
+        metrics.journal_damaged.store(
+            report.damaged.len() as u64 + u64::from(report.torn.is_some()),
+            Ordering::Relaxed,
         );
+        metrics
+            .journal_lost_seqs
+            .store(report.lost_seqs(), Ordering::Relaxed);
         let desk = Arc::new(desk);
+        tokio::spawn(diskspace::watch(
+            state_dir.clone(),
+            disk_warn,
+            disk_min,
+            desk.clone(),
+            metrics.clone(),
+            fatal.clone(),
+            fatal.child_token(),
+        ));
         let watermarks = Arc::new(Watermarks::new(
             cfg.instruments.iter().map(|i| i.id.clone()).collect(),
         ));
@@ -271,14 +329,30 @@ impl Daemon {
         }
         // The engine threads hold the only senders: the worker ends once they have.
         drop(fit_tx);
+        for w in cfg.startup_warnings() {
+            tracing::warn!("{w}");
+        }
         let ingest = Arc::new(IngestShared {
             slots,
             max_frame: cfg.daemon.max_frame_bytes,
             ack_every: cfg.ingest.ack_every.get(),
             metrics: metrics.clone(),
+            gate: Arc::new(Gate::new(
+                cfg.ingest.gate,
+                RefusalLog::new("ingest", metrics.clone(), |m| &m.refused_connections),
+            )),
+            keepalive: cfg.ingest.keepalive,
+            frame_timeout: cfg.ingest.frame_timeout,
+            max_future_ns: i64::try_from(cfg.ingest.max_future.as_nanos()).unwrap_or(i64::MAX),
         });
         let closing = CancellationToken::new();
         let hub = Arc::new(Hub {
+            gate: Arc::new(Gate::new(
+                cfg.subscribers.gate,
+                RefusalLog::new("subscribers", metrics.clone(), |m| {
+                    &m.refused_subscriber_connections
+                }),
+            )),
             desk: desk.clone(),
             cfg: cfg.subscribers.clone(),
             max_frame: cfg.daemon.max_frame_bytes,

@@ -78,6 +78,10 @@ pub(crate) trait Sink {
     /// alert, so this must return as soon as this one alert is taken.
     async fn deliver(&mut self, alert: &pb::Alert) -> anyhow::Result<()>;
 
+    /// Numbers the journal cannot deliver (damage, a lost segment, retention, numbers never issued), in their
+    /// place in the sequence: tell the peer, never skip silently. The cursor moves past `gap.to_seq` after.
+    async fn gap(&mut self, gap: &pb::Gap) -> anyhow::Result<()>;
+
     /// Everything up to `seq` has been delivered: flush, and keep the cursor if the sink keeps one.
     async fn commit(&mut self, seq: u64) -> anyhow::Result<()>;
 
@@ -124,15 +128,23 @@ pub(crate) async fn drive<S: Sink>(
         while *cursor < desk.last_seq() {
             let chunk = read_chunk(desk, *cursor).await?;
             let Some(newest) = chunk.last().map(|a| a.seq) else {
-                // Nothing readable although the journal is ahead (deleted by retention or corrupt): skip on.
-                tracing::warn!(
-                    sink = sink.name(),
-                    from = *cursor,
-                    "alerts after seq {} are no longer in the journal",
-                    *cursor
-                );
-                *cursor = desk.last_seq();
-                break;
+                // The next number is not in the journal: the desk says how far the gap goes and why.
+                let Some(gap) = gap_after(desk, *cursor).await? else {
+                    continue; // published meanwhile: read again
+                };
+                tracing::warn!(sink = sink.name(), from = gap.from_seq, to = gap.to_seq, reason = %gap.reason, "sending a gap: these alerts are not in the journal");
+                match step(policy, *cursor, &mut stop, sink.gap(&gap)).await {
+                    Ok(true) => {}
+                    Ok(false) => return stopped(sink, *cursor).await,
+                    Err(e) => return Err(last_word(sink, e).await),
+                }
+                match step(policy, *cursor, &mut stop, sink.commit(gap.to_seq)).await {
+                    Ok(true) => {}
+                    Ok(false) => return stopped(sink, *cursor).await,
+                    Err(e) => return Err(last_word(sink, e).await),
+                }
+                *cursor = gap.to_seq;
+                continue;
             };
             for a in &chunk {
                 if !sink.wants(a) {
@@ -226,6 +238,15 @@ async fn last_word<S: Sink>(sink: &mut S, err: SinkError) -> SinkError {
         sink.stalled(&err).await;
     }
     err
+}
+
+/// The gap a sink at `after` has reached (blocking I/O on its own thread); `None` if there is none after all.
+async fn gap_after(desk: &Arc<Desk>, after: u64) -> Result<Option<pb::Gap>, SinkError> {
+    let desk = desk.clone();
+    tokio::task::spawn_blocking(move || desk.gap_after(after))
+        .await
+        .map_err(|e| SinkError::Journal(e.into()))?
+        .map_err(|e| SinkError::Journal(e.into()))
 }
 
 /// The next chunk after `after`: from the desk's in-memory tail when it still holds it, else from disk on a

@@ -431,6 +431,13 @@ impl Sink for RecipientSink {
         Ok(())
     }
 
+    async fn gap(&mut self, gap: &pb::Gap) -> anyhow::Result<()> {
+        // Alerts the journal cannot give back are named in the log; the recipient cannot be mailed what the
+        // daemon no longer has.
+        tracing::error!(recipient = %self.name, from = gap.from_seq, to = gap.to_seq, reason = %gap.reason, "alerts missing from the journal were not emailed");
+        Ok(())
+    }
+
     async fn commit(&mut self, seq: u64) -> anyhow::Result<()> {
         if seq > self.saved.after_seq {
             self.saved.after_seq = seq;
