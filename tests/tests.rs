@@ -4,9 +4,11 @@
 #![allow(clippy::unwrap_used)] // tests may unwrap: a panic is the failure report
 
 mod cli;
+mod email;
 mod hostile;
 mod journal;
 mod layout;
+mod listen_exec;
 mod live;
 mod replay;
 mod service;

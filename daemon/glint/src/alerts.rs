@@ -534,6 +534,31 @@ impl Sequencer {
         alert
     }
 
+    /// An operator's TEST alert: kind TEST, instrument "test", no trigger; `reason` says who asked and why.
+    pub(crate) fn test_alert(&mut self, operator: &str, note: &str, issued_gps_ns: i64) -> pb::Alert {
+        let seq = self.next_seq();
+        self.next_seq = seq + 1;
+        let who = if operator.trim().is_empty() {
+            "an operator"
+        } else {
+            operator.trim()
+        };
+        let note = note.trim();
+        let reason = if note.is_empty() {
+            format!("TEST alert requested by {who}; not a detection")
+        } else {
+            format!("TEST alert requested by {who}: {note}; not a detection")
+        };
+        let mut alert = pb::Alert {
+            kind: pb::AlertKind::Test as i32,
+            instrument: "test".into(),
+            reason,
+            ..Default::default()
+        };
+        stamp(&mut alert, seq, issued_gps_ns);
+        alert
+    }
+
     /// An operator's withdrawal of any alert by id.
     pub(crate) fn operator_withdrawal(
         &mut self,

@@ -17,7 +17,7 @@ pub(crate) const EXIT_CONFIG: u8 = 2;
     name = "glint",
     version,
     about,
-    after_help = "Exit codes: 0 success, 1 error while running, 2 configuration problems."
+    after_help = "Exit codes: 0 success, 1 error while running, 2 configuration problems, 3 (listen --exec) a handler failed after its retries."
 )]
 pub(crate) struct Cli {
     #[command(subcommand)]
@@ -52,6 +52,8 @@ enum Command {
     Listen(crate::commands::listen::ListenArgs),
     /// Withdraw an alert (needs the operator token).
     Withdraw(crate::commands::withdraw::WithdrawArgs),
+    /// Ask a running daemon for a TEST alert through every sink (needs the operator token).
+    TestAlert(crate::commands::test_alert::TestAlertArgs),
     /// Read a state directory's alert journal offline: verify, list, show, export (never modifies it).
     Journal(crate::commands::journal::JournalArgs),
 }
@@ -70,6 +72,7 @@ pub(crate) fn dispatch(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Feed(a) => crate::commands::feed::run(a),
         Command::Listen(a) => crate::commands::listen::run(a),
         Command::Withdraw(a) => crate::commands::withdraw::run(a),
+        Command::TestAlert(a) => crate::commands::test_alert::run(a),
         Command::Journal(a) => crate::commands::journal::run(&a),
     };
     match result {

@@ -134,6 +134,15 @@ pub(crate) struct Metrics {
     pub(crate) subscribers_dropped: AtomicU64,
     /// Journal fsyncs by the desk's committer; alerts over fsyncs is how much group commit saves.
     pub(crate) journal_fsyncs: AtomicU64,
+    /// Emails the relay accepted, one per alert (digests counted apart).
+    pub(crate) email_sent: AtomicU64,
+    /// Digest emails the relay accepted (each stands for several alerts held back by a rate limit or quiet
+    /// hours).
+    pub(crate) email_digests: AtomicU64,
+    /// Emails the relay rejected for good (5xx); logged with recipient and alert ids, then moved past.
+    pub(crate) email_rejected: AtomicU64,
+    /// Attempts that failed for a transient reason (4xx, refused, timeout) and were retried.
+    pub(crate) email_retries: AtomicU64,
     /// Damaged stretches of the journal found (and quarantined) when it was opened, torn tail included.
     pub(crate) journal_damaged: AtomicU64,
     /// Sequence numbers whose alerts the journal lost (damage, missing segments), found when it was opened.
@@ -168,6 +177,10 @@ impl Metrics {
             subscribers: AtomicI64::new(0),
             subscribers_dropped: AtomicU64::new(0),
             journal_fsyncs: AtomicU64::new(0),
+            email_sent: AtomicU64::new(0),
+            email_digests: AtomicU64::new(0),
+            email_rejected: AtomicU64::new(0),
+            email_retries: AtomicU64::new(0),
             journal_damaged: AtomicU64::new(0),
             journal_lost_seqs: AtomicU64::new(0),
             disk_free_bytes: AtomicI64::new(0),
@@ -267,6 +280,26 @@ impl Metrics {
                 "glint_journal_fsyncs_total",
                 "Journal fsyncs (each covers every alert queued while the previous one ran).",
                 get(&self.journal_fsyncs),
+            ),
+            (
+                "glint_email_sent_total",
+                "Alert emails accepted by the relay (digests apart).",
+                get(&self.email_sent),
+            ),
+            (
+                "glint_email_digests_total",
+                "Digest emails accepted by the relay, each for alerts held by a rate limit or quiet hours.",
+                get(&self.email_digests),
+            ),
+            (
+                "glint_email_rejected_total",
+                "Emails the relay rejected for good (5xx); logged with recipient and alert ids, then skipped.",
+                get(&self.email_rejected),
+            ),
+            (
+                "glint_email_retries_total",
+                "Email attempts that failed transiently (4xx, refused, timeout) and were retried.",
+                get(&self.email_retries),
             ),
             (
                 "glint_journal_damaged_total",
