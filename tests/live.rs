@@ -14,7 +14,7 @@ use glint_wire::pb::{self, RefusalCode, ingest_reply, subscriber_frame};
 use crate::util::{self, Conn, Daemon, Got, INSTRUMENT, OPERATOR_TOKEN, PRODUCER_TOKEN, SUBSCRIBER_TOKEN};
 
 /// Streams `frames` (Hello excluded) as a good producer; returns the final Ack after the last frame.
-fn stream_all(addr: SocketAddr, frames: &[pb::ProducerFrame]) -> pb::Ack {
+pub(crate) fn stream_all(addr: SocketAddr, frames: &[pb::ProducerFrame]) -> pb::Ack {
     let (mut c, reply) = util::producer(addr, INSTRUMENT, PRODUCER_TOKEN, 1);
     assert!(
         matches!(reply.body, Some(ingest_reply::Body::Welcome(_))),

@@ -5,9 +5,11 @@
 
 mod bus;
 mod cli;
+mod email;
 mod hostile;
 mod journal;
 mod layout;
+mod listen_exec;
 mod live;
 mod replay;
 mod service;

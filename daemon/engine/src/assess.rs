@@ -5,14 +5,16 @@
 
 use glint_science::geometry::gaussian_containment;
 use glint_science::instrument::InstrumentResponse;
-use glint_science::poisson::{ln_sf, sigma_from_ln_p};
+use glint_science::poisson::p_from_sigma;
 
 use crate::candidate::Candidate;
 use crate::config::AssessConfig;
+use crate::engine::pre_end;
 use crate::finding::{Assessment, Flash, Verdict, Withdrawal};
-use crate::fit::FitJob;
+use crate::fit::{FitJob, LightCurve, best_strength, ln_likelihood};
+use crate::shape::{ShapeInput, light_curve_shape, precursor_test};
 use crate::sky::{angle_deg, unit_vector};
-use crate::stats::{clamp_sigma, median_sorted};
+use crate::stats::{count_sigma, median_sorted};
 
 /// What the engine hands over for one candidate.
 pub(crate) struct AssessInput<'a> {
@@ -36,29 +38,6 @@ pub(crate) struct AssessInput<'a> {
     pub(crate) cfg: &'a AssessConfig,
 }
 
-/// p-value and clamped significance of `n` or more counts on `b`.
-fn excess(n: u64, b: f64) -> (f64, f64) {
-    let ln_p = ln_sf(n, b.max(0.0));
-    (ln_p.exp(), clamp_sigma(sigma_from_ln_p(ln_p)))
-}
-
-/// Photons an evaporation burst puts in the `pre_ns` before its flash span, given `signal` photons (above
-/// background) over the span of `span_ns` ending at the explosion. Above a fixed energy threshold the light
-/// curve rises as tau^-1/2 toward the explosion (docs/science.md section 2), so the counts in the last tau grow as
-/// sqrt(tau) and the pre-window holds signal x (sqrt(1 + pre / span) - 1) [calc] from the formula. For a real
-/// instrument this is an upper bound: the spectrum softens as tau grows, and the effective area falls toward
-/// low energies. The span is taken at least as long as the pre-window, so a short flash cannot excuse a
-/// long pre-flash excess (a burst bright enough to fill the pre-window would have crossed on a timescale as
-/// long, and its span would reach back that far).
-pub(crate) fn evaporation_rise(signal: f64, span_ns: i64, pre_ns: i64) -> f64 {
-    // A NaN signal (none can arise from finite counts) gives no rise rather than a NaN expectation.
-    if signal.is_nan() || signal <= 0.0 || pre_ns <= 0 {
-        return 0.0;
-    }
-    let span = span_ns.max(pre_ns) as f64;
-    signal * ((1.0 + pre_ns as f64 / span).sqrt() - 1.0)
-}
-
 /// Fraction of photons whose time lies within `precision_ns` of another photon's.
 pub(crate) fn identical_time_fraction(times: &[i64], precision_ns: i64) -> f64 {
     if times.len() < 2 {
@@ -77,7 +56,8 @@ pub(crate) fn identical_time_fraction(times: &[i64], precision_ns: i64) -> f64 {
 
 /// RMS angular distance of the flash photons from their centroid over what a Gaussian PSF gives:
 /// E[d^2] about the sample centroid is 2 sigma^2 (n - 1) / n (common practice, no source), with sigma^2
-/// averaged over the photons' energies.
+/// averaged over the photons' energies. Reported only: inside the search disc it cannot grow much past 1
+/// (the disc bounds the distances), so no rule reads it; see [`extension_sigma`].
 pub(crate) fn spread_ratio(f: &Flash, response: &InstrumentResponse) -> f64 {
     let n = f.photons.len();
     if n < 2 {
@@ -101,61 +81,188 @@ pub(crate) fn spread_ratio(f: &Flash, response: &InstrumentResponse) -> f64 {
     }
 }
 
+/// Each photon's PSF is taken at its energy lowered by this many resolution sigmas (see `extension_sigma`).
+const SPREAD_ENERGY_SHIFT: f64 = 0.25;
+
+/// Extra widths (degrees, added in quadrature to the PSF) the spread test tries.
+const EXTENSIONS_DEG: [f64; 10] = [0.1, 0.2, 0.35, 0.5, 0.75, 1.0, 1.4, 2.0, 2.8, 4.0];
+
+/// Significance of a spread wider than the PSF, from the photons of the flash window within `cone_deg` of
+/// the flash (distance from it in degrees, reconstructed energy): the likelihood ratio of a source of
+/// Gaussian width sqrt(sigma_PSF^2 + w^2), maximised over w and its counts, against a point source
+/// (w = 0), both over a flat background of `background` photons in the cone (small-angle densities per
+/// deg^2; the usual extension test, common practice, no source). Under a point source the ratio follows
+/// half a chi-squared of one degree of freedom (w >= 0 is on the boundary), so sqrt(2 Delta ln L) is its
+/// one-sided normal equivalent. Each photon's PSF is taken at its energy lowered by a quarter of a resolution sigma:
+/// on steep spectra a photon's true energy is more often below its reconstructed one, and a PSF taken at
+/// the reconstructed energy would be too narrow and call bright sources wide.
+pub(crate) fn extension_sigma(
+    cone: &[(f64, f64)],
+    background: f64,
+    cone_deg: f64,
+    response: &InstrumentResponse,
+) -> f64 {
+    if cone.len() < 3 || cone_deg <= 0.0 {
+        return 0.0;
+    }
+    let area = std::f64::consts::PI * cone_deg * cone_deg;
+    // A floor on the background density: a window far shorter than the background's spacing must not make
+    // one stray photon look infinitely unlikely.
+    let bdens = background.max(0.01) / area;
+    let sig2: Vec<f64> = cone
+        .iter()
+        .map(|&(_, e)| {
+            let lowered = e * (-SPREAD_ENERGY_SHIFT * response.energy_sigma_ln(e).clamp(0.0, 2.0)).exp();
+            response
+                .psf_sigma_deg(lowered.max(response.energy_min_gev()))
+                .powi(2)
+        })
+        .collect();
+    let mut s2_sorted = sig2.clone();
+    s2_sorted.sort_by(f64::total_cmp);
+    let s2_med = median_sorted(&s2_sorted);
+    let mut ratios = Vec::with_capacity(cone.len());
+    let mut ln_l_at = |w2: f64| -> f64 {
+        ratios.clear();
+        ratios.extend(cone.iter().zip(&sig2).map(|(&(d, _), &s2)| {
+            let v = s2 + w2;
+            (-d * d / (2.0 * v)).exp() / (2.0 * std::f64::consts::PI * v) / bdens
+        }));
+        let norm = -(-cone_deg * cone_deg / (2.0 * (s2_med + w2))).exp_m1();
+        match best_strength(&ratios, norm) {
+            Ok(q) => ln_likelihood(&ratios, norm, q),
+            Err(_) => 0.0,
+        }
+    };
+    let point = ln_l_at(0.0);
+    let wide = EXTENSIONS_DEG
+        .iter()
+        .map(|&w| ln_l_at(w * w))
+        .fold(f64::NEG_INFINITY, f64::max);
+    let ts = 2.0 * (wide - point);
+    if ts.is_finite() && ts > 0.0 {
+        ts.sqrt()
+    } else {
+        0.0
+    }
+}
+
 /// Builds the assessment and, for an instrumental verdict, the withdrawal.
 ///
-/// Verdict rules, in order: `instrumental` if any instrumental sign passes its threshold; else `undecided`
-/// if dead time covers more than `max_dead_fraction` of the post-flash window or the input ended first;
-/// else `persistent` if the post- or pre-flash excess passes its significance; else `isolated`.
+/// Verdict rules, in order: `instrumental` if the best trigger's flash carries an instrumental sign (all-sky
+/// jump, identical timestamps, spread wider than the PSF; set when the flash was decided); else
+/// `undecided` if dead time covers more than `max_dead_fraction` of the post-flash window or the input
+/// ended first; else `persistent` if the post- or pre-flash excess passes its significance or the flash's
+/// own light curve decays (`decaying_shape`); else `isolated`.
 ///
 /// The post-flash window runs from the end of the best trigger's window to the end of the persistence
-/// window. An evaporation burst is brightest at its end, so its best window ends at the explosion and the
-/// model puts nothing after it; an afterglow-like burst peaks and fades, so its tail follows its best window.
-/// (The last crossing would start the window too late: a fading burst keeps crossing on the longer
-/// timescales while its tail is still bright.) The pre-flash window is the `pre_window_s` before the flash
-/// span; its expectation is the background plus the rise an evaporation burst ending at the best window's
-/// end would put there (`evaporation_rise`), so a burst's own rising light curve is not called persistent.
+/// window. The pre-flash window is the `pre_window_s` ending just before the best trigger's earliest photon,
+/// so emission at the spot before the burst is seen even when crossings it made were merged into the
+/// candidate. Its expectation is the background plus the rise the best-fitting instrument-folded evaporation
+/// template puts there (reported apart, `pre_rise`).
+///
+/// The light-curve test (`shape.rs`) reads the disc photons from the start of the best trigger's window to
+/// the end of the persistence window: an afterglow-like burst's best window may swallow most of its decay,
+/// leaving the post-flash window only a faint tail, but the decay shows plainly inside the flash. A shape
+/// is called decaying when the decaying family beats the evaporation template by `shape_log_ratio_min` and
+/// the template's own goodness of fit falls below `shape_p_max`: both, so that neither a poor but
+/// un-decaying template fit nor a slight preference for a decay on a faint flash decides alone.
 pub(crate) fn assess(inp: &AssessInput<'_>) -> (Assessment, Option<Withdrawal>) {
     let c = inp.cand;
     let cfg = inp.cfg;
     let frac = (inp.density * inp.omega_r).clamp(0.0, 1.0);
+    let disc_rate = inp.rate_hz * frac;
     let mut flags: Vec<String> = Vec::new();
 
-    // Persistence: the disc after the best trigger's window and before the flash span, against the all-sky
-    // photons of the same windows times the disc's share of the acceptance (dead time needs no correction:
-    // it has no photons in either).
+    // Persistence after the flash: the disc after the best trigger's window, against the all-sky photons
+    // of the same window times the disc's share of the acceptance (dead time needs no correction: it has
+    // no photons in either).
     let post_from = c.best.end_ns;
     let in_disc = |a: i64, b: i64| c.photons.iter().filter(|p| p.t > a && p.t <= b).count() as u64;
     let post_counts = in_disc(post_from, inp.close);
     let post_background = inp.post_all_sky as f64 * frac;
-    let (post_p_value, post_sigma) = excess(post_counts, post_background);
-    let pre_from = c.span_start.saturating_sub(inp.pre_ns);
-    let pre_counts = in_disc(pre_from, c.span_start);
-    let span_ns = post_from.saturating_sub(c.span_start);
-    let span_signal = in_disc(c.span_start, post_from) as f64 - inp.rate_hz * frac * span_ns as f64 * 1e-9;
-    let rise = evaporation_rise(span_signal, span_ns, inp.pre_ns);
-    let pre_background = c.pre_all_sky as f64 * frac + rise;
-    let (pre_p_value, pre_sigma) = excess(pre_counts, pre_background);
+    let (post_p_value, post_sigma) = count_sigma(post_counts, post_background);
 
-    // Instrumental signs.
-    let all_sky_sigma = if c.best_all_sky_expected > 0.0 {
-        excess(c.best_all_sky, c.best_all_sky_expected).1
-    } else {
-        0.0
+    // The flash's own light curve.
+    let pre_to = pre_end(&c.best);
+    let pre_from = pre_to.saturating_sub(inp.pre_ns);
+    let best_len = c.best.end_ns.saturating_sub(c.best.start_ns);
+    let shape_times: Vec<i64> = c
+        .photons
+        .iter()
+        .map(|p| p.t)
+        .filter(|&t| t > c.best.start_ns && t <= inp.close)
+        .collect();
+    let tau_max = inp.close.saturating_sub(pre_from) as f64 * 1e-9;
+    let curve = LightCurve::build(
+        inp.response,
+        c.zenith0,
+        tau_max,
+        Some((inp.search_radius_deg, 0.0)),
+    )
+    .ok();
+    let shape = curve.as_ref().and_then(|curve| {
+        light_curve_shape(
+            &ShapeInput {
+                times_ns: &shape_times,
+                start_ns: c.best.start_ns,
+                end_ns: inp.close,
+                background_hz: disc_rate,
+                delta_ns: inp.response.clock_precision_ns(),
+                t0_from_ns: c.best.start_ns,
+                t0_to_ns: c.best.end_ns.saturating_add(best_len),
+                onset_to_ns: c.best.end_ns,
+            },
+            curve,
+        )
+    });
+    let decaying =
+        shape.is_some_and(|s| s.log_ratio > cfg.shape_log_ratio_min && s.template_p < cfg.shape_p_max);
+    if shape.is_none() {
+        flags.push("shape_untested".into());
+    }
+
+    // Before the flash: background from the all-sky photons of the window; the burst's own rise and a
+    // possible precursor from the joint fit of `shape::precursor_test`. Its significance is sqrt(2 Delta
+    // ln L) of a flat precursor (one-sided, on the boundary: half a chi-squared of one degree of freedom)
+    // when one improves the fit; otherwise the counts' own signed significance against background plus
+    // rise, which is then no excess or a deficit.
+    let pre_counts = in_disc(pre_from, pre_to);
+    let pre_background = c.pre_all_sky as f64 * frac;
+    let span_times: Vec<i64> = c
+        .photons
+        .iter()
+        .map(|p| p.t)
+        .filter(|&t| t > pre_from && t <= inp.close)
+        .collect();
+    let precursor = match (&shape, &curve) {
+        (Some(s), Some(curve)) => precursor_test(
+            &span_times,
+            &s.template,
+            curve,
+            disc_rate,
+            pre_from,
+            pre_to,
+            inp.close,
+        ),
+        _ => None,
     };
-    let times: Vec<i64> = c.best.photons.iter().map(|p| p.time_ns).collect();
-    let identical = identical_time_fraction(&times, inp.response.clock_precision_ns());
+    let pre_rise = precursor.map_or(0.0, |p| p.rise);
+    let (pre_p_value, pre_sigma) = match precursor {
+        Some(p) if p.log_ratio > 0.0 && p.rate_hz > 0.0 => {
+            let z = p.log_ratio.sqrt();
+            (p_from_sigma(z), z)
+        }
+        _ => {
+            let (p, z) = count_sigma(pre_counts, pre_background + pre_rise);
+            (p, z.min(0.0))
+        }
+    };
+
+    // Instrumental signs, from the best trigger's flash.
+    let instrumental: Vec<String> = c.best.flags.clone();
+    flags.extend(instrumental.iter().cloned());
     let spread = spread_ratio(&c.best, inp.response);
-    let mut instrumental = Vec::new();
-    if all_sky_sigma > cfg.all_sky_sigma_max {
-        instrumental.push("all_sky_jump");
-    }
-    if identical > cfg.identical_fraction_max {
-        instrumental.push("identical_timestamps");
-    }
-    if spread > cfg.spread_ratio_max {
-        instrumental.push("wide_spread");
-    }
-    flags.extend(instrumental.iter().map(|s| (*s).to_owned()));
 
     let window_ns = inp.close.saturating_sub(post_from);
     let dead_fraction = if window_ns > 0 {
@@ -178,6 +285,9 @@ pub(crate) fn assess(inp: &AssessInput<'_>) -> (Assessment, Option<Withdrawal>) 
     if pre_excess {
         flags.push("pre_excess".into());
     }
+    if decaying {
+        flags.push("decaying_shape".into());
+    }
     if c.capped {
         flags.push("photons_capped".into());
     }
@@ -189,7 +299,7 @@ pub(crate) fn assess(inp: &AssessInput<'_>) -> (Assessment, Option<Withdrawal>) 
         Verdict::Instrumental
     } else if too_dead || inp.cut_short {
         Verdict::Undecided
-    } else if post_excess || pre_excess {
+    } else if post_excess || pre_excess || decaying {
         Verdict::Persistent
     } else {
         Verdict::Isolated
@@ -210,13 +320,20 @@ pub(crate) fn assess(inp: &AssessInput<'_>) -> (Assessment, Option<Withdrawal>) 
         post_sigma,
         pre_counts,
         pre_background,
+        pre_rise,
         pre_p_value,
         pre_sigma,
         flags,
         all_sky_counts: c.best_all_sky,
         all_sky_expected: c.best_all_sky_expected,
-        identical_time_fraction: identical,
+        all_sky_sigma: c.best.all_sky_sigma,
+        identical_time_fraction: c.best.identical_time_fraction,
         spread_ratio: spread,
+        spread_sigma: c.best.spread_sigma,
+        shape_log_ratio: shape.map_or(0.0, |s| s.log_ratio),
+        shape_template_p: shape.map_or(1.0, |s| s.template_p),
+        shape_decay_index: shape.map_or(0.0, |s| s.decay_index),
+        shape_decay_time_s: shape.map_or(0.0, |s| s.decay_time_s),
         dead_seconds: inp.dead_post_ns as f64 * 1e-9,
         fit: crate::fit::FitResult::pending(),
         fit_job: Some(fit),
@@ -268,24 +385,5 @@ mod tests {
         assert_eq!(identical_time_fraction(&[0, 100, 200, 300], 0), 0.0);
         assert_eq!(identical_time_fraction(&[0, 10, 200, 300], 10), 0.5);
         assert_eq!(identical_time_fraction(&[7], 0), 0.0);
-    }
-
-    #[test]
-    fn evaporation_rise_follows_the_square_root_law() {
-        let s = 1_000_000_000;
-        // [calc] from the formula: N(< tau) ~ sqrt(tau), so 100 photons in the last 30 s give
-        // 100 (sqrt(60 / 30) - 1) = 41.42 in the 30 s before.
-        assert!((evaporation_rise(100.0, 30 * s, 30 * s) - 41.421_356).abs() < 1e-5);
-        // 300 s of span: 100 (sqrt(330 / 300) - 1) = 4.881.
-        assert!((evaporation_rise(100.0, 300 * s, 30 * s) - 4.880_885).abs() < 1e-5);
-        // A span shorter than the pre-window counts as long as it: a 1 s flash excuses no more than a 30 s one.
-        assert_eq!(
-            evaporation_rise(10.0, s, 30 * s),
-            evaporation_rise(10.0, 30 * s, 30 * s)
-        );
-        assert_eq!(evaporation_rise(0.0, 30 * s, 30 * s), 0.0);
-        assert_eq!(evaporation_rise(-3.0, 30 * s, 30 * s), 0.0);
-        assert_eq!(evaporation_rise(f64::NAN, 30 * s, 30 * s), 0.0);
-        assert_eq!(evaporation_rise(50.0, 30 * s, 0), 0.0);
     }
 }

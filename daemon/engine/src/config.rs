@@ -56,8 +56,8 @@ pub struct AssessConfig {
     pub persistence_min_s: f64,
     /// The persistence window is at least this many times the candidate's timescale. Default 10.
     pub persistence_timescale_factor: f64,
-    /// Window before the flash checked for earlier emission, seconds. Default 30 (the longest default
-    /// timescale).
+    /// Window before the flash checked for earlier emission, seconds. Default 120: a precursor at the spot
+    /// must be seen over minutes, and the burst's own rise there is modelled, not guessed.
     pub pre_window_s: f64,
     /// Persistent when the post-flash excess exceeds this significance. Default 3.
     pub post_sigma_max: f64,
@@ -69,9 +69,17 @@ pub struct AssessConfig {
     /// Instrumental when more than this fraction of the flash photons share a timestamp (within the clock
     /// precision) with another flash photon. Default 0.5.
     pub identical_fraction_max: f64,
-    /// Instrumental when the flash photons' RMS spread about their centroid exceeds the PSF's expectation by
-    /// this factor. Default 2.5.
+    /// No longer read by any rule (the disc bounds the ratio it compared; see `spread_sigma_max`); kept so
+    /// that configurations naming it still load. Default 2.5.
     pub spread_ratio_max: f64,
+    /// Instrumental when the flash window's photons within a few search radii are spread wider than the PSF
+    /// at this significance (`Flash::spread_sigma`). Default 3.5.
+    pub spread_sigma_max: f64,
+    /// Persistent (`decaying_shape`) when the flash's light curve fits the evaporation template with a
+    /// goodness-of-fit p-value below this ... Default 1e-3.
+    pub shape_p_max: f64,
+    /// ... and a decaying shape beats the template by more than this in 2 Delta ln L. Default 0.
+    pub shape_log_ratio_min: f64,
     /// Undecided when dead time covers more than this fraction of the persistence window. Default 0.1.
     pub max_dead_fraction: f64,
     /// Most photons a candidate keeps for its assessment and fit (those within three search radii); more
@@ -90,12 +98,15 @@ impl Default for AssessConfig {
         Self {
             persistence_min_s: 30.0,
             persistence_timescale_factor: 10.0,
-            pre_window_s: 30.0,
+            pre_window_s: 120.0,
             post_sigma_max: 3.0,
             pre_sigma_max: 3.0,
             all_sky_sigma_max: 5.0,
             identical_fraction_max: 0.5,
             spread_ratio_max: 2.5,
+            spread_sigma_max: 3.5,
+            shape_p_max: 1.0,
+            shape_log_ratio_min: 10.0,
             max_dead_fraction: 0.1,
             max_photons: 10_000,
             max_open_candidates: 256,
@@ -165,6 +176,9 @@ impl EngineConfig {
             1.0,
         );
         range("assess.spread_ratio_max", a.spread_ratio_max, 0.0, 1e6);
+        range("assess.spread_sigma_max", a.spread_sigma_max, 0.0, 1e6);
+        range("assess.shape_p_max", a.shape_p_max, 0.0, 1.0);
+        range("assess.shape_log_ratio_min", a.shape_log_ratio_min, -1e6, 1e6);
         range("assess.max_dead_fraction", a.max_dead_fraction, 0.0, 1.0);
         range(
             "assess.background_spectral_index",

@@ -7,6 +7,8 @@ use glint_science::calibration::sigma_post_trials;
 use glint_science::critical::{CriticalTable, false_crossing_probability, per_seed_bound};
 use glint_science::geometry::disc_solid_angle_sr;
 use glint_science::poisson::{ln_sf, sigma_from_ln_p};
+
+use crate::assess::{extension_sigma, identical_time_fraction};
 use glint_wire::pb::{PhotonBatch, StreamStatus};
 
 use crate::assess::{self, AssessInput};
@@ -19,7 +21,7 @@ use crate::finding::{Finding, FindingSink, Flash, PhotonRec};
 use crate::localise::{LocPhoton, Localisation, localise};
 use crate::reorder::{Photon, Reorder};
 use crate::sky::{Disc, SkyIndex, Step, radec_of, unit_vector};
-use crate::stats::clamp_sigma;
+use crate::stats::{count_sigma, finite_sigma};
 
 /// Seconds in a Julian year (365.25 days): the unit of every false-alarm rate.
 pub const SECONDS_PER_YEAR: f64 = 31_557_600.0;
@@ -817,23 +819,21 @@ impl Engine {
                 }
             }
             let start = t.saturating_sub(dt);
-            let pre_all_sky = self.pre_all_sky(start);
             let c = &mut self.cands[ci];
             c.mask |= mask;
             c.t_last = c.t_last.max(t);
-            if start < c.span_start {
-                c.span_start = start;
-                c.pre_all_sky = pre_all_sky;
-            }
+            c.span_start = c.span_start.min(start);
             if ln_p < c.best.ln_p {
                 let id = c.id;
-                let flash = self.build_flash(i, k, n, b, ln_p, id);
-                let (all_sky, expected) = self.flash_all_sky(&flash, g.bin);
+                let mut flash = self.build_flash(i, k, n, b, ln_p, id);
+                let (all_sky, expected) = self.flash_signs(&mut flash, g.bin);
+                let pre_all_sky = self.pre_all_sky(pre_end(&flash));
                 let c = &mut self.cands[ci];
                 c.best = flash;
                 c.best_all_sky = all_sky;
                 c.best_all_sky_expected = expected;
                 c.released_at_best = released;
+                c.pre_all_sky = pre_all_sky;
             }
             return;
         }
@@ -843,9 +843,12 @@ impl Engine {
         }
         let id = self.next_id;
         self.next_id += 1;
-        let flash = self.build_flash(i, k, n, b, ln_p, id);
-        // Out first: what follows (the all-sky count, the candidate's photons back through the pre-window) is
-        // for the assessment, and walking it would delay the alert.
+        let mut flash = self.build_flash(i, k, n, b, ln_p, id);
+        // The instrumental signs need no later data: they go out on the flash itself, so a follow-up acting
+        // on it knows at once. One walk of a cone a few search radii wide over the flash window.
+        let (all_sky, expected) = self.flash_signs(&mut flash, g.bin);
+        // Out first: what follows (the candidate's photons back through the pre-window) is for the
+        // assessment, and walking it would delay the alert.
         out.emit(Finding::Flash(flash.clone()));
         let pos0 = unit_vector(flash.ra_deg, flash.dec_deg);
         // The seeds scatter by the PSF at their own energies, the widest at the lowest: with the flash's
@@ -855,7 +858,6 @@ impl Engine {
         let sigma = resp.psf_sigma_deg(resp.energy_min_gev());
         let r = self.cfg.search_radius_deg;
         let merge_deg = (3.0 * r).max(r + 3.0 * sigma).min(90.0);
-        let (all_sky, expected) = self.flash_all_sky(&flash, g.bin);
         let start = t.saturating_sub(dt);
         let mut photons = Vec::new();
         let mut capped = false;
@@ -908,7 +910,7 @@ impl Engine {
             span_start: start,
             t_last: t,
             mask,
-            pre_all_sky: self.pre_all_sky(start),
+            pre_all_sky: self.pre_all_sky(pre_end(&flash)),
             released_at_best: self.all_sky.released(),
             best: flash,
             best_all_sky: all_sky,
@@ -919,30 +921,41 @@ impl Engine {
         });
     }
 
-    /// All-sky photons in (start - pre, start].
+    /// All-sky photons in (end - pre, end].
     fn pre_all_sky(&self, start: i64) -> u64 {
         self.all_sky.count(start.saturating_sub(self.p.pre_ns), start)
     }
 
-    /// All-sky photons in a flash window with the flash's own source left out, and their expectation from
-    /// the rate over the rate window just before it (outside the flash, so a jump is not diluted). The source
-    /// is left out with a cone of max(3 r, r + 4 sigma_PSF) at the instrument's lowest energy: a bright soft
-    /// source puts most of its photons outside the search disc, and its PSF's wings must not look like an
-    /// all-sky jump (4 sigma holds all but exp(-8) of a Gaussian PSF's photons).
-    fn flash_all_sky(&self, f: &Flash, bin: Option<u16>) -> (u64, f64) {
+    /// The instrumental signs of a flash, set on it (`flags` and the numbers behind them): an all-sky jump,
+    /// identical timestamps, and a spread wider than the PSF. Returns the all-sky photons in the flash window
+    /// with the flash's own source left out and their expectation from the rate over the rate window just
+    /// before it (outside the flash, so a jump is not diluted). The source is left out with a cone of
+    /// max(3 r, r + 4 sigma_PSF) at the instrument's lowest energy: a bright soft source puts most of its
+    /// photons outside the search disc, and its PSF's wings must not look like an all-sky jump (4 sigma holds
+    /// all but exp(-8) of a Gaussian PSF's photons). The photons of that cone are also those the spread test
+    /// reads: a cluster wider than the PSF puts most of them outside the search disc.
+    fn flash_signs(&self, f: &mut Flash, bin: Option<u16>) -> (u64, f64) {
         let resp = &self.cfg.response;
         let r = self.cfg.search_radius_deg;
         let own_deg = (3.0 * r)
             .max(r + 4.0 * resp.psf_sigma_deg(resp.energy_min_gev()))
             .min(90.0);
         let (centre, cos_own) = (unit_vector(f.ra_deg, f.dec_deg), own_deg.to_radians().cos());
-        let mut own = 0u64;
-        self.sky
-            .for_each_hot_in_cone(f.ra_deg, f.dec_deg, own_deg, f.start_ns.saturating_add(1), |h| {
-                if h.t <= f.end_ns && dot(h.v, centre) >= cos_own {
-                    own += 1;
+        let mut cone: Vec<(f64, f64)> = Vec::new();
+        let end = f.end_ns;
+        self.sky.for_each_in_cone(
+            f.ra_deg,
+            f.dec_deg,
+            own_deg,
+            f.start_ns.saturating_add(1),
+            |h, c| {
+                let cos_d = dot(h.v, centre);
+                if h.t <= end && cos_d >= cos_own {
+                    cone.push((cos_d.clamp(-1.0, 1.0).acos().to_degrees(), f64::from(c.energy)));
                 }
-            });
+            },
+        );
+        let own = cone.len() as u64;
         let counts = self.all_sky.count(f.start_ns, f.end_ns).saturating_sub(own);
         let start = self.clock.start.unwrap_or(f.start_ns);
         let live = |a: i64, b: i64| {
@@ -962,7 +975,29 @@ impl Engine {
             .zip(bin)
             .map_or(0.0, |(m, b)| m.dens[usize::from(b)]);
         let own_fraction = (a * disc_solid_angle_sr(own_deg)).clamp(0.0, 1.0);
-        let expected = rate * live(f.start_ns, f.end_ns) as f64 * 1e-9 * (1.0 - own_fraction);
+        let window_s = live(f.start_ns, f.end_ns) as f64 * 1e-9;
+        let expected = rate * window_s * (1.0 - own_fraction);
+
+        let a_cfg = &self.cfg.assess;
+        f.all_sky_sigma = if expected > 0.0 {
+            count_sigma(counts, expected).1
+        } else {
+            0.0
+        };
+        let times: Vec<i64> = f.photons.iter().map(|p| p.time_ns).collect();
+        f.identical_time_fraction = identical_time_fraction(&times, resp.clock_precision_ns());
+        let cone_background = self.model.as_ref().map_or(0.0, |m| m.rate_hz) * window_s * own_fraction;
+        f.spread_sigma = extension_sigma(&cone, cone_background, own_deg, resp);
+        f.flags.clear();
+        if f.all_sky_sigma > a_cfg.all_sky_sigma_max {
+            f.flags.push("all_sky_jump".into());
+        }
+        if f.identical_time_fraction > a_cfg.identical_fraction_max {
+            f.flags.push("identical_timestamps".into());
+        }
+        if f.spread_sigma > a_cfg.spread_sigma_max {
+            f.flags.push("wide_spread".into());
+        }
         (counts, expected)
     }
 
@@ -1040,9 +1075,13 @@ impl Engine {
             background: b,
             p_value: ln_p.exp(),
             ln_p,
-            sigma: clamp_sigma(sigma_from_ln_p(ln_p)),
-            far_per_year: far,
-            sigma_post_trials: clamp_sigma(sigma_post_trials(far)),
+            sigma: finite_sigma(sigma_from_ln_p(ln_p)),
+            flags: Vec::new(),
+            all_sky_sigma: 0.0,
+            identical_time_fraction: 0.0,
+            spread_sigma: 0.0,
+            far_per_year: if far.is_finite() { far } else { 0.0 },
+            sigma_post_trials: finite_sigma(sigma_post_trials(far)),
             zenith_deg: f64::from(g.p.zenith),
             photons,
         }
@@ -1144,6 +1183,17 @@ impl Engine {
             out.emit(Finding::Withdrawal(w));
         }
     }
+}
+
+/// Last instant of a flash's pre-window: just before its earliest photon, so emission at the spot that
+/// merged crossings folded into the candidate's span (a precursor) lies in the pre-window, not before it.
+pub(crate) fn pre_end(f: &Flash) -> i64 {
+    f.photons
+        .iter()
+        .map(|p| p.time_ns)
+        .min()
+        .unwrap_or(f.end_ns)
+        .saturating_sub(1)
 }
 
 fn normalise(v: [f64; 3]) -> [f64; 3] {

@@ -82,6 +82,22 @@ pub struct Flash {
     pub zenith_deg: f64,
     /// The photons in the disc and window, in time order.
     pub photons: Vec<PhotonRec>,
+    /// Instrumental signs found when the flash was decided (no later data needed): `all_sky_jump`,
+    /// `identical_timestamps`, `wide_spread`. Empty for a clean flash; any of them makes the candidate's
+    /// verdict `instrumental`.
+    #[serde(default)]
+    pub flags: Vec<String>,
+    /// Signed significance of the all-sky count in the window (the flash's own cone left out) against the
+    /// rate just before it.
+    #[serde(default)]
+    pub all_sky_sigma: f64,
+    /// Fraction of the flash photons sharing a timestamp (within the clock precision) with another.
+    #[serde(default)]
+    pub identical_time_fraction: f64,
+    /// Significance of a spread wider than the PSF, from the window's photons within a cone of
+    /// max(3 r, r + 4 sigma_PSF) (`assess::extension_sigma`).
+    #[serde(default)]
+    pub spread_sigma: f64,
 }
 
 /// Outcome of an assessment.
@@ -90,7 +106,7 @@ pub struct Flash {
 pub enum Verdict {
     /// No persistence, no instrumental sign.
     Isolated,
-    /// Emission before or after the flash.
+    /// Emission before or after the flash, or a light curve that rises fast and decays.
     Persistent,
     /// An instrumental sign (all-sky jump, identical timestamps, spread wider than the PSF); withdrawn.
     Instrumental,
@@ -126,20 +142,24 @@ pub struct Assessment {
     pub post_background: f64,
     /// P(N >= post_counts | post_background).
     pub post_p_value: f64,
-    /// Its one-sided significance (clamped to [-40, 1000]).
+    /// Its signed significance: from the upper tail for an excess, minus that of the lower tail for a
+    /// deficit, 0 at the median (`stats::count_sigma`).
     pub post_sigma: f64,
-    /// Photons in the disc in the pre-window before the flash.
+    /// Photons in the disc in the pre-window: the `pre_window_s` ending just before the best trigger's
+    /// earliest photon.
     pub pre_counts: u64,
-    /// Expected counts for them without persistence: the background, plus the rise an evaporation burst
-    /// ending at the best window's end would put there (its light curve rises as tau^-1/2; see
-    /// `assess::evaporation_rise`), so a burst's own rise is not called persistent.
+    /// Background expected there: all-sky photons in the window x a(zenith, azimuth) x Omega_r.
     pub pre_background: f64,
-    /// P(N >= pre_counts | pre_background).
+    /// The burst's own rise expected there: what the best-fitting instrument-folded evaporation template
+    /// of the light-curve test puts in the pre-window (0 when the test could not run).
+    pub pre_rise: f64,
+    /// P(N >= pre_counts | pre_background + pre_rise).
     pub pre_p_value: f64,
-    /// Its one-sided significance (clamped to [-40, 1000]).
+    /// Its signed significance (as `post_sigma`).
     pub pre_sigma: f64,
     /// Reasons behind the verdict and caveats, e.g. `all_sky_jump`, `identical_timestamps`, `wide_spread`,
-    /// `dead_time`, `cut_short`, `post_excess`, `pre_excess`, `photons_capped`, `crossings_after_flash`.
+    /// `dead_time`, `cut_short`, `post_excess`, `pre_excess`, `decaying_shape`, `shape_untested`,
+    /// `photons_capped`, `crossings_after_flash`.
     pub flags: Vec<String>,
     /// All-sky photons in the best trigger's window, a cone around the flash left out that holds its PSF's
     /// wings at the lowest energy (max(3 r, r + 4 sigma_PSF)).
@@ -148,8 +168,23 @@ pub struct Assessment {
     pub all_sky_expected: f64,
     /// Fraction of the trigger's photons sharing a timestamp (within the clock precision) with another.
     pub identical_time_fraction: f64,
-    /// RMS spread of the trigger's photons about their centroid over the PSF's expectation.
+    /// Signed significance of the all-sky count (the trigger's `all_sky_sigma`).
+    pub all_sky_sigma: f64,
+    /// RMS spread of the trigger's disc photons about their centroid over the PSF's expectation (reported;
+    /// the disc bounds it, so no rule reads it).
     pub spread_ratio: f64,
+    /// Significance of a spread wider than the PSF (the trigger's `spread_sigma`).
+    pub spread_sigma: f64,
+    /// Light-curve test: 2 (ln L_decaying - ln L_evaporation) of the disc photons' arrival times from the
+    /// best window's start to the persistence window's end; positive favours a fast rise and decay.
+    pub shape_log_ratio: f64,
+    /// Kolmogorov-Smirnov p-value of those times against the best instrument-folded evaporation template
+    /// (1 when the test could not run).
+    pub shape_template_p: f64,
+    /// Best decaying model: power-law index of (1 + t/tc)^-index, or -1 for exp(-t/tc).
+    pub shape_decay_index: f64,
+    /// Its decay time tc, seconds.
+    pub shape_decay_time_s: f64,
     /// Dead time inside the post-flash window, seconds.
     pub dead_seconds: f64,
     /// The evaporation fit; [`FitResult::pending`] while `fit_job` is set.

@@ -155,7 +155,7 @@ impl FitResult {
 
 /// Why a fit could not be made; its text becomes `FitResult::reason`.
 #[derive(thiserror::Error, Debug, Clone, PartialEq)]
-enum FitProblem {
+pub(crate) enum FitProblem {
     #[error("too few photons: {n} (the fit needs at least {MIN_PHOTONS})")]
     TooFewPhotons { n: usize },
     #[error("too many photons: {n} (the fit takes at most {MAX_PHOTONS})")]
@@ -571,26 +571,18 @@ fn interpolate(values: &[f64], p: f64) -> f64 {
     values[k] + f * (values[k + 1] - values[k])
 }
 
-/// The parts of the model shared by all photons: the burst's normalisation, the acceptance-weighted
-/// spectrum G and its light curve H.
+/// The parts of the model shared by all photons: the burst's normalisation and its instrument-folded light
+/// curve.
 struct Model {
     /// Signal density constant at 1 pc: psf_containment / (4 pi pc^2) * K, per m^2 (GeV^1/2 s^-1/2 units).
     c: f64,
-    ln_t1: f64,
     zenith_deg: f64,
     background_rate: f64,
-    /// G over ln(E_cut).
-    g: Cumulative,
-    /// H(tau) = integral_0^tau u^-1/2 G(T1 u^-1/3) du, over ln(tau) from `LIGHT_CURVE_TAU_MIN_S`.
-    h: Cumulative,
-    h_start: f64,
+    curve: LightCurve,
 }
 
 impl Model {
     fn new(input: &FitInput<'_>, photons: &Photons) -> Result<Self, FitProblem> {
-        let response = input.response;
-        let (e_min, e_max) = (response.energy_min_gev(), response.energy_max_gev());
-        let t1 = SPECTRUM_T1_GEV;
         // K = 4.5e35 T1^-3/2: the joint density at tau = 1 s, E = 1 GeV (below the cut-off).
         let k = hawking::joint_density(1.0, 1.0);
         if !(k.is_finite() && k > 0.0) {
@@ -598,13 +590,64 @@ impl Model {
                 what: "the burst's joint density",
             });
         }
-        let containment = if input.disc_radius_deg > 0.0 {
-            1.0
+        // With the disc known, the light curve folds each energy's PSF share inside it (offset included);
+        // without it, one containment for all energies.
+        let (containment, disc) = if input.disc_radius_deg > 0.0 {
+            (1.0, Some((input.disc_radius_deg, input.disc_offset_deg)))
         } else {
-            input.psf_containment
+            (input.psf_containment, None)
         };
         let c = containment / (4.0 * std::f64::consts::PI * PARSEC_M * PARSEC_M) * k;
+        let tau_max = photons.window_s + 2.0 * photons.delta_ns as f64 * 1e-9;
+        let curve = LightCurve::build(input.response, input.zenith_deg, tau_max, disc)?;
+        Ok(Self {
+            c,
+            zenith_deg: input.zenith_deg,
+            background_rate: input.background_rate_hz,
+            curve,
+        })
+    }
 
+    /// Cut-off ln(E) of the emission at time-to-go tau: T1 tau^-1/3.
+    fn ln_cut(&self, tau_s: f64) -> f64 {
+        self.curve.ln_cut(tau_s)
+    }
+
+    /// Expected signal counts at q = 1 (1 pc) in the window [0, window] for explosion time t0 (seconds
+    /// after the window start), and the part of it before time t.
+    fn signal_before(&self, t0_s: f64, window_s: f64, t_s: f64) -> f64 {
+        let upto = t_s.min(window_s);
+        self.c * (self.curve.cumulative(t0_s) - self.curve.cumulative(t0_s - upto))
+    }
+}
+
+/// The burst's detected light curve above the instrument's threshold, folded with its effective area at
+/// one zenith and its energy resolution: H(tau) = integral_0^tau u^-1/2 G(T1 u^-1/3) du, with G the
+/// acceptance-weighted emitted spectrum below the cut-off (see [`fit_evaporation`]). Steeper toward the end
+/// than the bare tau^-1/2 law, because the spectrum hardens as the end nears and the effective area grows
+/// with energy. The fit, the assessment's light-curve shape test and its pre-flash expectation all use it.
+pub(crate) struct LightCurve {
+    ln_t1: f64,
+    /// G over ln(E_cut).
+    g: Cumulative,
+    /// H over ln(tau) from `LIGHT_CURVE_TAU_MIN_S`.
+    h: Cumulative,
+    h_start: f64,
+}
+
+impl LightCurve {
+    /// Tabulates the light curve up to `tau_max_s` (beyond it H is constant: ask for what you need). With
+    /// `disc` (radius, and the source's offset from its centre, degrees), each true energy is weighted by the share of its Gaussian PSF inside a disc of that
+    /// radius about the source: the light curve of the photons a search disc holds. That matters: the
+    /// early, soft photons of a burst spread wider than its last, hard ones, so a disc sees a steeper rise
+    /// than the whole sky does.
+    pub(crate) fn build(
+        response: &InstrumentResponse,
+        zenith_deg: f64,
+        tau_max_s: f64,
+        disc: Option<(f64, f64)>,
+    ) -> Result<Self, FitProblem> {
+        let (e_min, e_max) = (response.energy_min_gev(), response.energy_max_gev());
         // The acceptance-weighted spectrum over true energy, wide enough to hold every energy that can be
         // reconstructed inside [e_min, e_max].
         let (sigma_lo, sigma_hi) = sigma_range(response, e_min, e_max)?;
@@ -626,19 +669,20 @@ impl Model {
             let s = sigma_at(response, e);
             // P(e_min < E_reco < e_max | E) with ln E_reco ~ N(u, s).
             let accept = p_from_sigma((ln_min - u) / s) - p_from_sigma((ln_max - u) / s);
+            let contained = disc.map_or(1.0, |(r, off)| {
+                offset_gaussian_containment(r, off, response.psf_sigma_deg(e))
+            });
             // dE = E du, so A E^-3/2 dE = A E^-1/2 du.
-            integrand.push(area_in_disc(input, e, input.zenith_deg) * (-0.5 * u).exp() * accept.max(0.0));
+            integrand.push(area(response, e, zenith_deg) * (-0.5 * u).exp() * accept.max(0.0) * contained);
         }
         let g = Cumulative::from_samples(u0, du, &integrand);
         if g.total().is_nan() || g.total() <= 0.0 {
-            return Err(FitProblem::NoAcceptance {
-                zenith_deg: input.zenith_deg,
-            });
+            return Err(FitProblem::NoAcceptance { zenith_deg });
         }
 
         // H over ln tau: dH = tau^1/2 G(T1 tau^-1/3) d ln tau, from H(tau_min) = 2 tau_min^1/2 G(...).
-        let ln_t1 = t1.ln();
-        let tau_max = (photons.window_s + 2.0 * photons.delta_ns as f64 * 1e-9).max(1e-9) * 1.01;
+        let ln_t1 = SPECTRUM_T1_GEV.ln();
+        let tau_max = tau_max_s.max(1e-9) * 1.01;
         let x0 = LIGHT_CURVE_TAU_MIN_S.ln();
         let dx = std::f64::consts::LN_10 / LIGHT_CURVE_PER_DECADE;
         let h_nodes = (((tau_max.ln() - x0) / dx).ceil().max(1.0)) as usize + 1;
@@ -649,15 +693,7 @@ impl Model {
         }
         let h = Cumulative::from_samples(x0, dx, &light);
         let h_start = 2.0 * LIGHT_CURVE_TAU_MIN_S.sqrt() * g.at(ln_t1 - x0 / 3.0);
-        Ok(Self {
-            c,
-            ln_t1,
-            zenith_deg: input.zenith_deg,
-            background_rate: input.background_rate_hz,
-            g,
-            h,
-            h_start,
-        })
+        Ok(Self { ln_t1, g, h, h_start })
     }
 
     /// Cut-off ln(E) of the emission at time-to-go tau: T1 tau^-1/3.
@@ -665,8 +701,9 @@ impl Model {
         self.ln_t1 - tau_s.ln() / 3.0
     }
 
-    /// H(tau): the light curve's running integral (without the constant c).
-    fn light_curve(&self, tau_s: f64) -> f64 {
+    /// H(tau): the detected counts of the last tau seconds, in the units of the fit's model without its
+    /// constant c (only ratios and shapes matter to the assessment).
+    pub(crate) fn cumulative(&self, tau_s: f64) -> f64 {
         if tau_s.is_nan() || tau_s <= 0.0 {
             return 0.0;
         }
@@ -676,11 +713,12 @@ impl Model {
         self.h_start + self.h.at(tau_s.ln())
     }
 
-    /// Expected signal counts at q = 1 (1 pc) in the window [0, window] for explosion time t0 (seconds
-    /// after the window start), and the part of it before time t.
-    fn signal_before(&self, t0_s: f64, window_s: f64, t_s: f64) -> f64 {
-        let upto = t_s.min(window_s);
-        self.c * (self.light_curve(t0_s) - self.light_curve(t0_s - upto))
+    /// dH/dtau: the detected rate at time-to-go tau, same units.
+    pub(crate) fn rate(&self, tau_s: f64) -> f64 {
+        if tau_s.is_nan() || tau_s <= 0.0 {
+            return 0.0;
+        }
+        self.g.at(self.ln_cut(tau_s)) / tau_s.sqrt()
     }
 }
 
@@ -914,7 +952,7 @@ impl Search<'_> {
 }
 
 /// ln L(q) - ln L(0) for one anchor: sum ln(1 + q r_i) - q S.
-fn ln_likelihood(ratios: &[f64], norm: f64, q: f64) -> f64 {
+pub(crate) fn ln_likelihood(ratios: &[f64], norm: f64, q: f64) -> f64 {
     ratios.iter().map(|&r| (q * r).ln_1p()).sum::<f64>() - q * norm
 }
 
@@ -932,7 +970,7 @@ fn derivatives(ratios: &[f64], norm: f64, q: f64) -> (f64, f64) {
 
 /// The q >= 0 maximising the concave `ln_likelihood`: zero if its slope at 0 is not positive, else the root of
 /// the slope, which lies below m / S (each term r/(1 + q r) < 1/q).
-fn best_strength(ratios: &[f64], norm: f64) -> Result<f64, FitProblem> {
+pub(crate) fn best_strength(ratios: &[f64], norm: f64) -> Result<f64, FitProblem> {
     if !(norm > 0.0 && norm.is_finite()) {
         return Err(FitProblem::NonFinite {
             what: "the expected burst counts",
@@ -1047,7 +1085,7 @@ fn solve(f: impl Fn(f64) -> (f64, f64), lo: f64, hi: f64, what: &'static str) ->
 /// KS p-value of a sample given as model-CDF values (any order): the two-sided statistic D against the
 /// uniform, then the Kolmogorov distribution at (sqrt(n) + 0.12 + 0.11/sqrt(n)) D (Stephens 1970, J. R.
 /// Statist. Soc. B 32, 115; as in Press et al., Numerical Recipes, section 14.3).
-fn ks_p_value_of_cdf_values(values: &[f64]) -> f64 {
+pub(crate) fn ks_p_value_of_cdf_values(values: &[f64]) -> f64 {
     if values.is_empty() {
         return 1.0;
     }

@@ -16,6 +16,7 @@ mod finding;
 pub mod fit;
 mod localise;
 mod reorder;
+mod shape;
 mod sky;
 mod stats;
 pub mod trials;

@@ -794,29 +794,6 @@ impl SkyIndex {
             .map(|e| e.cold)
     }
 
-    /// Calls `f` for the time and direction of every held photon with time >= `t_from` in the pixels covering
-    /// a cone (approximate cover, exact angle check by the caller), pixels in index order.
-    pub(crate) fn for_each_hot_in_cone(
-        &self,
-        ra_deg: f64,
-        dec_deg: f64,
-        radius_deg: f64,
-        t_from: i64,
-        mut f: impl FnMut(&Hot),
-    ) {
-        let lat = dec_deg
-            .to_radians()
-            .clamp(-std::f64::consts::FRAC_PI_2, std::f64::consts::FRAC_PI_2);
-        let radius = radius_deg.to_radians().min(std::f64::consts::PI);
-        let cover = self.layer.cone_coverage_approx(ra_deg.to_radians(), lat, radius);
-        for pix in cover.flat_iter() {
-            if let Some(s) = self.map.get(pix) {
-                let held = &self.buckets[s as usize].held;
-                (held.first_from(t_from)..held.len()).for_each(|i| f(&held.get(i)));
-            }
-        }
-    }
-
     /// Calls `f` for every held photon with time >= `t_from` within `radius_deg` of `ra`, `dec`; pixels
     /// visited in index order, photons in time order. The angle is checked on the hot record before the cold
     /// one is looked up (a search of the whole store): the pixels cover several times the cone's area, and

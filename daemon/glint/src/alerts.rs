@@ -32,6 +32,10 @@ fn trigger_of(f: &Flash) -> pb::Trigger {
         zenith_deg: f.zenith_deg,
         sigma_post_trials: f.sigma_post_trials,
         sigma_per_seed: f.sigma,
+        flags: f.flags.clone(),
+        all_sky_sigma: f.all_sky_sigma,
+        identical_time_fraction: f.identical_time_fraction,
+        spread_sigma: f.spread_sigma,
     }
 }
 
@@ -84,6 +88,13 @@ fn assessment_of(a: &Assessment, flash: Option<(u64, &str)>) -> pb::Assessment {
         }),
         flash_seq: flash.map_or(0, |f| f.0),
         flash_id: flash.map_or(String::new(), |f| f.1.to_string()),
+        pre_rise: a.pre_rise,
+        shape_log_ratio: a.shape_log_ratio,
+        shape_template_p: a.shape_template_p,
+        shape_decay_index: a.shape_decay_index,
+        shape_decay_time_s: a.shape_decay_time_s,
+        all_sky_sigma: a.all_sky_sigma,
+        spread_sigma: a.spread_sigma,
     }
 }
 
@@ -186,6 +197,10 @@ struct TriggerJson<'a> {
     sigma_post_trials: f64,
     far_per_year: f64,
     photons: usize,
+    flags: &'a [String],
+    all_sky_sigma: f64,
+    identical_time_fraction: f64,
+    spread_sigma: f64,
 }
 
 #[derive(Serialize)]
@@ -218,13 +233,20 @@ struct AssessmentJson<'a> {
     post_sigma: f64,
     pre_counts: u64,
     pre_background: f64,
+    pre_rise: f64,
     pre_p_value: f64,
     pre_sigma: f64,
+    shape_log_ratio: f64,
+    shape_template_p: f64,
+    shape_decay_index: f64,
+    shape_decay_time_s: f64,
     flags: &'a [String],
     all_sky_counts: u64,
     all_sky_expected: f64,
+    all_sky_sigma: f64,
     identical_time_fraction: f64,
     spread_ratio: f64,
+    spread_sigma: f64,
     dead_seconds: f64,
     #[serde(skip_serializing_if = "Option::is_none")]
     fit: Option<FitJson<'a>>,
@@ -288,6 +310,10 @@ pub(crate) fn alert_json(a: &pb::Alert) -> serde_json::Value {
         sigma_post_trials: t.sigma_post_trials,
         far_per_year: t.far_per_year,
         photons: t.photon_time_gps_ns.len(),
+        flags: &t.flags,
+        all_sky_sigma: t.all_sky_sigma,
+        identical_time_fraction: t.identical_time_fraction,
+        spread_sigma: t.spread_sigma,
     });
     let assessment = a.assessment.as_ref().map(|s| AssessmentJson {
         verdict: verdict_name(s.verdict),
@@ -299,13 +325,20 @@ pub(crate) fn alert_json(a: &pb::Alert) -> serde_json::Value {
         post_sigma: s.post_sigma,
         pre_counts: s.pre_counts,
         pre_background: s.pre_background,
+        pre_rise: s.pre_rise,
         pre_p_value: s.pre_p_value,
         pre_sigma: s.pre_sigma,
+        shape_log_ratio: s.shape_log_ratio,
+        shape_template_p: s.shape_template_p,
+        shape_decay_index: s.shape_decay_index,
+        shape_decay_time_s: s.shape_decay_time_s,
         flags: &s.flags,
         all_sky_counts: s.all_sky_counts,
         all_sky_expected: s.all_sky_expected,
+        all_sky_sigma: s.all_sky_sigma,
         identical_time_fraction: s.identical_time_fraction,
         spread_ratio: s.spread_ratio,
+        spread_sigma: s.spread_sigma,
         dead_seconds: s.dead_seconds,
         fit: s.fit.as_ref().map(|f| FitJson {
             converged: f.converged,
@@ -380,6 +413,17 @@ fn joint_json(j: &pb::Joint) -> serde_json::Value {
     })
 }
 
+/// A signed significance in words: "+5.2 sigma", "-7.6 sigma (deficit)", or "no excess" at 0.
+fn sigma_words(z: f64) -> String {
+    if z > 0.0 {
+        format!("{z:+.1} sigma")
+    } else if z < 0.0 {
+        format!("{z:+.1} sigma, deficit")
+    } else {
+        "no excess".to_owned()
+    }
+}
+
 /// A short readable summary of one alert for a terminal.
 pub(crate) fn alert_summary(a: &pb::Alert) -> String {
     let mut s = format!(
@@ -404,18 +448,24 @@ pub(crate) fn alert_summary(a: &pb::Alert) -> String {
             t.far_per_year,
             t.sigma_post_trials
         );
+        if !t.flags.is_empty() {
+            s += &format!("\n    INSTRUMENTAL SIGNS: {}", t.flags.join(" "));
+        }
     }
     if let Some(x) = &a.assessment {
         s += &format!(
-            "\n    verdict {} (of {}): after {} on {:.2} ({:+.1} sigma), before {} on {:.2} ({:+.1} sigma){}",
+            "\n    verdict {} (of {}): after {} on {:.2} background ({}), before {} on {:.2} background + {:.2} burst rise ({}), light curve {:+.1} toward decay (template p = {:.2e}){}",
             verdict_name(x.verdict).to_uppercase(),
             x.flash_id,
             x.post_counts,
             x.post_background,
-            x.post_sigma,
+            sigma_words(x.post_sigma),
             x.pre_counts,
             x.pre_background,
-            x.pre_sigma,
+            x.pre_rise,
+            sigma_words(x.pre_sigma),
+            x.shape_log_ratio,
+            x.shape_template_p,
             if x.flags.is_empty() {
                 String::new()
             } else {
@@ -518,6 +568,31 @@ impl Sequencer {
         if matches!(f, Finding::Flash(_)) {
             self.flashes.insert(key, (seq, alert.id.clone()));
         }
+        alert
+    }
+
+    /// An operator's TEST alert: kind TEST, instrument "test", no trigger; `reason` says who asked and why.
+    pub(crate) fn test_alert(&mut self, operator: &str, note: &str, issued_gps_ns: i64) -> pb::Alert {
+        let seq = self.next_seq();
+        self.next_seq = seq + 1;
+        let who = if operator.trim().is_empty() {
+            "an operator"
+        } else {
+            operator.trim()
+        };
+        let note = note.trim();
+        let reason = if note.is_empty() {
+            format!("TEST alert requested by {who}; not a detection")
+        } else {
+            format!("TEST alert requested by {who}: {note}; not a detection")
+        };
+        let mut alert = pb::Alert {
+            kind: pb::AlertKind::Test as i32,
+            instrument: "test".into(),
+            reason,
+            ..Default::default()
+        };
+        stamp(&mut alert, seq, issued_gps_ns);
         alert
     }
 

@@ -17,7 +17,7 @@ pub(crate) const EXIT_CONFIG: u8 = 2;
     name = "glint",
     version,
     about,
-    after_help = "Exit codes: 0 success, 1 error while running, 2 configuration problems."
+    after_help = "Exit codes: 0 success, 1 error while running, 2 configuration problems, 3 (listen --exec) a handler failed after its retries."
 )]
 pub(crate) struct Cli {
     #[command(subcommand)]
@@ -58,6 +58,8 @@ enum Command {
     /// and the latency from journal to acknowledged publish.
     #[command(hide = true)]
     BenchBus(crate::commands::bench_bus::BenchBusArgs),
+    /// Ask a running daemon for a TEST alert through every sink (needs the operator token).
+    TestAlert(crate::commands::test_alert::TestAlertArgs),
     /// Read a state directory's alert journal offline: verify, list, show, export (never modifies it).
     Journal(crate::commands::journal::JournalArgs),
 }
@@ -74,10 +76,11 @@ pub(crate) fn dispatch(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::BenchLive(a) => crate::commands::bench_live::bench(a),
         Command::Calibrate(a) => crate::commands::calibrate::run(&a),
         Command::Feed(a) => crate::commands::feed::run(a),
-        Command::Listen(a) => crate::commands::listen::run(a),
-        Command::Withdraw(a) => crate::commands::withdraw::run(a),
         Command::Coincide(a) => crate::commands::coincide::run(a),
         Command::BenchBus(a) => crate::commands::bench_bus::run(a),
+        Command::Listen(a) => crate::commands::listen::run(a),
+        Command::Withdraw(a) => crate::commands::withdraw::run(a),
+        Command::TestAlert(a) => crate::commands::test_alert::run(a),
         Command::Journal(a) => crate::commands::journal::run(&a),
     };
     match result {

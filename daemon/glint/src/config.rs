@@ -192,6 +192,79 @@ pub(crate) struct SubscribersConfig {
     pub(crate) keepalive: Duration,
 }
 
+/// How the email sink talks to its relay.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub(crate) enum EmailTls {
+    /// Plain SMTP, then STARTTLS before anything else (refused if the relay does not offer it).
+    StartTls,
+    /// TLS from the first byte (SMTPS, usually port 465).
+    Implicit,
+    /// No TLS at all: a relay on this host or a trusted network only.
+    None,
+}
+
+/// Quiet hours of a recipient, UTC minutes of the day; `start > end` wraps past midnight.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub(crate) struct QuietHours {
+    /// First minute of the day (0..1440) that is quiet.
+    pub(crate) start_min: u32,
+    /// First minute that is no longer quiet.
+    pub(crate) end_min: u32,
+    /// Alerts at least this significant are sent even in quiet hours.
+    pub(crate) min_sigma: f64,
+}
+
+impl QuietHours {
+    /// Whether `minute` of the UTC day falls in the quiet hours.
+    pub(crate) fn contains(&self, minute: u32) -> bool {
+        if self.start_min <= self.end_min {
+            (self.start_min..self.end_min).contains(&minute)
+        } else {
+            minute >= self.start_min || minute < self.end_min
+        }
+    }
+}
+
+/// `[[email.recipient]]`: one person or list that gets alerts by email.
+#[derive(Debug, Clone)]
+pub(crate) struct EmailRecipient {
+    /// The address, as written (checked to parse).
+    pub(crate) address: lettre::message::Mailbox,
+    /// Kinds wanted (never heartbeats).
+    pub(crate) kinds: Vec<glint_wire::pb::AlertKind>,
+    /// Significance cut (withdrawals and tests always pass).
+    pub(crate) min_sigma: f64,
+    /// At most this many messages per `window`; past it, alerts are gathered into one digest.
+    pub(crate) max_per_window: usize,
+    /// The rate-limit window.
+    pub(crate) window: Duration,
+    /// Quiet hours, if any.
+    pub(crate) quiet: Option<QuietHours>,
+}
+
+/// `[email]`: alerts by email through an SMTP relay.
+#[derive(Debug, Clone)]
+pub(crate) struct EmailConfig {
+    /// Relay host name (also the name its TLS certificate must carry).
+    pub(crate) relay_host: String,
+    /// Relay port.
+    pub(crate) relay_port: u16,
+    /// Sender.
+    pub(crate) from: lettre::message::Mailbox,
+    /// TLS mode.
+    pub(crate) tls: EmailTls,
+    /// Extra CA certificates (PEM) trusted for the relay besides the built-in roots.
+    pub(crate) tls_ca_file: Option<PathBuf>,
+    /// AUTH user and password, when the relay needs them.
+    pub(crate) auth: Option<(String, Secret)>,
+    /// Time allowed for one SMTP exchange.
+    pub(crate) timeout: Duration,
+    /// Longest wait between two attempts at a transient failure.
+    pub(crate) retry_max: Duration,
+    /// The recipients.
+    pub(crate) recipients: Vec<EmailRecipient>,
+}
+
 /// `[journal]`: the append-only alert journal.
 #[derive(Debug, Clone)]
 pub(crate) struct JournalConfig {
@@ -242,8 +315,15 @@ pub(crate) struct AssessSettings {
     pub(crate) all_sky_sigma_max: f64,
     /// `instrumental` when more than this fraction of the flash photons share one timestamp.
     pub(crate) identical_fraction_max: f64,
-    /// `instrumental` when the photons' spread exceeds the PSF's by this factor.
+    /// No longer read by any rule (kept so configurations naming it still load).
     pub(crate) spread_ratio_max: f64,
+    /// `instrumental` when the flash window's photons are spread wider than the PSF at this significance.
+    pub(crate) spread_sigma_max: f64,
+    /// `persistent` (decaying shape) when a decaying light curve beats the evaporation template by more than
+    /// this in 2 Delta ln L ...
+    pub(crate) shape_log_ratio_min: f64,
+    /// ... and the template's goodness-of-fit p-value is below this.
+    pub(crate) shape_p_max: f64,
     /// `undecided` when dead time covers more than this fraction of the persistence window.
     pub(crate) max_dead_fraction: f64,
 }
@@ -340,6 +420,8 @@ pub(crate) struct Config {
     pub(crate) metrics_listen: Option<SocketAddr>,
     /// `[bus]`: the message bus sink, when `url` is set.
     pub(crate) bus: Option<BusConfig>,
+    /// `[email]`, if present.
+    pub(crate) email: Option<EmailConfig>,
     /// `[[instrument]]`, in file order.
     pub(crate) instruments: Vec<InstrumentConfig>,
     /// `GLINT_*` environment variables that name no configuration key, so were not used.
@@ -993,6 +1075,18 @@ impl Reader {
             ("metrics.listen", metrics_listen),
         ]);
 
+        let email = match top.table.remove("email") {
+            None => None,
+            Some(Value::Table(t)) => self.email(Section {
+                prefix: "email".into(),
+                table: t,
+            }),
+            Some(other) => {
+                self.problem("email", format!("expected a table, found {}", other.type_str()));
+                None
+            }
+        };
+
         let mut s = self.section(&mut top, "bus");
         let bus = self.bus(&mut s, false);
         self.finish(s);
@@ -1054,6 +1148,7 @@ impl Reader {
             subscribers,
             journal,
             metrics_listen,
+            email,
             bus,
             instruments,
             ignored_env: Vec::new(),
@@ -1267,6 +1362,216 @@ impl Reader {
         })
     }
 
+    fn mailbox(&mut self, s: &Section, k: &str, text: &str) -> Option<lettre::message::Mailbox> {
+        match text.parse::<lettre::message::Mailbox>() {
+            Ok(m) => Some(m),
+            Err(e) => {
+                self.problem(
+                    s.key(k),
+                    format!("'{text}' is not an email address like \"Name <user@example.org>\" ({e})"),
+                );
+                None
+            }
+        }
+    }
+
+    fn email(&mut self, mut s: Section) -> Option<EmailConfig> {
+        let relay: Option<String> = self.required(&mut s, "relay");
+        let (relay_host, relay_port) = match relay.as_deref().map(|r| (r, r.rsplit_once(':'))) {
+            Some((_, Some((h, p)))) if !h.is_empty() && p.parse::<u16>().is_ok_and(|p| p > 0) => {
+                (h.trim_matches(['[', ']']).to_string(), p.parse().unwrap_or(25))
+            }
+            Some((r, _)) => {
+                self.problem(
+                    s.key("relay"),
+                    format!("'{r}' is not HOST:PORT, e.g. smtp.example.org:587"),
+                );
+                (String::new(), 0)
+            }
+            None => (String::new(), 0),
+        };
+        let from_text: Option<String> = self.required(&mut s, "from");
+        let from = from_text.and_then(|f| self.mailbox(&s, "from", &f));
+        let tls_text: String = self.get(&mut s, "tls", "starttls".to_string());
+        let tls = match tls_text.as_str() {
+            "starttls" => EmailTls::StartTls,
+            "implicit" => EmailTls::Implicit,
+            "none" => EmailTls::None,
+            other => {
+                self.problem(
+                    s.key("tls"),
+                    format!("'{other}' is not one of starttls, implicit, none"),
+                );
+                EmailTls::StartTls
+            }
+        };
+        let loopback = relay_host == "localhost"
+            || relay_host
+                .parse::<std::net::IpAddr>()
+                .is_ok_and(|ip| ip.is_loopback());
+        let allow_plain: bool = self.get(&mut s, "allow_plain_remote", false);
+        if tls == EmailTls::None && !loopback && !relay_host.is_empty() && !allow_plain {
+            self.problem(
+                s.key("tls"),
+                format!("\"none\" sends alerts and any password in clear to {relay_host}; use starttls or implicit, or set allow_plain_remote = true"),
+            );
+        }
+        let ca: String = self.get(&mut s, "tls_ca_file", String::new());
+        let tls_ca_file = (!ca.is_empty()).then(|| self.path(&ca));
+        if let Some(p) = &tls_ca_file {
+            if !p.is_file() {
+                self.problem(
+                    s.key("tls_ca_file"),
+                    format!("{} is not a readable file", p.display()),
+                );
+            }
+        }
+        let user: String = self.get(&mut s, "username", String::new());
+        let pw_file: String = self.get(&mut s, "password_file", String::new());
+        let auth = match (user.is_empty(), pw_file.is_empty()) {
+            (true, true) => None,
+            (false, false) => {
+                let p = self.path(&pw_file);
+                match std::fs::read_to_string(&p) {
+                    Ok(t) if !t.trim().is_empty() => {
+                        Some((user, Secret(t.trim_end_matches(['\r', '\n']).to_string())))
+                    }
+                    Ok(_) => {
+                        self.problem(s.key("password_file"), format!("{} is empty", p.display()));
+                        None
+                    }
+                    Err(e) => {
+                        self.problem(
+                            s.key("password_file"),
+                            format!("cannot read {}: {e}", p.display()),
+                        );
+                        None
+                    }
+                }
+            }
+            _ => {
+                self.problem(
+                    s.key("username"),
+                    "username and password_file must be given together",
+                );
+                None
+            }
+        };
+        if auth.is_some() && tls == EmailTls::None && !loopback {
+            self.problem(
+                s.key("password_file"),
+                "a password is never sent without TLS to a remote relay",
+            );
+        }
+        let timeout = self.seconds(&mut s, "timeout_s", 30.0);
+        let retry_max = self.seconds(&mut s, "retry_max_s", 300.0);
+        let mut recipients = Vec::new();
+        match s.table.remove("recipient") {
+            Some(Value::Array(items)) => {
+                for (i, item) in items.into_iter().enumerate() {
+                    let prefix = format!("email.recipient[{i}]");
+                    match item {
+                        Value::Table(t) => {
+                            if let Some(r) = self.recipient(Section { prefix, table: t }) {
+                                recipients.push(r);
+                            }
+                        }
+                        other => {
+                            self.problem(prefix, format!("expected a table, found {}", other.type_str()))
+                        }
+                    }
+                }
+            }
+            Some(other) => self.problem(
+                "email.recipient",
+                format!("expected [[email.recipient]] tables, found {}", other.type_str()),
+            ),
+            None => self.problem("email.recipient", "at least one [[email.recipient]] is required"),
+        }
+        let mut seen = BTreeMap::new();
+        for (i, r) in recipients.iter().enumerate() {
+            let key = r.address.email.to_string().to_lowercase();
+            if let Some(j) = seen.insert(key, i) {
+                self.problem(
+                    format!("email.recipient[{i}].address"),
+                    format!("{} is already email.recipient[{j}]", r.address.email),
+                );
+            }
+        }
+        self.finish(s);
+        Some(EmailConfig {
+            relay_host,
+            relay_port,
+            from: from?,
+            tls,
+            tls_ca_file,
+            auth,
+            timeout,
+            retry_max,
+            recipients,
+        })
+    }
+
+    fn recipient(&mut self, mut s: Section) -> Option<EmailRecipient> {
+        use glint_wire::pb::AlertKind;
+        let addr: Option<String> = self.required(&mut s, "address");
+        let address = addr.and_then(|a| self.mailbox(&s, "address", &a));
+        let names: Vec<String> = self.get(
+            &mut s,
+            "kinds",
+            vec![
+                "flash".into(),
+                "assessment".into(),
+                "withdrawal".into(),
+                "test".into(),
+            ],
+        );
+        let mut kinds = Vec::new();
+        for n in &names {
+            match crate::alerts::parse_kind(n) {
+                Some(AlertKind::Heartbeat) | None => self.problem(
+                    s.key("kinds"),
+                    format!("'{n}' is not one of flash, assessment, withdrawal, test"),
+                ),
+                Some(k) => kinds.push(k),
+            }
+        }
+        let min_sigma: f64 = self.get(&mut s, "min_sigma", 0.0);
+        let min_sigma = self.in_range(&s, "min_sigma", min_sigma, 0.0, 1e6);
+        let max_per_window = self.nonzero(&mut s, "max_per_window", 10).get();
+        let window = self.seconds(&mut s, "window_s", 3600.0);
+        let quiet_text: String = self.get(&mut s, "quiet_hours_utc", String::new());
+        let quiet_sigma: f64 = self.get(&mut s, "quiet_min_sigma", 7.0);
+        let quiet_sigma = self.in_range(&s, "quiet_min_sigma", quiet_sigma, 0.0, 1e6);
+        let quiet = if quiet_text.is_empty() {
+            None
+        } else {
+            match parse_quiet(&quiet_text) {
+                Some((start_min, end_min)) => Some(QuietHours {
+                    start_min,
+                    end_min,
+                    min_sigma: quiet_sigma,
+                }),
+                None => {
+                    self.problem(
+                        s.key("quiet_hours_utc"),
+                        format!("'{quiet_text}' is not a span like \"22:00-06:30\" (UTC, 24-hour)"),
+                    );
+                    None
+                }
+            }
+        };
+        self.finish(s);
+        Some(EmailRecipient {
+            address: address?,
+            kinds,
+            min_sigma,
+            max_per_window,
+            window,
+            quiet,
+        })
+    }
+
     fn instrument(&mut self, mut s: Section) -> Option<InstrumentConfig> {
         let id: Option<String> = self.required(&mut s, "id");
         if let Some(id) = &id {
@@ -1343,12 +1648,15 @@ impl Reader {
         let assess = AssessSettings {
             persistence_min_s: num(self, "persistence_min_s", 30.0, 0.1, 86_400.0),
             persistence_timescale_factor: num(self, "persistence_timescale_factor", 10.0, 1.0, 1000.0),
-            pre_window_s: num(self, "pre_window_s", 30.0, 0.0, 3600.0),
+            pre_window_s: num(self, "pre_window_s", 120.0, 0.0, 3600.0),
             post_sigma_max: num(self, "post_sigma_max", 3.0, 0.0, 100.0),
             pre_sigma_max: num(self, "pre_sigma_max", 3.0, 0.0, 100.0),
             all_sky_sigma_max: num(self, "all_sky_sigma_max", 5.0, 0.0, 100.0),
             identical_fraction_max: num(self, "identical_fraction_max", 0.5, 0.0, 1.0),
             spread_ratio_max: num(self, "spread_ratio_max", 2.5, 1.0, 100.0),
+            spread_sigma_max: num(self, "spread_sigma_max", 3.5, 0.0, 100.0),
+            shape_log_ratio_min: num(self, "shape_log_ratio_min", 10.0, -1000.0, 1000.0),
+            shape_p_max: num(self, "shape_p_max", 1.0, 0.0, 1.0),
             max_dead_fraction: num(self, "max_dead_fraction", 0.1, 0.0, 1.0),
         };
         self.finish(a);
@@ -1482,18 +1790,16 @@ pub(crate) fn load_calibration(
 
 /// `$TMPDIR` in `state_dir` expands to the system's temporary directory, so the embedded default works for
 /// any user.
-/// A subject prefix: one or more dot-separated tokens without wildcards or whitespace.
-pub(crate) fn check_subject_prefix(p: &str) -> Result<(), String> {
-    let ok = !p.is_empty()
-        && p.split('.')
-            .all(|t| !t.is_empty() && !t.chars().any(|c| c.is_whitespace() || matches!(c, '*' | '>')));
-    if ok {
-        Ok(())
-    } else {
-        Err(format!(
-            "'{p}' is not a subject prefix (dot-separated tokens, none empty, no spaces, '*' or '>')"
-        ))
-    }
+/// `"HH:MM-HH:MM"` to minutes of the day; equal ends are refused (a span of nothing or everything).
+fn parse_quiet(text: &str) -> Option<(u32, u32)> {
+    let minute = |t: &str| -> Option<u32> {
+        let (h, m) = t.trim().split_once(':')?;
+        let (h, m): (u32, u32) = (h.parse().ok()?, m.parse().ok()?);
+        (h < 24 && m < 60).then_some(h * 60 + m)
+    };
+    let (a, b) = text.split_once('-')?;
+    let (a, b) = (minute(a)?, minute(b)?);
+    (a != b).then_some((a, b))
 }
 
 fn expand_tmp(p: &str) -> String {
@@ -1522,6 +1828,20 @@ pub(crate) fn config_or_exit(path: Option<&PathBuf>) -> anyhow::Result<Config> {
 /// Compares a token in constant time (for equal lengths; the length itself is not secret).
 pub(crate) fn token_matches(given: &str, expected: &Secret) -> bool {
     given.as_bytes().ct_eq(expected.expose().as_bytes()).into()
+}
+
+/// A subject prefix: one or more dot-separated tokens without wildcards or whitespace.
+pub(crate) fn check_subject_prefix(p: &str) -> Result<(), String> {
+    let ok = !p.is_empty()
+        && p.split('.')
+            .all(|t| !t.is_empty() && !t.chars().any(|c| c.is_whitespace() || matches!(c, '*' | '>')));
+    if ok {
+        Ok(())
+    } else {
+        Err(format!(
+            "'{p}' is not a subject prefix (dot-separated tokens, none empty, no spaces, '*' or '>')"
+        ))
+    }
 }
 
 #[cfg(test)]
@@ -1651,5 +1971,78 @@ mod tests {
         );
         let ok = text.replace("[ingest]", "[ingest]\nallow_plain_remote = true");
         Config::from_toml(&ok, "x.toml", Path::new("."), false).unwrap_or_else(|e| panic!("{e}"));
+    }
+
+    /// The reference configuration with its commented-out `[email]` block switched on.
+    fn reference_with_email() -> String {
+        include_str!("../../../deploy/glint.toml")
+            .lines()
+            .map(|l| match l.strip_prefix('#') {
+                Some(rest) if rest.starts_with(|c: char| c.is_ascii_lowercase() || c == '[') => rest,
+                _ => l,
+            })
+            .collect::<Vec<_>>()
+            .join("\n")
+    }
+
+    fn deploy_dir() -> PathBuf {
+        Path::new(env!("CARGO_MANIFEST_DIR")).join("../../deploy")
+    }
+
+    #[test]
+    fn reference_email_block_compiles() {
+        let cfg = Config::from_toml(&reference_with_email(), "ref", &deploy_dir(), false).unwrap();
+        let e = cfg.email.unwrap();
+        assert_eq!((e.relay_host.as_str(), e.relay_port), ("smtp.example.org", 587));
+        assert_eq!(e.tls, EmailTls::StartTls);
+        assert_eq!(e.recipients.len(), 1);
+        let r = &e.recipients[0];
+        assert_eq!(r.address.email.to_string(), "oncall@example.org");
+        assert_eq!((r.max_per_window, r.window), (10, Duration::from_secs(3600)));
+        let q = r.quiet.unwrap();
+        assert_eq!((q.start_min, q.end_min, q.min_sigma), (22 * 60, 6 * 60, 7.0));
+        assert!(q.contains(23 * 60) && q.contains(0) && !q.contains(6 * 60) && !q.contains(12 * 60));
+    }
+
+    #[test]
+    fn email_problems_are_all_reported() {
+        let text = reference_with_email()
+            .replace("relay = \"smtp.example.org:587\"", "relay = \"smtp.example.org\"")
+            .replace(
+                "from = \"glint <glint@example.org>\"",
+                "from = \"not an address\"",
+            )
+            .replace("# tls_ca_file", "tls_ca_file")
+            .replace("# username", "username")
+            .replace(
+                "# password_file = \"/etc/glint/smtp.password\"",
+                "password_file = \"/nowhere/pw\"",
+            )
+            .replace("min_sigma = 0.0", "min_sigma = 0.0\nmax_per_minute = 2")
+            .replace("\"22:00-06:00\"", "\"25:00-06:00\"")
+            .replace(
+                "kinds = [\"flash\", \"assessment\", \"withdrawal\", \"test\"]",
+                "kinds = [\"heartbeat\"]",
+            );
+        let err = Config::from_toml(&text, "ref", &deploy_dir(), false).unwrap_err();
+        let keys: Vec<&str> = err.problems.iter().map(|p| p.key.as_str()).collect();
+        for want in [
+            "email.relay",
+            "email.from",
+            "email.tls_ca_file",
+            "email.password_file",
+            "email.recipient[0].max_per_minute",
+            "email.recipient[0].quiet_hours_utc",
+            "email.recipient[0].kinds",
+        ] {
+            assert!(keys.contains(&want), "{want} not reported: {err}");
+        }
+        // Plain SMTP to a remote relay needs saying so.
+        let plain = reference_with_email().replace("tls = \"starttls\"", "tls = \"none\"");
+        let err = Config::from_toml(&plain, "ref", &deploy_dir(), false).unwrap_err();
+        assert_eq!(err.problems.len(), 1, "{err}");
+        assert_eq!(err.problems[0].key, "email.tls");
+        let allowed = plain.replace("allow_plain_remote = false", "allow_plain_remote = true");
+        assert!(Config::from_toml(&allowed, "ref", &deploy_dir(), false).is_ok());
     }
 }

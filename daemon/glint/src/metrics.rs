@@ -145,6 +145,15 @@ pub(crate) struct Metrics {
     pub(crate) bus_duplicates: AtomicU64,
     /// Bus publishes that failed (and were retried from the sink's cursor).
     pub(crate) bus_failures: AtomicU64,
+    /// Emails the relay accepted, one per alert (digests counted apart).
+    pub(crate) email_sent: AtomicU64,
+    /// Digest emails the relay accepted (each stands for several alerts held back by a rate limit or quiet
+    /// hours).
+    pub(crate) email_digests: AtomicU64,
+    /// Emails the relay rejected for good (5xx); logged with recipient and alert ids, then moved past.
+    pub(crate) email_rejected: AtomicU64,
+    /// Attempts that failed for a transient reason (4xx, refused, timeout) and were retried.
+    pub(crate) email_retries: AtomicU64,
     /// Damaged stretches of the journal found (and quarantined) when it was opened, torn tail included.
     pub(crate) journal_damaged: AtomicU64,
     /// Sequence numbers whose alerts the journal lost (damage, missing segments), found when it was opened.
@@ -170,6 +179,9 @@ impl Metrics {
             hists: Mutex::new(hists),
             photons: AtomicU64::new(0),
             refused_photons: AtomicU64::new(0),
+            bus_published: AtomicU64::new(0),
+            bus_duplicates: AtomicU64::new(0),
+            bus_failures: AtomicU64::new(0),
             refused_frames: AtomicU64::new(0),
             refused_connections: AtomicU64::new(0),
             refused_subscriber_connections: AtomicU64::new(0),
@@ -179,9 +191,10 @@ impl Metrics {
             subscribers: AtomicI64::new(0),
             subscribers_dropped: AtomicU64::new(0),
             journal_fsyncs: AtomicU64::new(0),
-            bus_published: AtomicU64::new(0),
-            bus_duplicates: AtomicU64::new(0),
-            bus_failures: AtomicU64::new(0),
+            email_sent: AtomicU64::new(0),
+            email_digests: AtomicU64::new(0),
+            email_rejected: AtomicU64::new(0),
+            email_retries: AtomicU64::new(0),
             journal_damaged: AtomicU64::new(0),
             journal_lost_seqs: AtomicU64::new(0),
             disk_free_bytes: AtomicI64::new(0),
@@ -268,6 +281,21 @@ impl Metrics {
                 get(&self.refused_subscriber_connections),
             ),
             (
+                "glint_bus_published_total",
+                "Alerts the bus server acknowledged (duplicates included).",
+                get(&self.bus_published),
+            ),
+            (
+                "glint_bus_duplicates_total",
+                "Alerts the bus already held under the same id.",
+                get(&self.bus_duplicates),
+            ),
+            (
+                "glint_bus_failures_total",
+                "Bus publishes that failed and were retried.",
+                get(&self.bus_failures),
+            ),
+            (
                 "glint_late_photons_total",
                 "Photons dropped as late (behind the instrument's watermark on arrival).",
                 get(&self.late_photons),
@@ -283,19 +311,24 @@ impl Metrics {
                 get(&self.journal_fsyncs),
             ),
             (
-                "glint_bus_published_total",
-                "Alerts the bus server acknowledged (duplicates included).",
-                get(&self.bus_published),
+                "glint_email_sent_total",
+                "Alert emails accepted by the relay (digests apart).",
+                get(&self.email_sent),
             ),
             (
-                "glint_bus_duplicates_total",
-                "Alerts the bus already held under the same id.",
-                get(&self.bus_duplicates),
+                "glint_email_digests_total",
+                "Digest emails accepted by the relay, each for alerts held by a rate limit or quiet hours.",
+                get(&self.email_digests),
             ),
             (
-                "glint_bus_failures_total",
-                "Bus publishes that failed and were retried.",
-                get(&self.bus_failures),
+                "glint_email_rejected_total",
+                "Emails the relay rejected for good (5xx); logged with recipient and alert ids, then skipped.",
+                get(&self.email_rejected),
+            ),
+            (
+                "glint_email_retries_total",
+                "Email attempts that failed transiently (4xx, refused, timeout) and were retried.",
+                get(&self.email_retries),
             ),
             (
                 "glint_journal_damaged_total",

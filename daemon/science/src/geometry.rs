@@ -1,6 +1,6 @@
 //! Small-sky geometry for the search and the alerts: the solid angle of the search disc (which scales the
 //! background), Gaussian PSF containment (which scales the signal), and the 90% error radius of a
-//! candidate's centroid.
+//! candidate's centroid, and the rotation from ICRS to galactic coordinates that alerts quote.
 
 /// 68.27% containment radius of a 2-D Gaussian PSF in units of its sigma: `sqrt(-2 ln(1 - 0.6827))`
 /// (the "1.515 sigma" of docs/science.md section 4).
@@ -99,6 +99,57 @@ pub fn error_radius90_deg(psf_sigma_deg: f64, n: u64, systematic_deg: f64) -> f6
     stat.hypot(sys)
 }
 
+/// Direction of the north galactic pole in ICRS, degrees, and the galactic longitude of the north celestial
+/// pole: the IAU 1958 galactic system as realised in ICRS by the Hipparcos catalogue (ESA 1997, SP-1200,
+/// vol. 1, section 1.5.3).
+pub const NGP_RA_DEG: f64 = 192.859_48;
+/// Declination of the north galactic pole, ICRS degrees.
+pub const NGP_DEC_DEG: f64 = 27.128_25;
+/// Galactic longitude of the north celestial pole, degrees.
+pub const NCP_L_DEG: f64 = 122.931_92;
+
+/// The rotation from ICRS unit vectors to galactic ones, derived from the three defining angles above: row 3
+/// is the galactic pole, rows 1 and 2 the directions of `l = 0` and `l = 90` in the galactic plane, placed so
+/// that the celestial pole lies at longitude [`NCP_L_DEG`]. Matches the printed matrix of the same source
+/// (eq. 1.5.11) to its ten digits.
+pub fn icrs_to_galactic_matrix() -> [[f64; 3]; 3] {
+    let (a, d) = (NGP_RA_DEG.to_radians(), NGP_DEC_DEG.to_radians());
+    let z = [d.cos() * a.cos(), d.cos() * a.sin(), d.sin()];
+    // The celestial pole projected onto the galactic plane, at longitude NCP_L_DEG there.
+    let n = [0.0, 0.0, 1.0];
+    let nz = z[2];
+    let e_raw = [n[0] - nz * z[0], n[1] - nz * z[1], n[2] - nz * z[2]];
+    let norm = (e_raw[0] * e_raw[0] + e_raw[1] * e_raw[1] + e_raw[2] * e_raw[2]).sqrt();
+    let e = [e_raw[0] / norm, e_raw[1] / norm, e_raw[2] / norm];
+    // w = z x e: the direction 90 degrees of longitude further on.
+    let w = [
+        z[1] * e[2] - z[2] * e[1],
+        z[2] * e[0] - z[0] * e[2],
+        z[0] * e[1] - z[1] * e[0],
+    ];
+    let (sl, cl) = NCP_L_DEG.to_radians().sin_cos();
+    let x = [0, 1, 2].map(|i| cl * e[i] - sl * w[i]);
+    let y = [0, 1, 2].map(|i| sl * e[i] + cl * w[i]);
+    [x, y, z]
+}
+
+/// Galactic longitude and latitude (degrees; longitude in `[0, 360)`, latitude in `[-90, 90]`) of an ICRS
+/// direction given in degrees. Non-finite input gives NaN.
+pub fn icrs_to_galactic_deg(ra_deg: f64, dec_deg: f64) -> (f64, f64) {
+    if !ra_deg.is_finite() || !dec_deg.is_finite() {
+        return (f64::NAN, f64::NAN);
+    }
+    let (ra, dec) = (ra_deg.to_radians(), dec_deg.to_radians());
+    let v = [dec.cos() * ra.cos(), dec.cos() * ra.sin(), dec.sin()];
+    let g = icrs_to_galactic_matrix().map(|row| row[0] * v[0] + row[1] * v[1] + row[2] * v[2]);
+    // atan2 of the out-of-plane part against the in-plane one stays accurate at the poles, unlike asin.
+    let b = g[2].atan2(g[0].hypot(g[1])).to_degrees();
+    let l = g[1].atan2(g[0]).to_degrees().rem_euclid(360.0);
+    // A longitude that rounds to 360 is 0.
+    let l = if l >= 360.0 { 0.0 } else { l };
+    (l, b)
+}
+
 #[cfg(test)]
 #[allow(clippy::unwrap_used)] // tests may unwrap
 mod tests {
@@ -152,5 +203,72 @@ mod tests {
         assert!((total - (stat * stat + 0.01).sqrt()).abs() < 1e-12);
         assert_eq!(error_radius90_deg(0.4, 0, 0.0), error_radius90_deg(0.4, 1, 0.0));
         assert_eq!(error_radius90_deg(f64::NAN, 3, 0.2), 0.2);
+    }
+    /// Angular distance between two directions, degrees.
+    fn sep_deg(l1: f64, b1: f64, l2: f64, b2: f64) -> f64 {
+        let (l1, b1, l2, b2) = (l1.to_radians(), b1.to_radians(), l2.to_radians(), b2.to_radians());
+        let c = b1.sin() * b2.sin() + b1.cos() * b2.cos() * (l1 - l2).cos();
+        c.clamp(-1.0, 1.0).acos().to_degrees()
+    }
+
+    #[test]
+    fn galactic_reference_directions() {
+        // Hipparcos (ESA 1997, SP-1200 vol. 1, section 1.5.3): the north galactic pole is RA 192.85948,
+        // Dec +27.12825; the north celestial pole lies at galactic longitude 122.93192, latitude 27.12825.
+        let (_, b) = icrs_to_galactic_deg(192.859_48, 27.128_25);
+        assert!((b - 90.0).abs() < 1e-9, "pole latitude {b}");
+        let (l, b) = icrs_to_galactic_deg(0.0, 90.0);
+        assert!(
+            (l - 122.931_92).abs() < 1e-4 && (b - 27.128_25).abs() < 1e-4,
+            "NCP at {l} {b}"
+        );
+        // The galactic centre (l = 0, b = 0) is at RA 266.40500, Dec -28.93617 in that realisation.
+        let (l, b) = icrs_to_galactic_deg(266.405, -28.936_17);
+        assert!(sep_deg(l, b, 0.0, 0.0) < 2e-4, "centre at {l} {b}");
+        // The south galactic pole is the antipode of the north one.
+        let (_, b) = icrs_to_galactic_deg(12.859_48, -27.128_25);
+        assert!((b + 90.0).abs() < 1e-5);
+        assert!(icrs_to_galactic_deg(f64::NAN, 1.0).0.is_nan());
+    }
+
+    #[test]
+    fn galactic_rotation_matches_the_printed_matrix() {
+        // Hipparcos (ESA 1997, SP-1200 vol. 1, eq. 1.5.11), transposed to map ICRS onto galactic axes.
+        let printed = [
+            [-0.054_875_560_4, -0.873_437_090_2, -0.483_835_015_5],
+            [0.494_109_427_9, -0.444_829_630_0, 0.746_982_244_5],
+            [-0.867_666_149_0, -0.198_076_373_4, 0.455_983_776_2],
+        ];
+        let m = icrs_to_galactic_matrix();
+        for i in 0..3 {
+            for j in 0..3 {
+                assert!(
+                    (m[i][j] - printed[i][j]).abs() < 1e-9,
+                    "[{i}][{j}] {} vs {}",
+                    m[i][j],
+                    printed[i][j]
+                );
+            }
+        }
+        // [calc] a rotation: rows of unit length, mutually orthogonal.
+        for i in 0..3 {
+            for j in 0..3 {
+                let dot: f64 = (0..3).map(|k| m[i][k] * m[j][k]).sum();
+                let want = if i == j { 1.0 } else { 0.0 };
+                assert!((dot - want).abs() < 1e-12, "rows {i} {j}: {dot}");
+            }
+        }
+    }
+
+    #[test]
+    fn galactic_rotation_is_orthonormal() {
+        let m = icrs_to_galactic_matrix();
+        for i in 0..3 {
+            for j in 0..3 {
+                let dot: f64 = (0..3).map(|k| m[i][k] * m[j][k]).sum();
+                let want = if i == j { 1.0 } else { 0.0 };
+                assert!((dot - want).abs() < 1e-9, "rows {i} {j}: {dot}");
+            }
+        }
     }
 }

@@ -146,6 +146,10 @@ pub struct Steady {
     pub rate_hz: f64,
     /// Photon index of the energy spectrum.
     pub spectral_index: f64,
+    /// Switched on at this GPS ns (the stream start when not given), e.g. a precursor before a burst.
+    pub on_gps_ns: Option<i64>,
+    /// Switched off at this GPS ns (the stream end when not given).
+    pub off_gps_ns: Option<i64>,
 }
 
 /// Instrumental trouble.
@@ -162,6 +166,21 @@ pub enum Glitch {
         position: Option<(f64, f64)>,
         /// Gaussian scatter about `position`, degrees (0: every event in exactly one direction).
         spread_deg: f64,
+    },
+    /// `photons` events at times spread uniformly over `duration_s`, uniformly over a disc of `radius_deg`
+    /// about a position, energies from the background's spectrum: a readout fault lighting a patch of the
+    /// detector, wider than the PSF.
+    Cluster {
+        /// Start, GPS ns.
+        t_gps_ns: i64,
+        /// Length, s.
+        duration_s: f64,
+        /// How many events.
+        photons: u64,
+        /// Centre, ICRS degrees.
+        position: (f64, f64),
+        /// Radius of the disc, degrees.
+        radius_deg: f64,
     },
     /// The all-sky background multiplied by `factor` for `duration_s`.
     RateJump {
@@ -280,6 +299,20 @@ struct RawSteady {
     dec_deg: f64,
     rate_hz: f64,
     spectral_index: f64,
+    on_offset_s: Option<f64>,
+    off_offset_s: Option<f64>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawCluster {
+    t_offset_s: Option<f64>,
+    t_utc: Option<String>,
+    duration_s: f64,
+    photons: i64,
+    ra_deg: f64,
+    dec_deg: f64,
+    radius_deg: f64,
 }
 
 #[derive(Debug, Deserialize)]
@@ -724,11 +757,25 @@ fn check_source(
                 prefix: prefix.clone(),
                 out: problems,
             };
+            let on_gps_ns = r
+                .on_offset_s
+                .map(|o| start + seconds_to_ns(p.range("on_offset_s", o, 0.0, run_s, true)));
+            let off_gps_ns = r
+                .off_offset_s
+                .map(|o| start + seconds_to_ns(p.range("off_offset_s", o, 0.0, run_s, false)));
+            if on_gps_ns.unwrap_or(start) >= off_gps_ns.unwrap_or(end) {
+                p.add(
+                    "off_offset_s",
+                    "the source must be switched off after it is switched on",
+                );
+            }
             Source::Steady(Steady {
                 ra_deg: p.ra(r.ra_deg),
                 dec_deg: p.dec(r.dec_deg),
                 rate_hz: p.range("rate_hz", r.rate_hz, 0.0, 1e6, false),
                 spectral_index: p.range("spectral_index", r.spectral_index, 1.0, 6.0, false),
+                on_gps_ns,
+                off_gps_ns,
             })
         }
         "glitch" => {
@@ -737,7 +784,8 @@ fn check_source(
                 _ => {
                     problems.push(Problem {
                         key: format!("{prefix}.mode"),
-                        message: "missing or not a string: one of identical_timestamps, rate_jump".into(),
+                        message: "missing or not a string: one of identical_timestamps, cluster, rate_jump"
+                            .into(),
                     });
                     return None;
                 }
@@ -778,6 +826,33 @@ fn check_source(
                         spread_deg,
                     })
                 }
+                "cluster" => {
+                    let r: RawCluster = table_into(table, &prefix, problems)?;
+                    let mut p = Problems {
+                        prefix: prefix.clone(),
+                        out: problems,
+                    };
+                    let t = p.time(start, r.t_offset_s, r.t_utc.as_deref());
+                    let duration_s = p.range("duration_s", r.duration_s, 0.0, 3600.0, true);
+                    if t < start || t + seconds_to_ns(duration_s.clamp(0.0, 3600.0)) >= end {
+                        p.add(
+                            "t_offset_s",
+                            format!("the cluster is not inside the run (0 to {run_s} s)"),
+                        );
+                    }
+                    if !(1..=1_000_000).contains(&r.photons) {
+                        p.add("photons", format!("{} is outside [1, 1000000]", r.photons));
+                    }
+                    let position = (p.ra(r.ra_deg), p.dec(r.dec_deg));
+                    let radius_deg = p.range("radius_deg", r.radius_deg, 0.0, 30.0, true);
+                    Source::Glitch(Glitch::Cluster {
+                        t_gps_ns: t,
+                        duration_s,
+                        photons: r.photons.unsigned_abs(),
+                        position,
+                        radius_deg,
+                    })
+                }
                 "rate_jump" => {
                     let r: RawRateJump = table_into(table, &prefix, problems)?;
                     let mut p = Problems {
@@ -803,7 +878,7 @@ fn check_source(
                     problems.push(Problem {
                         key: format!("{prefix}.mode"),
                         message: format!(
-                            "unknown glitch mode {other:?}: one of identical_timestamps, rate_jump"
+                            "unknown glitch mode {other:?}: one of identical_timestamps, cluster, rate_jump"
                         ),
                     });
                     return None;

@@ -514,16 +514,20 @@ impl Simulator {
             Source::Steady(st) => {
                 record.ra_deg = Some(st.ra_deg);
                 record.dec_deg = Some(st.dec_deg);
-                let (ok, best) = visible(st.ra_deg, st.dec_deg, kit.t0, kit.t_end);
+                let (on, off) = (
+                    st.on_gps_ns.unwrap_or(kit.t0).max(kit.t0),
+                    st.off_gps_ns.unwrap_or(kit.t_end).min(kit.t_end),
+                );
+                let (ok, best) = visible(st.ra_deg, st.dec_deg, on, off);
                 if !ok {
-                    not_visible(problems, best, "the whole run");
+                    not_visible(problems, best, "the whole time it is on");
                     return;
                 }
                 self.streamed.push(Streamed {
                     truth: Some(slot),
                     rng,
-                    start: kit.t0,
-                    end: kit.t_end,
+                    start: on,
+                    end: off,
                     rate_hz: st.rate_hz,
                     shape: Shape::Point {
                         ra: st.ra_deg,
@@ -559,6 +563,38 @@ impl Simulator {
                             }
                             None => kit.all_sky(&mut rng, t),
                         };
+                        photons.push(p);
+                    }
+                }
+                transient = Some(photons);
+            }
+            Source::Glitch(Glitch::Cluster {
+                t_gps_ns,
+                duration_s,
+                photons: n,
+                position: (ra, dec),
+                radius_deg,
+            }) => {
+                record.t_gps_ns = *t_gps_ns;
+                record.ra_deg = Some(*ra);
+                record.dec_deg = Some(*dec);
+                let (z, _) = kit.frame.to_instrument(*ra, *dec, *t_gps_ns);
+                if z > kit.resp.max_zenith_deg() {
+                    not_visible(problems, z, "the cluster");
+                    return;
+                }
+                let mut photons = Vec::new();
+                let span = seconds_to_ns(*duration_s);
+                for _ in 0..*n {
+                    let t = kit.quantise(t_gps_ns + (rng.random::<f64>() * span as f64) as i64);
+                    // Uniform over the disc: radius sqrt(u) R, position angle uniform.
+                    let rho = radius_deg * rng.random::<f64>().sqrt();
+                    let phi = std::f64::consts::TAU * rng.random::<f64>();
+                    let dec_c = (dec + rho * phi.sin()).clamp(-90.0, 90.0);
+                    let ra_c = ra + rho * phi.cos() / dec.to_radians().cos().max(1e-6);
+                    let e = kit.energy(&mut rng, &kit.bg_law);
+                    let p = kit.near(&mut rng, t, ra_c.rem_euclid(360.0), dec_c, 0.0, e);
+                    if !kit.in_dead(t) {
                         photons.push(p);
                     }
                 }

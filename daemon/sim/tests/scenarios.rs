@@ -259,3 +259,64 @@ fn deploy_scenarios_all_parse() {
         Simulator::new(&s, s.seed).unwrap();
     }
 }
+
+#[test]
+fn switched_steady_sources_and_clusters_are_checked_and_drawn() {
+    // A steady source switched off before it is switched on, and a cluster with a negative radius.
+    let p = problems(&with_sources(
+        r#"
+[[source]]
+kind = "steady"
+ra_deg = 35.0
+dec_deg = -22.0
+rate_hz = 1.0
+spectral_index = 2.0
+on_offset_s = 40
+off_offset_s = 20
+
+[[source]]
+kind = "glitch"
+mode = "cluster"
+t_offset_s = 10
+duration_s = 0.005
+photons = 40
+ra_deg = 35.0
+dec_deg = -22.0
+radius_deg = -1.0
+"#,
+    ));
+    has(&p, "source[0] (steady).off_offset_s", "switched off after");
+    has(&p, "source[1] (glitch).radius_deg", "");
+
+    // Good ones: the steady source's photons come only while it is on, the cluster's inside its disc and
+    // its 5 ms.
+    let text = with_sources(
+        r#"
+[[source]]
+kind = "steady"
+ra_deg = 35.0
+dec_deg = -22.0
+rate_hz = 5.0
+spectral_index = 2.0
+on_offset_s = 20
+off_offset_s = 40
+
+[[source]]
+kind = "glitch"
+mode = "cluster"
+t_offset_s = 10
+duration_s = 0.005
+photons = 40
+ra_deg = 35.0
+dec_deg = -22.0
+radius_deg = 2.0
+"#,
+    );
+    let s = parse_scenario(&text, Path::new(env!("CARGO_MANIFEST_DIR")), "good").unwrap();
+    let mut sim = Simulator::new(&s, 3).unwrap();
+    for _ in sim.by_ref() {}
+    let truth = sim.truth();
+    // 5 Hz for 20 s.
+    assert_poisson("switched steady source", truth[0].photons, 100.0);
+    assert_eq!(truth[1].photons, 40);
+}

@@ -1,9 +1,10 @@
 //! `glint listen`: a subscriber on the command line. Prints each alert (a readable summary, or one JSON line
-//! with `--json`), optionally runs a command per alert with the JSON on its stdin, and keeps the last sequence
-//! number seen in `--state-file`; the connection, resume and backoff live in [`crate::client::listen`].
+//! with `--json`), optionally runs a handler per alert (`--exec`, see [`crate::client::exec`]), and keeps the
+//! last sequence number handled in `--state-file`; the connection, resume and backoff live in
+//! [`crate::client::listen`]. Exits with [`EXIT_HANDLER_FAILED`] when a handler failed after its retries.
 
 use std::io::Write as _;
-use std::path::{Path, PathBuf};
+use std::path::PathBuf;
 use std::process::ExitCode;
 use std::time::Duration;
 
@@ -11,8 +12,9 @@ use anyhow::{Context, anyhow, bail};
 use glint_wire::pb;
 
 use crate::alerts;
+use crate::client::exec::{ExecOptions, ExecPool};
 use crate::client::listen::{ListenOptions, listen_loop};
-use crate::client::read_token;
+use crate::client::{read_state, read_token, write_state};
 use crate::tls::ClientTls;
 
 /// Arguments of `glint listen`.
@@ -42,9 +44,20 @@ pub(crate) struct ListenArgs {
     /// Print one JSON object per alert instead of a readable summary.
     #[arg(long)]
     json: bool,
-    /// Run this shell command for each alert, with the alert's JSON on its stdin.
+    /// Run this shell command (`sh -c`) for each alert, with the alert's JSON on its stdin and its key fields
+    /// in GLINT_ALERT_* environment variables; with --state-file, the file moves past an alert only once its
+    /// handler and every earlier one succeeded.
     #[arg(long, value_name = "CMD")]
     exec: Option<String>,
+    /// Handlers running at once.
+    #[arg(long, default_value_t = 4, value_name = "N")]
+    exec_concurrency: usize,
+    /// Seconds one handler attempt may run before it is killed (with its process group).
+    #[arg(long, default_value_t = 60.0, value_name = "SECONDS")]
+    exec_timeout_s: f64,
+    /// Attempts after the first for a handler that failed or timed out (backoff 0.5 s, doubling, at most 30 s).
+    #[arg(long, default_value_t = 3, value_name = "N")]
+    exec_retries: u32,
     /// Exit after this many alerts.
     #[arg(long, value_name = "N")]
     max_alerts: Option<u64>,
@@ -71,47 +84,8 @@ fn parse_kinds(names: &[String]) -> anyhow::Result<Vec<pb::AlertKind>> {
         .collect()
 }
 
-fn read_state(path: &Path) -> anyhow::Result<u64> {
-    match std::fs::read_to_string(path) {
-        Ok(t) => t
-            .trim()
-            .parse()
-            .with_context(|| format!("state file {} does not hold a sequence number", path.display())),
-        Err(e) if e.kind() == std::io::ErrorKind::NotFound => Ok(0),
-        Err(e) => Err(e).with_context(|| format!("cannot read state file {}", path.display())),
-    }
-}
-
-/// Writes the state file atomically (temporary file, fsync, rename), so a crash leaves the old or the new value.
-fn write_state(path: &Path, seq: u64) -> anyhow::Result<()> {
-    let tmp = path.with_extension("tmp");
-    let mut f = std::fs::File::create(&tmp).with_context(|| format!("cannot write {}", tmp.display()))?;
-    writeln!(f, "{seq}")
-        .and_then(|()| f.sync_all())
-        .with_context(|| format!("cannot write {}", tmp.display()))?;
-    std::fs::rename(&tmp, path)
-        .with_context(|| format!("cannot rename {} to {}", tmp.display(), path.display()))
-}
-
-fn run_exec(cmd: &str, json: &str) -> anyhow::Result<()> {
-    let mut child = std::process::Command::new("sh")
-        .arg("-c")
-        .arg(cmd)
-        .stdin(std::process::Stdio::piped())
-        .spawn()
-        .with_context(|| format!("cannot run '{cmd}'"))?;
-    if let Some(mut stdin) = child.stdin.take() {
-        // A command that does not read its input is fine.
-        let _ = stdin
-            .write_all(json.as_bytes())
-            .and_then(|()| stdin.write_all(b"\n"));
-    }
-    let status = child.wait().with_context(|| format!("waiting for '{cmd}'"))?;
-    if !status.success() {
-        eprintln!("glint listen: '{cmd}' exited with {status}");
-    }
-    Ok(())
-}
+/// Exit code of `glint listen` when a handler failed after its retries (the state file stops before it).
+pub(crate) const EXIT_HANDLER_FAILED: u8 = 3;
 
 /// `glint listen`.
 pub(crate) fn run(args: ListenArgs) -> anyhow::Result<ExitCode> {
@@ -125,7 +99,23 @@ pub(crate) fn run(args: ListenArgs) -> anyhow::Result<ExitCode> {
         (None, Some(p)) => read_state(p)?,
         (None, None) => 0,
     };
+    if args.exec_concurrency == 0 {
+        bail!("--exec-concurrency must be at least 1");
+    }
+    let exec_timeout = Duration::try_from_secs_f64(args.exec_timeout_s)
+        .ok()
+        .filter(|d| !d.is_zero())
+        .ok_or_else(|| anyhow!("--exec-timeout-s {} must be a number > 0", args.exec_timeout_s))?;
     let tls = args.tls_ca.as_deref().map(ClientTls::from_ca_file).transpose()?;
+    let mut pool = args.exec.as_ref().map(|cmd| {
+        ExecPool::new(ExecOptions {
+            cmd: cmd.clone(),
+            concurrency: args.exec_concurrency,
+            timeout: exec_timeout,
+            retries: args.exec_retries,
+            state_file: args.state_file.clone(),
+        })
+    });
     let opts = ListenOptions {
         addr: args.from.clone(),
         token,
@@ -153,11 +143,13 @@ pub(crate) fn run(args: ListenArgs) -> anyhow::Result<ExitCode> {
         }
         out.flush()?;
         drop(out);
-        if let Some(cmd) = &args.exec {
-            run_exec(cmd, &json)?;
-        }
-        if let Some(p) = &args.state_file {
-            write_state(p, a.seq)?;
+        match pool.as_mut() {
+            Some(p) => p.submit(a, json),
+            None => {
+                if let Some(p) = &args.state_file {
+                    write_state(p, a.seq)?;
+                }
+            }
         }
         count += 1;
         Ok(max.is_none_or(|m| count < m))
@@ -176,7 +168,9 @@ pub(crate) fn run(args: ListenArgs) -> anyhow::Result<ExitCode> {
             None => fut.await.map(Some),
         }
     });
-    match result? {
+    // Every handler started finishes (or times out) before the command ends.
+    let report = pool.map(ExecPool::finish);
+    let outcome = match result? {
         Some(_) => Ok(ExitCode::SUCCESS),
         None => match max {
             Some(m) => Err(anyhow!(
@@ -185,5 +179,22 @@ pub(crate) fn run(args: ListenArgs) -> anyhow::Result<ExitCode> {
             )),
             None => Ok(ExitCode::SUCCESS),
         },
+    };
+    if let Some(r) = report {
+        if let Some(e) = r.state_error {
+            bail!("the state file could not be kept: {e}");
+        }
+        if !r.failed.is_empty() {
+            let ids: Vec<&str> = r.failed.iter().map(|(_, id, _)| id.as_str()).collect();
+            eprintln!(
+                "glint listen: {} handler(s) failed: {}; the state file stops at {}",
+                r.failed.len(),
+                ids.join(" "),
+                r.committed
+                    .map_or("its old value".to_string(), |s| format!("seq {s}"))
+            );
+            return Ok(ExitCode::from(EXIT_HANDLER_FAILED));
+        }
     }
+    outcome
 }

@@ -14,4 +14,5 @@ pub(crate) mod reach;
 pub(crate) mod replay;
 pub(crate) mod run;
 pub(crate) mod simulate;
+pub(crate) mod test_alert;
 pub(crate) mod withdraw;

@@ -314,6 +314,10 @@ pub(crate) mod tests {
             far_per_year: 0.1,
             sigma_post_trials: 1.3,
             zenith_deg: 10.0,
+            flags: Vec::new(),
+            all_sky_sigma: 0.0,
+            identical_time_fraction: 0.0,
+            spread_sigma: 0.0,
             photons: times
                 .iter()
                 .map(|&t| PhotonRec {

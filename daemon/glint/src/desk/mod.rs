@@ -325,6 +325,18 @@ impl Desk {
         out.pop().ok_or(WithdrawError::Desk(DeskError::Stopped))
     }
 
+    /// An operator's TEST alert: journalled and published like any alert, so it reaches every sink; it
+    /// carries no trigger. Returns once it is on disk. Runs file I/O and waits: call it from a blocking thread.
+    pub(crate) fn issue_test(&self, operator: &str, note: &str) -> Result<Arc<pb::Alert>, DeskError> {
+        let g = self.room_for(1)?;
+        let issued_gps = unix_ns_to_gps_ns(now_unix_ns());
+        let mut g = g;
+        let a = g.sequencer.test_alert(operator, note, issued_gps);
+        tracing::info!(alert = %a.id, operator, note, "operator test alert");
+        let mut out = self.issue_and_wait(g, vec![a], Stamps::default())?;
+        out.pop().ok_or(DeskError::Stopped)
+    }
+
     /// Issues `n` TEST alerts (kind TEST, no trigger: they name no real event) for `instrument`, journalled
     /// and published like any alert; returns once they are on disk. What `glint bench-bus` measures the bus
     /// sink with. Blocking.

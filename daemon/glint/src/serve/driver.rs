@@ -36,6 +36,9 @@ pub(crate) fn engine_config(inst: &InstrumentConfig, search_enabled: bool) -> En
             all_sky_sigma_max: a.all_sky_sigma_max,
             identical_fraction_max: a.identical_fraction_max,
             spread_ratio_max: a.spread_ratio_max,
+            spread_sigma_max: a.spread_sigma_max,
+            shape_log_ratio_min: a.shape_log_ratio_min,
+            shape_p_max: a.shape_p_max,
             max_dead_fraction: a.max_dead_fraction,
             background_spectral_index: inst.spec.background.spectral_index,
             ..AssessConfig::default()

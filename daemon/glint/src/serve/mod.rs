@@ -2,8 +2,8 @@
 //! instrument (fed by a bounded channel, issuing findings through the alert desk; evaporation fits go to one
 //! fit worker), and stops in stages on SIGTERM/SIGINT within `daemon.shutdown_deadline`: stop accepting,
 //! drain the engines (open candidates are assessed as cut short) and the fit worker, fsync the journal, say
-//! goodbye to subscribers, let the bus sink (when `[bus]` is set) publish what is left. A second signal exits
-//! at once.
+//! goodbye to subscribers, give the email sink a short grace (its cursors are on disk), and let the bus sink
+//! (when `[bus]` is set) publish what is left. A second signal exits at once.
 //! Bound addresses are logged and written to `state_dir/ports.json` (useful with port 0).
 
 pub(crate) mod diskspace;
@@ -79,9 +79,10 @@ pub(crate) struct Daemon {
     closing: CancellationToken,
     fatal: CancellationToken,
     ingest_tasks: TaskTracker,
-    subscriber_tasks: TaskTracker,
     /// The bus sink, when `[bus]` is configured.
     bus_tasks: TaskTracker,
+    subscriber_tasks: TaskTracker,
+    email_tasks: TaskTracker,
     ingest: Arc<IngestShared>,
     engines: Vec<(String, std::thread::JoinHandle<()>)>,
     engines_done: tokio::sync::mpsc::Receiver<String>,
@@ -364,6 +365,29 @@ impl Daemon {
         let stop_accept = CancellationToken::new();
         let ingest_tasks = TaskTracker::new();
         let subscriber_tasks = TaskTracker::new();
+        let email_tasks = TaskTracker::new();
+        if let Some(email) = &cfg.email {
+            // A quarter of the shutdown deadline to mail what the last stages journalled; the rest waits for
+            // the next start, the cursors being on disk.
+            let responses = cfg
+                .instruments
+                .iter()
+                .map(|i| (i.id.clone(), i.response.clone()))
+                .collect();
+            crate::sinks::email::start(
+                email,
+                responses,
+                &state_dir,
+                &crate::sinks::email::Wiring {
+                    desk: &desk,
+                    metrics: &metrics,
+                    closing: &closing,
+                    tracker: &email_tasks,
+                },
+                cfg.daemon.shutdown_deadline / 4,
+            )
+            .context("cannot start the email sink")?;
+        }
         tokio::spawn(ingest::serve(
             ingest_listener,
             ingest_tls,
@@ -426,6 +450,7 @@ impl Daemon {
             ingest_tasks,
             subscriber_tasks,
             bus_tasks,
+            email_tasks,
             ingest,
             engines,
             engines_done,
@@ -486,9 +511,13 @@ impl Daemon {
         // 4. Goodbye to subscribers: what is left, then a closing heartbeat.
         self.closing.cancel();
         self.subscriber_tasks.close();
+        self.email_tasks.close();
         tokio::time::timeout_at(end, self.subscriber_tasks.wait())
             .await
             .map_err(|_| late("saying goodbye to subscribers"))?;
+        tokio::time::timeout_at(end, self.email_tasks.wait())
+            .await
+            .map_err(|_| late("keeping the email cursors"))?;
         // 5. The bus sink publishes what is left while the bus answers; what it could not is in the journal
         // and goes out after the next start, so running out of time here is not a failed shutdown.
         self.bus_tasks.close();

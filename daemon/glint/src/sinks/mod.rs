@@ -14,6 +14,7 @@ use tokio_util::sync::CancellationToken;
 use crate::desk::Desk;
 
 pub(crate) mod bus;
+pub(crate) mod email;
 pub(crate) mod subscribers;
 
 /// Alerts read from the desk per step of a cursor; bounds the memory one sink holds at a time.
@@ -29,6 +30,14 @@ pub(crate) enum Overflow {
     /// Never dropped: a step without progress for this long is a failure, after which the sink's owner
     /// reconnects with backoff and resumes from [`Sink::acknowledged`] (the journal holds what is behind).
     RetryFromAcknowledged(Duration),
+    /// Never dropped: the sink keeps its cursor on disk, so the journal is its queue for as long as retention
+    /// keeps it, and each step may take as long as its retries need. At shutdown it gets `grace` to deliver
+    /// what was journalled, then stops wherever it is and resumes from its cursor at the next start (an
+    /// item cut off mid-delivery is delivered again: at-least-once).
+    Resume {
+        /// Time allowed after shutdown begins.
+        grace: Duration,
+    },
 }
 
 /// Why a sink stopped.
@@ -82,8 +91,15 @@ pub(crate) trait Sink {
     /// Everything up to `seq` has been delivered: flush, and keep the cursor if the sink keeps one.
     async fn commit(&mut self, seq: u64) -> anyhow::Result<()>;
 
-    /// Waits, while caught up, for something of the sink's own (a heartbeat due, the peer gone).
+    /// Waits, while caught up, for something of the sink's own (a heartbeat due, the peer gone). It may be
+    /// cut short by a new alert, so it must only wait; work that must not be cut off goes in `housekeep`.
     async fn idle(&mut self) -> Result<Idle, SinkError>;
+
+    /// Work of the sink's own that is due (a digest whose rate limit has passed), run after each catch-up
+    /// under the same overflow policy as `deliver`.
+    async fn housekeep(&mut self) -> anyhow::Result<()> {
+        Ok(())
+    }
 
     /// Stalled under its overflow policy: a last word to the peer saying why and where to resume,
     /// best effort and bounded.
@@ -100,9 +116,9 @@ pub(crate) trait Sink {
 }
 
 /// Runs `sink` from `cursor` (the last sequence number it has) until the peer leaves, the sink stalls, or
-/// `closing` is cancelled (then everything journalled so far is delivered before `close`). `cursor` is
-/// left at the last sequence number handed over, or, after a failure of a sink that keeps an acknowledged
-/// cursor, at that cursor.
+/// `closing` is cancelled (then everything journalled so far is delivered before `close`, within the grace
+/// of a [`Overflow::Resume`] sink). `cursor` is left at the last sequence number handed over, or, after a
+/// failure of a sink that keeps an acknowledged cursor, at that cursor.
 pub(crate) async fn drive<S: Sink>(
     sink: &mut S,
     desk: &Arc<Desk>,
@@ -124,7 +140,15 @@ async fn drive_from<S: Sink>(
     cursor: &mut u64,
     closing: &CancellationToken,
 ) -> Result<(), SinkError> {
-    let (Overflow::DropWhenStalled(stall) | Overflow::RetryFromAcknowledged(stall)) = sink.overflow();
+    let policy = sink.overflow();
+    // For a resuming sink: resolves once shutdown began and its grace ran out.
+    let stop = async {
+        closing.cancelled().await;
+        if let Overflow::Resume { grace } = policy {
+            tokio::time::sleep(grace).await;
+        }
+    };
+    tokio::pin!(stop);
     let mut watch = desk.watch();
     let mut shutting_down = false;
     loop {
@@ -137,11 +161,15 @@ async fn drive_from<S: Sink>(
                     continue; // published meanwhile: read again
                 };
                 tracing::warn!(sink = sink.name(), from = gap.from_seq, to = gap.to_seq, reason = %gap.reason, "sending a gap: these alerts are not in the journal");
-                if let Err(e) = within(stall, *cursor, sink.gap(&gap)).await {
-                    return Err(last_word(sink, e).await);
+                match step(policy, *cursor, &mut stop, sink.gap(&gap)).await {
+                    Ok(true) => {}
+                    Ok(false) => return stopped(sink, *cursor).await,
+                    Err(e) => return Err(last_word(sink, e).await),
                 }
-                if let Err(e) = within(stall, *cursor, sink.commit(gap.to_seq)).await {
-                    return Err(last_word(sink, e).await);
+                match step(policy, *cursor, &mut stop, sink.commit(gap.to_seq)).await {
+                    Ok(true) => {}
+                    Ok(false) => return stopped(sink, *cursor).await,
+                    Err(e) => return Err(last_word(sink, e).await),
                 }
                 *cursor = gap.to_seq;
                 continue;
@@ -150,16 +178,25 @@ async fn drive_from<S: Sink>(
                 if !sink.wants(a) {
                     continue;
                 }
-                if let Err(e) = within(stall, *cursor, sink.deliver(a)).await {
-                    return Err(last_word(sink, e).await);
+                match step(policy, *cursor, &mut stop, sink.deliver(a)).await {
+                    Ok(true) => {}
+                    Ok(false) => return stopped(sink, *cursor).await,
+                    Err(e) => return Err(last_word(sink, e).await),
                 }
                 // Handed over: a stall from here on resumes after this one.
                 *cursor = a.seq;
             }
-            if let Err(e) = within(stall, *cursor, sink.commit(newest)).await {
-                return Err(last_word(sink, e).await);
+            match step(policy, *cursor, &mut stop, sink.commit(newest)).await {
+                Ok(true) => {}
+                Ok(false) => return stopped(sink, *cursor).await,
+                Err(e) => return Err(last_word(sink, e).await),
             }
             *cursor = newest;
+        }
+        match step(policy, *cursor, &mut stop, sink.housekeep()).await {
+            Ok(true) => {}
+            Ok(false) => return stopped(sink, *cursor).await,
+            Err(e) => return Err(last_word(sink, e).await),
         }
         if shutting_down {
             return sink.close().await.map_err(SinkError::Peer);
@@ -178,6 +215,36 @@ async fn drive_from<S: Sink>(
             () = closing.cancelled() => shutting_down = true,
         }
     }
+}
+
+/// One step of a sink under its overflow policy: within the stall limit, or (for a resuming sink) until its
+/// shutdown grace runs out. `Ok(false)`: cut off by shutdown.
+async fn step(
+    policy: Overflow,
+    cursor: u64,
+    stop: &mut std::pin::Pin<&mut impl Future<Output = ()>>,
+    work: impl Future<Output = anyhow::Result<()>>,
+) -> Result<bool, SinkError> {
+    match policy {
+        Overflow::DropWhenStalled(stall) | Overflow::RetryFromAcknowledged(stall) => {
+            within(stall, cursor, work).await.map(|()| true)
+        }
+        Overflow::Resume { .. } => tokio::select! {
+            r = work => r.map(|()| true).map_err(SinkError::Peer),
+            () = stop.as_mut() => Ok(false),
+        },
+    }
+}
+
+/// A resuming sink cut off by shutdown keeps its cursor (best effort, bounded) and ends normally.
+async fn stopped<S: Sink>(sink: &mut S, cursor: u64) -> Result<(), SinkError> {
+    tracing::info!(
+        sink = sink.name(),
+        cursor,
+        "stopped by shutdown; resumes from its cursor"
+    );
+    let _ = tokio::time::timeout(Duration::from_secs(2), sink.commit(cursor)).await;
+    Ok(())
 }
 
 /// One step of a sink, which must finish within the stall limit.

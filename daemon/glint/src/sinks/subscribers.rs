@@ -199,6 +199,8 @@ pub(crate) enum Request {
     Subscribe(pb::Subscribe, Filter),
     /// Withdraw an alert (the operator token matched).
     Withdraw(pb::WithdrawRequest),
+    /// Issue a TEST alert (the operator token matched).
+    TestAlert(pb::TestAlertRequest),
 }
 
 /// Checks a request without I/O: the token first (every configured token is compared, so the time taken
@@ -239,6 +241,16 @@ pub(crate) fn check_request(
                 ));
             }
             Ok(Request::Withdraw(w))
+        }
+        Some(subscriber_request::Body::TestAlert(t)) => {
+            if !operator(&t.token) {
+                return Err(Refusal::new(
+                    pb::RefusalCode::BadToken,
+                    "test alerts need the operator token",
+                    0,
+                ));
+            }
+            Ok(Request::TestAlert(t))
         }
         None => Err(Refusal::new(
             pb::RefusalCode::ProtocolViolation,
@@ -339,6 +351,26 @@ async fn handle(
             subscribe(framed, peer, s, filter, last, hub).await
         }
         Request::Withdraw(w) => withdraw(framed, w, hub).await,
+        Request::TestAlert(t) => test_alert(framed, t, hub).await,
+    }
+}
+
+/// An operator's TEST alert: issued through the desk (journalled, then every sink sees it) and sent back.
+async fn test_alert(mut framed: Conn, t: pb::TestAlertRequest, hub: &Hub) -> anyhow::Result<()> {
+    let desk = hub.desk.clone();
+    let result = tokio::task::spawn_blocking(move || desk.issue_test(&t.operator, &t.note)).await?;
+    match result {
+        Ok(alert) => {
+            let frame = pb::SubscriberFrame {
+                body: Some(subscriber_frame::Body::Alert((*alert).clone())),
+            };
+            tokio::time::timeout(REQUEST_TIMEOUT, framed.send(frame)).await??;
+            Ok(())
+        }
+        Err(e) => {
+            let detail = untrusted(&e.to_string());
+            refuse(&mut framed, Refusal::new(pb::RefusalCode::BadRequest, detail, 0)).await
+        }
     }
 }
 

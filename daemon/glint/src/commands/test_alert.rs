@@ -1,0 +1,85 @@
+//! `glint test-alert`: an operator asks a running daemon for a TEST alert. The request goes to the
+//! subscriber port with the operator token; the daemon issues the alert through the alert desk, so it is
+//! journalled and reaches every sink (subscribers, email) like a real one, but says TEST and carries no
+//! science. The command prints the alert's id.
+
+use std::path::PathBuf;
+use std::process::ExitCode;
+use std::time::Duration;
+
+use anyhow::{Context, anyhow};
+use futures::{SinkExt, StreamExt};
+use glint_wire::pb::{self, subscriber_frame, subscriber_request};
+use tokio_util::codec::Framed;
+
+use crate::client::read_token;
+use crate::codec::{SubscriberClientCodec, refusal_name};
+use crate::tls::{self, ClientTls};
+
+/// Arguments of `glint test-alert`.
+#[derive(Debug, clap::Args)]
+pub(crate) struct TestAlertArgs {
+    /// The daemon's subscriber address.
+    #[arg(long, value_name = "HOST:PORT")]
+    from: String,
+    /// File holding the operator token.
+    #[arg(long, value_name = "FILE")]
+    token_file: PathBuf,
+    /// Operator's name or initials, for the daemon's log and the alert (default: $USER).
+    #[arg(long)]
+    operator: Option<String>,
+    /// A note copied into the alert, e.g. "monthly check of the email path".
+    #[arg(long, default_value = "")]
+    note: String,
+    /// Connect with TLS, trusting the CA certificates in this PEM file.
+    #[arg(long, value_name = "FILE")]
+    tls_ca: Option<PathBuf>,
+}
+
+/// `glint test-alert`.
+pub(crate) fn run(args: TestAlertArgs) -> anyhow::Result<ExitCode> {
+    let token = read_token(&args.token_file)?;
+    let tls = args.tls_ca.as_deref().map(ClientTls::from_ca_file).transpose()?;
+    let operator = args
+        .operator
+        .clone()
+        .or_else(|| std::env::var("USER").ok())
+        .unwrap_or_default();
+    let rt = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .context("cannot start the runtime")?;
+    let alert = rt.block_on(async {
+        let io = tls::connect(&args.from, tls.as_ref()).await?;
+        let mut framed = Framed::new(
+            io,
+            SubscriberClientCodec::new(glint_wire::DEFAULT_MAX_FRAME_BYTES.max(64 << 20)),
+        );
+        let req = pb::TestAlertRequest {
+            token,
+            operator,
+            note: args.note.clone(),
+        };
+        framed
+            .send(pb::SubscriberRequest {
+                body: Some(subscriber_request::Body::TestAlert(req)),
+            })
+            .await?;
+        let reply = tokio::time::timeout(Duration::from_secs(30), framed.next())
+            .await
+            .map_err(|_| anyhow!("no reply from {} within 30 s", args.from))?
+            .ok_or_else(|| anyhow!("{} closed the connection without a reply", args.from))??;
+        match reply.body {
+            Some(subscriber_frame::Body::Alert(a)) => Ok(a),
+            Some(subscriber_frame::Body::Refusal(r)) => Err(anyhow!(
+                "{} refused: {} ({})",
+                args.from,
+                refusal_name(r.code),
+                r.detail
+            )),
+            _ => Err(anyhow!("{} sent an unexpected reply", args.from)),
+        }
+    })?;
+    println!("issued test alert {} (seq {})", alert.id, alert.seq);
+    Ok(ExitCode::SUCCESS)
+}
