@@ -6,7 +6,15 @@
 use std::io::Write as _;
 use std::path::Path;
 
-use anyhow::{Context, bail};
+use std::time::Duration;
+
+use anyhow::{Context, anyhow, bail};
+use futures::{SinkExt, StreamExt};
+use glint_wire::pb::{self, subscriber_frame, subscriber_request};
+use tokio_util::codec::Framed;
+
+use crate::codec::{SubscriberClientCodec, refusal_name};
+use crate::tls::{self, ClientTls};
 
 pub(crate) mod exec;
 pub(crate) mod feed;
@@ -44,4 +52,30 @@ pub(crate) fn write_state(path: &Path, seq: u64) -> anyhow::Result<()> {
         .with_context(|| format!("cannot write {}", tmp.display()))?;
     std::fs::rename(&tmp, path)
         .with_context(|| format!("cannot rename {} to {}", tmp.display(), path.display()))
+}
+
+/// Sends one operator request (a withdrawal, a test alert) to a daemon's subscriber port and returns the
+/// alert the daemon issued for it; a refusal or no reply within 30 s is an error naming the daemon.
+pub(crate) async fn operator_request(
+    addr: &str,
+    tls: Option<&ClientTls>,
+    body: subscriber_request::Body,
+) -> anyhow::Result<pb::Alert> {
+    let io = tls::connect(addr, tls).await?;
+    let mut framed = Framed::new(
+        io,
+        SubscriberClientCodec::new(glint_wire::DEFAULT_MAX_FRAME_BYTES.max(64 << 20)),
+    );
+    framed.send(pb::SubscriberRequest { body: Some(body) }).await?;
+    let reply = tokio::time::timeout(Duration::from_secs(30), framed.next())
+        .await
+        .map_err(|_| anyhow!("no reply from {addr} within 30 s"))?
+        .ok_or_else(|| anyhow!("{addr} closed the connection without a reply"))??;
+    match reply.body {
+        Some(subscriber_frame::Body::Alert(a)) => Ok(a),
+        Some(subscriber_frame::Body::Refusal(r)) => {
+            Err(anyhow!("{addr} refused: {} ({})", refusal_name(r.code), r.detail))
+        }
+        _ => Err(anyhow!("{addr} sent an unexpected reply")),
+    }
 }

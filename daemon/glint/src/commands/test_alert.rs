@@ -5,16 +5,12 @@
 
 use std::path::PathBuf;
 use std::process::ExitCode;
-use std::time::Duration;
 
-use anyhow::{Context, anyhow};
-use futures::{SinkExt, StreamExt};
-use glint_wire::pb::{self, subscriber_frame, subscriber_request};
-use tokio_util::codec::Framed;
+use anyhow::Context;
+use glint_wire::pb::{self, subscriber_request};
 
-use crate::client::read_token;
-use crate::codec::{SubscriberClientCodec, refusal_name};
-use crate::tls::{self, ClientTls};
+use crate::client::{operator_request, read_token};
+use crate::tls::ClientTls;
 
 /// Arguments of `glint test-alert`.
 #[derive(Debug, clap::Args)]
@@ -50,35 +46,12 @@ pub(crate) fn run(args: TestAlertArgs) -> anyhow::Result<ExitCode> {
         .build()
         .context("cannot start the runtime")?;
     let alert = rt.block_on(async {
-        let io = tls::connect(&args.from, tls.as_ref()).await?;
-        let mut framed = Framed::new(
-            io,
-            SubscriberClientCodec::new(glint_wire::DEFAULT_MAX_FRAME_BYTES.max(64 << 20)),
-        );
         let req = pb::TestAlertRequest {
             token,
             operator,
             note: args.note.clone(),
         };
-        framed
-            .send(pb::SubscriberRequest {
-                body: Some(subscriber_request::Body::TestAlert(req)),
-            })
-            .await?;
-        let reply = tokio::time::timeout(Duration::from_secs(30), framed.next())
-            .await
-            .map_err(|_| anyhow!("no reply from {} within 30 s", args.from))?
-            .ok_or_else(|| anyhow!("{} closed the connection without a reply", args.from))??;
-        match reply.body {
-            Some(subscriber_frame::Body::Alert(a)) => Ok(a),
-            Some(subscriber_frame::Body::Refusal(r)) => Err(anyhow!(
-                "{} refused: {} ({})",
-                args.from,
-                refusal_name(r.code),
-                r.detail
-            )),
-            _ => Err(anyhow!("{} sent an unexpected reply", args.from)),
-        }
+        operator_request(&args.from, tls.as_ref(), subscriber_request::Body::TestAlert(req)).await
     })?;
     println!("issued test alert {} (seq {})", alert.id, alert.seq);
     Ok(ExitCode::SUCCESS)
