@@ -54,6 +54,28 @@ pub(crate) fn write_state(path: &Path, seq: u64) -> anyhow::Result<()> {
         .with_context(|| format!("cannot rename {} to {}", tmp.display(), path.display()))
 }
 
+/// What every operator command does around its one request: reads the token file, the TLS trust, and the
+/// operator's name (`--operator`, else `$USER`), then sends the request `make` builds from the token and the
+/// name, on a runtime of its own, and returns the alert the daemon issued.
+pub(crate) fn operator_command(
+    from: &str,
+    token_file: &Path,
+    tls_ca: Option<&Path>,
+    operator: Option<String>,
+    make: impl FnOnce(String, String) -> subscriber_request::Body,
+) -> anyhow::Result<pb::Alert> {
+    let token = read_token(token_file)?;
+    let tls = tls_ca.map(ClientTls::from_ca_file).transpose()?;
+    let operator = operator
+        .or_else(|| std::env::var("USER").ok())
+        .unwrap_or_default();
+    let rt = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .context("cannot start the runtime")?;
+    rt.block_on(operator_request(from, tls.as_ref(), make(token, operator)))
+}
+
 /// Sends one operator request (a withdrawal, a test alert) to a daemon's subscriber port and returns the
 /// alert the daemon issued for it; a refusal or no reply within 30 s is an error naming the daemon.
 pub(crate) async fn operator_request(

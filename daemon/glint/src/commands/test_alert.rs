@@ -6,11 +6,9 @@
 use std::path::PathBuf;
 use std::process::ExitCode;
 
-use anyhow::Context;
 use glint_wire::pb::{self, subscriber_request};
 
-use crate::client::{operator_request, read_token};
-use crate::tls::ClientTls;
+use crate::client::operator_command;
 
 /// Arguments of `glint test-alert`.
 #[derive(Debug, clap::Args)]
@@ -34,25 +32,20 @@ pub(crate) struct TestAlertArgs {
 
 /// `glint test-alert`.
 pub(crate) fn run(args: TestAlertArgs) -> anyhow::Result<ExitCode> {
-    let token = read_token(&args.token_file)?;
-    let tls = args.tls_ca.as_deref().map(ClientTls::from_ca_file).transpose()?;
-    let operator = args
-        .operator
-        .clone()
-        .or_else(|| std::env::var("USER").ok())
-        .unwrap_or_default();
-    let rt = tokio::runtime::Builder::new_current_thread()
-        .enable_all()
-        .build()
-        .context("cannot start the runtime")?;
-    let alert = rt.block_on(async {
-        let req = pb::TestAlertRequest {
-            token,
-            operator,
-            note: args.note.clone(),
-        };
-        operator_request(&args.from, tls.as_ref(), subscriber_request::Body::TestAlert(req)).await
-    })?;
+    let note = args.note.clone();
+    let alert = operator_command(
+        &args.from,
+        &args.token_file,
+        args.tls_ca.as_deref(),
+        args.operator.clone(),
+        |token, operator| {
+            subscriber_request::Body::TestAlert(pb::TestAlertRequest {
+                token,
+                operator,
+                note,
+            })
+        },
+    )?;
     println!("issued test alert {} (seq {})", alert.id, alert.seq);
     Ok(ExitCode::SUCCESS)
 }

@@ -5,11 +5,10 @@
 use std::path::PathBuf;
 use std::process::ExitCode;
 
-use anyhow::{Context, bail};
+use anyhow::bail;
 use glint_wire::pb::{self, subscriber_request};
 
-use crate::client::{operator_request, read_token};
-use crate::tls::ClientTls;
+use crate::client::operator_command;
 
 /// Arguments of `glint withdraw`.
 #[derive(Debug, clap::Args)]
@@ -38,26 +37,21 @@ pub(crate) fn run(args: WithdrawArgs) -> anyhow::Result<ExitCode> {
     if args.reason.trim().is_empty() {
         bail!("--reason must say why the alert is withdrawn");
     }
-    let token = read_token(&args.token_file)?;
-    let tls = args.tls_ca.as_deref().map(ClientTls::from_ca_file).transpose()?;
-    let operator = args
-        .operator
-        .clone()
-        .or_else(|| std::env::var("USER").ok())
-        .unwrap_or_default();
-    let rt = tokio::runtime::Builder::new_current_thread()
-        .enable_all()
-        .build()
-        .context("cannot start the runtime")?;
-    let alert = rt.block_on(async {
-        let req = pb::WithdrawRequest {
-            token,
-            alert_id: args.id.clone(),
-            reason: args.reason.clone(),
-            operator,
-        };
-        operator_request(&args.from, tls.as_ref(), subscriber_request::Body::Withdraw(req)).await
-    })?;
+    let (alert_id, reason) = (args.id.clone(), args.reason.clone());
+    let alert = operator_command(
+        &args.from,
+        &args.token_file,
+        args.tls_ca.as_deref(),
+        args.operator.clone(),
+        |token, operator| {
+            subscriber_request::Body::Withdraw(pb::WithdrawRequest {
+                token,
+                alert_id,
+                reason,
+                operator,
+            })
+        },
+    )?;
     println!(
         "withdrew {} with {} (seq {})",
         alert.withdrawn_id, alert.id, alert.seq
