@@ -120,8 +120,6 @@ pub(crate) struct Issuer {
     desk: Arc<Desk>,
     fits: mpsc::SyncSender<FitTask>,
     fatal: CancellationToken,
-    /// Findings the engine has emitted so far (the engine thread keeps its resume point after each).
-    emitted: u64,
 }
 
 impl Issuer {
@@ -140,13 +138,7 @@ impl Issuer {
             desk,
             fits,
             fatal,
-            emitted: 0,
         }
-    }
-
-    /// Findings the engine has emitted through this issuer so far.
-    pub(crate) fn emitted(&self) -> u64 {
-        self.emitted
     }
 
     /// Notes a batch read at `received_unix_ns`, before the engine takes it.
@@ -200,7 +192,6 @@ impl Step<'_> {
 
 impl FindingSink for Step<'_> {
     fn emit(&mut self, finding: Finding) {
-        self.issuer.emitted += 1;
         let received = self.received_unix_ns;
         match finding {
             Finding::Assessment(a) if a.fit_job.is_some() => {

@@ -1,5 +1,6 @@
 //! Where each instrument's engine resumes after a restart: its watermark and the highest frame seq it took,
-//! kept in `state_dir/resume-<instrument>.json` (a few hundred bytes, atomic write and rename). Photons
+//! kept in `state_dir/resume-<instrument>.json` (a few hundred bytes, atomic write and rename, at the
+//! state-save cadence and at shutdown). Photons
 //! behind the resume point are counted and dropped before the engine, never searched twice, so a restart
 //! (or a producer that sends the same frames again) cannot raise the same alerts again. The journal adds
 //! a second floor: no photon at or before the newest trigger the instrument already issued is searched again.
