@@ -334,3 +334,48 @@ impl InstrumentDriver {
         self.engine.load_state(blob)
     }
 }
+
+#[cfg(test)]
+#[allow(clippy::unwrap_used)] // tests may unwrap
+mod tests {
+    use super::*;
+
+    fn batch(seq: u64, times: &[i64]) -> pb::PhotonBatch {
+        let n = times.len();
+        pb::PhotonBatch {
+            seq,
+            time_gps_ns: times.to_vec(),
+            ra_deg: vec![10.0; n],
+            dec_deg: vec![-20.0; n],
+            zenith_deg: vec![20.0; n],
+            azimuth_deg: vec![90.0; n],
+            energy_gev: vec![500.0; n],
+            ..Default::default()
+        }
+    }
+
+    #[test]
+    fn photons_behind_the_resume_floor_are_counted_and_never_reach_the_engine() {
+        let cfg = crate::config::Config::embedded_default().unwrap();
+        let mut d = InstrumentDriver::new(&cfg.instruments[0], false).unwrap();
+        let t0 = 1_400_000_000_000_000_000;
+        d.resume_after(t0 + 1_000);
+        let mut out = Vec::new();
+        // Wholly behind, then straddling, then past the floor.
+        d.on_batch(&batch(1, &[t0, t0 + 10, t0 + 20]), &mut out).unwrap();
+        d.on_batch(&batch(2, &[t0 + 900, t0 + 1_000, t0 + 1_100]), &mut out).unwrap();
+        d.on_batch(&batch(3, &[t0 + 2_000]), &mut out).unwrap();
+        assert_eq!(d.counters().behind_resume, 4);
+        assert_eq!(d.engine_stats().photons_in, 3);
+        assert_eq!(d.engine_stats().late, 0);
+        // A status frame from before the floor is taken without touching the engine.
+        let status = pb::StreamStatus {
+            seq: 4,
+            now_gps_ns: t0 + 500,
+            ..Default::default()
+        };
+        d.on_status(&status, &mut out).unwrap();
+        assert_eq!(d.counters().statuses, 1);
+        assert!(out.is_empty());
+    }
+}
