@@ -363,7 +363,8 @@ mod tests {
         let mut out = Vec::new();
         // Wholly behind, then straddling, then past the floor.
         d.on_batch(&batch(1, &[t0, t0 + 10, t0 + 20]), &mut out).unwrap();
-        d.on_batch(&batch(2, &[t0 + 900, t0 + 1_000, t0 + 1_100]), &mut out).unwrap();
+        d.on_batch(&batch(2, &[t0 + 900, t0 + 1_000, t0 + 1_100]), &mut out)
+            .unwrap();
         d.on_batch(&batch(3, &[t0 + 2_000]), &mut out).unwrap();
         assert_eq!(d.counters().behind_resume, 4);
         assert_eq!(d.engine_stats().photons_in, 3);
