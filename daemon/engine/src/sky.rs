@@ -676,6 +676,8 @@ impl SkyIndex {
     /// Stops following the windows: every seed is then counted exactly (for the test that compares the two).
     pub(crate) fn stop_following(&mut self) {
         self.win_dt.clear();
+        self.win_inc = [0; WINDOWS];
+        self.fine_from = 0;
     }
 
     /// Moves every window to end at `t` (no earlier than the last call): photons at or before t - dt leave
@@ -859,7 +861,7 @@ impl SkyIndex {
         for (tot, &i) in f.tot.iter_mut().zip(&self.win_inc) {
             *tot = tot.wrapping_add(i);
         }
-        let rows = self.win_dt.len() - self.fine_from;
+        let rows = self.win_dt.len().saturating_sub(self.fine_from);
         for row in &mut f.cnt[..rows] {
             row[usize::from(sub)] = row[usize::from(sub)].wrapping_add(1);
         }
