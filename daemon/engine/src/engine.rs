@@ -111,6 +111,15 @@ pub struct EngineStats {
     pub held_bytes: u64,
 }
 
+/// Sees every seeded test as it is made: the seed's time and direction and, per timescale tested (the
+/// ladder's order, possibly fewer than the ladder near dead time), the counts (seed included) and the
+/// background. `glint tune` measures p-value distributions and trigger rates at every threshold from one pass
+/// with it; the engine's findings do not depend on whether a tap is set.
+pub trait TestTap: Send + std::fmt::Debug {
+    /// One seed's tests.
+    fn seed(&mut self, t_ns: i64, v: [f64; 3], tests: &[(u64, f64)]);
+}
+
 /// Derived constants of a configuration.
 #[derive(Debug)]
 struct Params {
@@ -273,6 +282,8 @@ pub struct Engine {
     incoming: Vec<Photon>,
     hist: Vec<u32>,
     flash_buf: Vec<(PhotonRec, [f64; 3])>,
+    tap: Option<Box<dyn TestTap>>,
+    tap_buf: Vec<(u64, f64)>,
 }
 
 impl Engine {
@@ -312,8 +323,15 @@ impl Engine {
             group: Vec::new(),
             incoming: Vec::new(),
             flash_buf: Vec::new(),
+            tap: None,
+            tap_buf: Vec::new(),
             cfg,
         })
+    }
+
+    /// Sets (or with None removes) the tap that sees every seeded test.
+    pub fn set_tap(&mut self, tap: Option<Box<dyn TestTap>>) {
+        self.tap = tap;
     }
 
     /// The configuration the engine runs with.
@@ -747,6 +765,7 @@ impl Engine {
         let mut mask = 0u64;
         let mut best: Option<(usize, u64, f64, f64)> = None;
         let base = usize::from(bin) * k_all;
+        self.tap_buf.clear();
         for k in 0..kmax {
             n += u64::from(self.hist[k]);
             let idx = base + k;
@@ -759,6 +778,9 @@ impl Engine {
                 model.pfalse[idx] = false_crossing_probability(b, c);
             }
             let crit = model.crit[idx];
+            if self.tap.is_some() {
+                self.tap_buf.push((n, model.b[idx]));
+            }
             self.stats.tests[k] += 1;
             self.stats.predicted_false_crossings[k] += model.pfalse[idx];
             if n >= u64::from(crit) {
@@ -770,6 +792,9 @@ impl Engine {
                     best = Some((k, n, b, ln_p));
                 }
             }
+        }
+        if let Some(tap) = self.tap.as_mut() {
+            tap.seed(t, g.v, &self.tap_buf);
         }
         if let Some((k, n, b, ln_p)) = best {
             self.on_crossing(
