@@ -170,6 +170,15 @@ pub(crate) fn run(args: &TuneArgs) -> anyhow::Result<ExitCode> {
         spacing_s: args.spacing_s,
         zenith_deg: args.zenith_deg,
         seed: args.seed,
+        // A candidate stays open up to its persistence window after its last crossing, and its assessment
+        // reads the pre-window before it.
+        separation_window_s: inst
+            .assess
+            .persistence_min_s
+            .max(inst.assess.persistence_timescale_factor * longest)
+            + 2.0 * longest
+            + inst.assess.pre_window_s,
+        min_separation_deg: 2.0 * tune::search_info(&inst).match_deg,
     };
     let (plan, photons) = tune::prepare(
         &inst,

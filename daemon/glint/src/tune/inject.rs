@@ -41,6 +41,10 @@ pub(crate) struct InjectSpec {
     /// None: uniform over the field of view's solid angle; Some: this zenith, random azimuth.
     pub(crate) zenith_deg: Option<f64>,
     pub(crate) seed: u64,
+    /// Bursts of one pass closer than this in time (s) are also at least `min_separation_deg` apart, so
+    /// one burst's candidate never swallows the next one's.
+    pub(crate) separation_window_s: f64,
+    pub(crate) min_separation_deg: f64,
 }
 
 /// Lays out `spec.count` injections over the recordings' span `[t0, t1]`, avoiding their first `lead_s`
@@ -109,12 +113,25 @@ pub(crate) fn plan(
             }
             let Some(t) = chosen else { continue };
             let cos_max = zmax.to_radians().cos();
-            let zenith = spec.zenith_deg.unwrap_or_else(|| {
-                let c: f64 = 1.0 - rng.random::<f64>() * (1.0 - cos_max);
-                c.clamp(-1.0, 1.0).acos().to_degrees()
-            });
-            let az = rng.random::<f64>() * 360.0;
-            let (ra, dec) = frame.to_icrs(zenith, az, t);
+            let mut pos = (0.0, 0.0, 0.0);
+            for _ in 0..50 {
+                let zenith = spec.zenith_deg.unwrap_or_else(|| {
+                    let c: f64 = 1.0 - rng.random::<f64>() * (1.0 - cos_max);
+                    c.clamp(-1.0, 1.0).acos().to_degrees()
+                });
+                let az = rng.random::<f64>() * 360.0;
+                let (ra, dec) = frame.to_icrs(zenith, az, t);
+                pos = (zenith, ra, dec);
+                let window = ns(spec.separation_window_s);
+                let crowded = this.iter().any(|o: &Injection| {
+                    (o.t_ns - t).abs() <= window
+                        && glint_sim::sky::separation_deg(o.ra_deg, o.dec_deg, ra, dec) < spec.min_separation_deg
+                });
+                if !crowded {
+                    break;
+                }
+            }
+            let (zenith, ra, dec) = pos;
             this.push(Injection {
                 id,
                 pass,

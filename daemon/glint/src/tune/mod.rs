@@ -139,7 +139,8 @@ pub(crate) fn run_unit(
         0 => photons,
         1 => {
             let mut rng = rand_pcg::Pcg64::seed_from_u64(unit_seed);
-            owned = photons.scrambled(&mut rng);
+            let frame = glint_sim::sky::SkyFrame::new(&inst.spec.site, plan.span.0);
+            owned = photons.scrambled(&mut rng, &frame);
             &owned
         }
         _ => {
@@ -354,4 +355,175 @@ pub(crate) fn analyse(
         limits,
         published_99_range_per_pc3_yr: (2e2, 4e4),
     })
+}
+
+#[cfg(test)]
+#[allow(clippy::unwrap_used)] // tests may unwrap
+mod tests {
+    use std::path::Path;
+
+    use glint_engine::trials::TrialsMeter;
+    use glint_sim::{Simulator, load_scenario};
+
+    use super::*;
+    use crate::config::Config;
+
+    fn inst() -> InstrumentConfig {
+        let c = Config::embedded_default().unwrap();
+        let mut i = c.instruments[0].clone();
+        i.trials = None;
+        i
+    }
+
+    /// `seconds` of the quiet-hour scenario's background (250 Hz) with `seed`.
+    fn background(seconds: f64, seed: u64) -> Photons {
+        let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("../../deploy/scenarios/quiet-hour.toml");
+        let mut sc = load_scenario(&path).unwrap();
+        sc.duration_ns = (seconds * 1e9) as i64;
+        let sim = Simulator::new(&sc, seed).unwrap();
+        let mut p = Photons {
+            instrument: Some(sc.instrument.id.clone()),
+            photons: Photons::from_frames(sim),
+            dead: Vec::new(),
+        };
+        p.sort();
+        p
+    }
+
+    fn spec(inst: &InstrumentConfig, count: usize, distances_pc: Vec<f64>, zenith_deg: Option<f64>) -> InjectSpec {
+        InjectSpec {
+            count,
+            distances_pc,
+            max_time_to_go_s: 30.0,
+            spacing_s: 40.0,
+            zenith_deg,
+            seed: 5,
+            separation_window_s: 500.0,
+            min_separation_deg: 2.0 * search_info(inst).match_deg,
+        }
+    }
+
+    fn plan_for(inst: &InstrumentConfig, photons: &Photons, s: InjectSpec) -> Plan {
+        let tail = 335.0;
+        let passes = inject::plan(&s, photons, &inst.spec, &inst.response, LEAD_S, tail).unwrap();
+        Plan {
+            recordings: vec!["test".into()],
+            instrument: inst.id.clone(),
+            seed: 3,
+            loosest_far_per_year: 1e7,
+            inject: s,
+            passes,
+            span: photons.span(),
+        }
+    }
+
+    /// Passes on one thread, on three, and as two shards merged give the same outputs and the same report.
+    #[test]
+    fn threads_and_shards_give_the_serial_result() {
+        let inst = inst();
+        let photons = background(700.0, 21);
+        let plan = plan_for(&inst, &photons, spec(&inst, 8, vec![0.05, 0.1], None));
+        assert!(plan.passes.len() >= 2, "{} passes", plan.passes.len());
+        let all: Vec<usize> = (0..plan.units()).collect();
+        let quiet = |_: usize, _: usize| {};
+        let serial = run_units(&inst, &plan, &photons, &all, 1, &quiet).unwrap();
+        let threaded = run_units(&inst, &plan, &photons, &all, 3, &quiet).unwrap();
+        assert_eq!(
+            serde_json::to_string(&serial).unwrap(),
+            serde_json::to_string(&threaded).unwrap()
+        );
+        let even: Vec<usize> = all.iter().copied().filter(|u| u % 2 == 0).collect();
+        let odd: Vec<usize> = all.iter().copied().filter(|u| u % 2 == 1).collect();
+        let mut sharded = run_units(&inst, &plan, &photons, &odd, 1, &quiet).unwrap();
+        sharded.extend(run_units(&inst, &plan, &photons, &even, 2, &quiet).unwrap());
+        let a = analyse(&inst, &plan, serial).unwrap();
+        let b = analyse(&inst, &plan, sharded.clone()).unwrap();
+        assert_eq!(serde_json::to_string(&a).unwrap(), serde_json::to_string(&b).unwrap());
+        assert_eq!(a.injections.as_ref().unwrap().count, 8);
+        // A missing shard is an error, not a smaller report.
+        sharded.retain(|u| u.unit != 1);
+        assert!(analyse(&inst, &plan, sharded).is_err());
+    }
+
+    /// The acceptance checks of the background, at CI size (40 min calibration, 40 min test): randomised
+    /// p-values of the smallest timescale flat (chi-square, 20 dof, p > 0.001); tests crossing each
+    /// per-seed level within 3 sigma of the Poisson prediction on every timescale; candidates within 3
+    /// sigma of the calibrated false-alarm rate at every level expecting at least 10.
+    #[test]
+    fn background_matches_its_predictions() {
+        let mut inst = inst();
+        let cal_bg = background(2400.0, 11);
+        let mut d = InstrumentDriver::measuring(&inst, 1e7).unwrap();
+        let mut meter = TrialsMeter::new();
+        let mut found = Vec::new();
+        for f in cal_bg.frames(BATCH) {
+            d.on_frame(&f, &mut found).unwrap();
+            found.drain(..).for_each(|f| meter.observe(&f));
+        }
+        d.finish(&mut found);
+        found.drain(..).for_each(|f| meter.observe(&f));
+        let cfg = crate::serve::driver::engine_config(&inst, true);
+        let cal = meter.calibration(&cfg, &d.engine_stats(), 1e7, 20, "test").unwrap();
+        inst.trials = Some(cal);
+        let photons = background(2400.0, 12);
+        let plan = plan_for(&inst, &photons, spec(&inst, 0, vec![0.1], None));
+        let out = run_units(&inst, &plan, &photons, &[0, 1], 2, &|_, _| {}).unwrap();
+        let r = analyse(&inst, &plan, out).unwrap();
+        for bg in &r.background {
+            let t0 = &bg.timescales[0];
+            assert_eq!(t0.randomised_dof, 20);
+            assert!(t0.randomised_p > 1e-3, "{}: chi2 {} p {}", bg.name, t0.randomised_chi2, t0.randomised_p);
+            let mut checked = 0;
+            for t in &bg.timescales {
+                for l in t.levels.iter().filter(|l| l.predicted >= 3.0) {
+                    checked += 1;
+                    assert!(l.z.abs() <= 3.0, "{} {} s at p {:e}: {l:?}", bg.name, t.timescale_s, l.p);
+                }
+            }
+            assert!(checked >= 8, "{checked} levels checked");
+            let levels: Vec<_> = bg.far_levels.iter().filter(|l| l.expected >= 10.0).collect();
+            assert!(levels.len() >= 2, "{:?}", bg.far_levels);
+            for l in levels {
+                assert!(l.z.abs() <= 3.0, "{}: {l:?}", bg.name);
+            }
+        }
+    }
+
+    /// Efficiency at zenith 20 deg against `glint reach` at 0.7, 1 and 1.3 times its best r50, 24
+    /// injections each: the best timescale's efficiency within 3 binomial sigma (plus 0.05 for what the
+    /// reach leaves out: energy dispersion, the seed's own PSF scatter) of the reach's best P_det.
+    #[test]
+    fn efficiency_agrees_with_reach() {
+        let inst = inst();
+        let r = reach_report(
+            &inst.id,
+            &inst.spec,
+            &ReachParams {
+                far_per_year: inst.search.far_per_year,
+                timescales_s: inst.search.ladder_s.clone(),
+                search_radius_deg: inst.search.search_radius_deg,
+                zenith_deg: 20.0,
+                distances_pc: vec![0.1],
+            },
+        )
+        .unwrap();
+        let ds: Vec<f64> = [0.7, 1.0, 1.3].iter().map(|f| f * r.best_r50_pc).collect();
+        let photons = background(1500.0, 31);
+        let plan = plan_for(&inst, &photons, spec(&inst, 72, ds, Some(20.0)));
+        let all: Vec<usize> = (0..plan.units()).collect();
+        let out = run_units(&inst, &plan, &photons, &all, 2, &|_, _| {}).unwrap();
+        let rep = analyse(&inst, &plan, out).unwrap();
+        let inj = rep.injections.unwrap();
+        for d in &inj.distances {
+            let best = d.per_timescale.iter().copied().fold(0.0, f64::max);
+            let reach = d.reach_per_timescale.iter().copied().fold(0.0, f64::max);
+            let sigma = (reach * (1.0 - reach) / d.injected as f64).sqrt();
+            assert!(d.injected >= 20, "{d:?}");
+            assert!(
+                (best - reach).abs() <= 3.0 * sigma + 0.05,
+                "{} pc: injections {best:.3} vs reach {reach:.3} (sigma {sigma:.3})",
+                d.distance_pc
+            );
+        }
+    }
 }

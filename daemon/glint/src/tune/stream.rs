@@ -6,6 +6,7 @@ use std::path::PathBuf;
 
 use glint_wire::pb::{self, ProducerFrame, producer_frame::Body};
 use glint_wire::recording::RecordingReader;
+use glint_sim::sky::SkyFrame;
 use rand::seq::SliceRandom;
 
 /// Dead intervals longer than this become stream breaks (ten minutes; the engine's clock-jump guard is
@@ -129,7 +130,7 @@ impl Photons {
         Ok(out)
     }
 
-    fn sort(&mut self) {
+    pub(crate) fn sort(&mut self) {
         // Equal times keep a fixed order (by position bits) so the frames are a pure function of the set.
         self.photons.sort_by(|a, b| {
             (a.t, a.ra.to_bits(), a.dec.to_bits()).cmp(&(b.t, b.ra.to_bits(), b.dec.to_bits()))
@@ -144,13 +145,20 @@ impl Photons {
         (first, last)
     }
 
-    /// A time-scrambled copy: the times permuted among the photons, every other column kept with its photon.
-    pub(crate) fn scrambled(&self, rng: &mut rand_pcg::Pcg64) -> Self {
+    /// A time-scrambled copy: the times permuted among the photons, each photon keeping its position in
+    /// the instrument (zenith, azimuth) and energy, its sky position recomputed for its new time through
+    /// `frame`. Keeping RA and Dec instead would smear the sky's rotation over the whole span and leave
+    /// the background model's acceptance, which follows the instrument, wrong in every disc: on 40 minutes
+    /// at 250 Hz that gave 112 candidates at 1e6 per year where 76 were expected.
+    pub(crate) fn scrambled(&self, rng: &mut rand_pcg::Pcg64, frame: &SkyFrame) -> Self {
         let mut times: Vec<i64> = self.photons.iter().map(|p| p.t).collect();
         times.shuffle(rng);
         let mut out = self.clone();
         for (p, t) in out.photons.iter_mut().zip(times) {
             p.t = t;
+            let (ra, dec) = frame.to_icrs(f64::from(p.zenith), f64::from(p.azimuth), t);
+            p.ra = ra;
+            p.dec = dec;
         }
         out.sort();
         out
