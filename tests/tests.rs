@@ -13,4 +13,5 @@ mod listen_exec;
 mod live;
 mod replay;
 mod service;
+mod tune;
 mod util;

@@ -125,7 +125,8 @@ pub(crate) fn plan(
                 let window = ns(spec.separation_window_s);
                 let crowded = this.iter().any(|o: &Injection| {
                     (o.t_ns - t).abs() <= window
-                        && glint_sim::sky::separation_deg(o.ra_deg, o.dec_deg, ra, dec) < spec.min_separation_deg
+                        && glint_sim::sky::separation_deg(o.ra_deg, o.dec_deg, ra, dec)
+                            < spec.min_separation_deg
                 });
                 if !crowded {
                     break;

@@ -390,7 +390,12 @@ mod tests {
         p
     }
 
-    fn spec(inst: &InstrumentConfig, count: usize, distances_pc: Vec<f64>, zenith_deg: Option<f64>) -> InjectSpec {
+    fn spec(
+        inst: &InstrumentConfig,
+        count: usize,
+        distances_pc: Vec<f64>,
+        zenith_deg: Option<f64>,
+    ) -> InjectSpec {
         InjectSpec {
             count,
             distances_pc,
@@ -436,9 +441,15 @@ mod tests {
         let odd: Vec<usize> = all.iter().copied().filter(|u| u % 2 == 1).collect();
         let mut sharded = run_units(&inst, &plan, &photons, &odd, 1, &quiet).unwrap();
         sharded.extend(run_units(&inst, &plan, &photons, &even, 2, &quiet).unwrap());
+        // Shards travel as JSON files: the round trip must keep every bit.
+        let text = serde_json::to_string(&sharded).unwrap();
+        let mut sharded: Vec<UnitOutput> = serde_json::from_str(&text).unwrap();
         let a = analyse(&inst, &plan, serial).unwrap();
         let b = analyse(&inst, &plan, sharded.clone()).unwrap();
-        assert_eq!(serde_json::to_string(&a).unwrap(), serde_json::to_string(&b).unwrap());
+        assert_eq!(
+            serde_json::to_string(&a).unwrap(),
+            serde_json::to_string(&b).unwrap()
+        );
         assert_eq!(a.injections.as_ref().unwrap().count, 8);
         // A missing shard is an error, not a smaller report.
         sharded.retain(|u| u.unit != 1);
@@ -463,7 +474,9 @@ mod tests {
         d.finish(&mut found);
         found.drain(..).for_each(|f| meter.observe(&f));
         let cfg = crate::serve::driver::engine_config(&inst, true);
-        let cal = meter.calibration(&cfg, &d.engine_stats(), 1e7, 20, "test").unwrap();
+        let cal = meter
+            .calibration(&cfg, &d.engine_stats(), 1e7, 20, "test")
+            .unwrap();
         inst.trials = Some(cal);
         let photons = background(2400.0, 12);
         let plan = plan_for(&inst, &photons, spec(&inst, 0, vec![0.1], None));
@@ -472,12 +485,24 @@ mod tests {
         for bg in &r.background {
             let t0 = &bg.timescales[0];
             assert_eq!(t0.randomised_dof, 20);
-            assert!(t0.randomised_p > 1e-3, "{}: chi2 {} p {}", bg.name, t0.randomised_chi2, t0.randomised_p);
+            assert!(
+                t0.randomised_p > 1e-3,
+                "{}: chi2 {} p {}",
+                bg.name,
+                t0.randomised_chi2,
+                t0.randomised_p
+            );
             let mut checked = 0;
             for t in &bg.timescales {
                 for l in t.levels.iter().filter(|l| l.predicted >= 3.0) {
                     checked += 1;
-                    assert!(l.z.abs() <= 3.0, "{} {} s at p {:e}: {l:?}", bg.name, t.timescale_s, l.p);
+                    assert!(
+                        l.z.abs() <= 3.0,
+                        "{} {} s at p {:e}: {l:?}",
+                        bg.name,
+                        t.timescale_s,
+                        l.p
+                    );
                 }
             }
             assert!(checked >= 8, "{checked} levels checked");

@@ -4,9 +4,9 @@
 
 use std::path::PathBuf;
 
+use glint_sim::sky::SkyFrame;
 use glint_wire::pb::{self, ProducerFrame, producer_frame::Body};
 use glint_wire::recording::RecordingReader;
-use glint_sim::sky::SkyFrame;
 use rand::seq::SliceRandom;
 
 /// Dead intervals longer than this become stream breaks (ten minutes; the engine's clock-jump guard is
