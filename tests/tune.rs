@@ -41,7 +41,14 @@ fn tune_shards_merge_to_the_same_report_with_figures() {
     std::fs::write(&sc, scenario).unwrap();
     let rec = d.join("short.glrec.zst");
     run_ok(&["simulate", "--scenario", s(&sc), "--out", s(&rec)]);
-    let common = ["--config", s(&config), "--injections", "8", "--distances-pc", "0.05,0.1"];
+    let common = [
+        "--config",
+        s(&config),
+        "--injections",
+        "8",
+        "--distances-pc",
+        "0.05,0.1",
+    ];
     let whole = d.join("whole");
     let mut args = vec!["tune", s(&rec), "--jobs", "2", "--report", s(&whole)];
     args.extend(common);
@@ -49,12 +56,29 @@ fn tune_shards_merge_to_the_same_report_with_figures() {
     assert!(out.contains("upper limit 99% CL"), "{out}");
     let shards = d.join("shards");
     for shard in ["0/2", "1/2"] {
-        let mut args = vec!["tune", s(&rec), "--jobs", "1", "--shard", shard, "--report", s(&shards)];
+        let mut args = vec![
+            "tune",
+            s(&rec),
+            "--jobs",
+            "1",
+            "--shard",
+            shard,
+            "--report",
+            s(&shards),
+        ];
         args.extend(common);
         run_ok(&args);
     }
     let merged = d.join("merged");
-    run_ok(&["tune", "merge", s(&shards), "--config", s(&config), "--report", s(&merged)]);
+    run_ok(&[
+        "tune",
+        "merge",
+        s(&shards),
+        "--config",
+        s(&config),
+        "--report",
+        s(&merged),
+    ]);
     let a = std::fs::read_to_string(whole.join("report.json")).unwrap();
     let b = std::fs::read_to_string(merged.join("report.json")).unwrap();
     assert!(a == b, "the merged report differs from the single run's");
@@ -63,16 +87,30 @@ fn tune_shards_merge_to_the_same_report_with_figures() {
     assert_eq!(r["limits"].as_array().unwrap().len(), 3);
     for name in ["trigger_rate", "pvalues", "efficiency", "skymap", "verdicts"] {
         let png = std::fs::read(merged.join(format!("{name}.png"))).unwrap();
-        assert!(png.starts_with(b"\x89PNG\r\n\x1a\n") && png.len() > 10_000, "{name}.png");
+        assert!(
+            png.starts_with(b"\x89PNG\r\n\x1a\n") && png.len() > 10_000,
+            "{name}.png"
+        );
         let svg = std::fs::read_to_string(merged.join(format!("{name}.svg"))).unwrap();
         assert!(svg.contains("<svg") && svg.contains("</svg>"), "{name}.svg");
     }
     let md = std::fs::read_to_string(merged.join("report.md")).unwrap();
-    assert!(md.contains("## Upper limit on the local burst rate density"), "{md}");
+    assert!(
+        md.contains("## Upper limit on the local burst rate density"),
+        "{md}"
+    );
     // One shard missing: merge refuses rather than writing a smaller report.
     std::fs::remove_file(shards.join("shard-1-of-2.json")).unwrap();
     let o = Command::new(glint_bin())
-        .args(["tune", "merge", s(&shards), "--config", s(&config), "--report", s(&d.join("bad"))])
+        .args([
+            "tune",
+            "merge",
+            s(&shards),
+            "--config",
+            s(&config),
+            "--report",
+            s(&d.join("bad")),
+        ])
         .output()
         .unwrap();
     assert!(!o.status.success());
@@ -92,7 +130,15 @@ fn replay_matches_the_truth_and_lists_photons() {
         .find(|p| p.to_string_lossy().ends_with(".glrec.zst"))
         .unwrap();
     let truth = fixture.join("truth.jsonl");
-    let out = run_ok(&["replay", s(&rec), "--truth", s(&truth), "--photons", "--far-per-year", "2"]);
+    let out = run_ok(&[
+        "replay",
+        s(&rec),
+        "--truth",
+        s(&truth),
+        "--photons",
+        "--far-per-year",
+        "2",
+    ]);
     let lines: Vec<Value> = out.lines().map(|l| serde_json::from_str(l).unwrap()).collect();
     let summary = lines.last().unwrap();
     assert_eq!(summary["far_per_year"], 2.0);

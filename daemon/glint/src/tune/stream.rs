@@ -48,7 +48,7 @@ impl Photons {
     /// Reads the recordings (in the order given; their photons are then sorted by time). The gap between
     /// one recording's end and the next one's start is dead time.
     pub(crate) fn read(files: &[PathBuf], max_frame_bytes: usize) -> Result<Self, StreamError> {
-        let mut out = Photons::default();
+        let mut out = Self::default();
         for path in files {
             let err = |detail: String| StreamError::Read {
                 path: path.clone(),
