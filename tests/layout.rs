@@ -9,8 +9,8 @@ use crate::util::repo_root;
 
 /// The layers of `daemon/glint/src`, lowest first, as DEVELOPERS.md lists them: a module may use its own
 /// layer and those before it. Top-level files other than `cli.rs` and `main.rs` are the plumbing.
-const LAYERS: [&str; 9] = [
-    "plumbing", "client", "desk", "sinks", "coincide", "http", "serve", "commands", "cli",
+const LAYERS: [&str; 10] = [
+    "plumbing", "client", "desk", "sinks", "coincide", "http", "serve", "tune", "commands", "cli",
 ];
 
 fn src() -> PathBuf {

@@ -16,5 +16,6 @@ mod replay;
 mod restart;
 mod service;
 mod tls;
+mod tune;
 mod util;
 mod withdrawals;

@@ -111,6 +111,15 @@ pub struct EngineStats {
     pub held_bytes: u64,
 }
 
+/// Sees every seeded test as it is made: the seed's time and direction and, per timescale tested (the
+/// ladder's order, possibly fewer than the ladder near dead time), the counts (seed included) and the
+/// background. `glint tune` measures p-value distributions and trigger rates at every threshold from one pass
+/// with it; the engine's findings do not depend on whether a tap is set.
+pub trait TestTap: Send + std::fmt::Debug {
+    /// One seed's tests.
+    fn seed(&mut self, t_ns: i64, v: [f64; 3], tests: &[(u64, f64)]);
+}
+
 /// Derived constants of a configuration.
 #[derive(Debug)]
 struct Params {
@@ -273,6 +282,8 @@ pub struct Engine {
     incoming: Vec<Photon>,
     hist: Vec<u32>,
     flash_buf: Vec<(PhotonRec, [f64; 3])>,
+    tap: Option<Box<dyn TestTap>>,
+    tap_buf: Vec<(u64, f64)>,
 }
 
 impl Engine {
@@ -313,6 +324,8 @@ impl Engine {
             group: Vec::new(),
             incoming: Vec::new(),
             flash_buf: Vec::new(),
+            tap: None,
+            tap_buf: Vec::new(),
             cfg,
         })
     }
@@ -323,6 +336,12 @@ impl Engine {
     #[doc(hidden)]
     pub fn count_every_seed_exactly(&mut self) {
         self.sky.stop_following();
+    }
+
+    /// Sets (or with None removes) the tap that sees every seeded test. A tap wants every seed's counts,
+    /// not only those the sub-pixel bound lets through, so with a tap set every disc is counted exactly.
+    pub fn set_tap(&mut self, tap: Option<Box<dyn TestTap>>) {
+        self.tap = tap;
     }
 
     /// The configuration the engine runs with.
@@ -746,6 +765,7 @@ impl Engine {
         self.stats.seeds_tested += 1;
         let Some(model) = self.model.as_mut() else { return };
         let base = usize::from(bin) * k_all;
+        self.tap_buf.clear();
         // Thresholds first: they do not depend on the counts.
         for k in 0..kmax {
             let idx = base + k;
@@ -761,7 +781,7 @@ impl Engine {
         // The exact count is needed only where the sub-pixel bound reaches a critical count: elsewhere no
         // timescale can cross, and the zero counts below cross none either (every critical count is >= 1).
         self.hist.iter_mut().for_each(|h| *h = 0);
-        if self.sky.may_cross(g.slot, g.v, &model.crit[base..base + kmax]) {
+        if self.tap.is_some() || self.sky.may_cross(g.slot, g.v, &model.crit[base..base + kmax]) {
             self.sky.count_disc(
                 g.slot,
                 &Disc::new(g.v, self.p.cos_r),
@@ -777,6 +797,9 @@ impl Engine {
             n += u64::from(self.hist[k]);
             let idx = base + k;
             let crit = model.crit[idx];
+            if self.tap.is_some() {
+                self.tap_buf.push((n, model.b[idx]));
+            }
             self.stats.tests[k] += 1;
             self.stats.predicted_false_crossings[k] += model.pfalse[idx];
             if n >= u64::from(crit) {
@@ -788,6 +811,9 @@ impl Engine {
                     best = Some((k, n, b, ln_p));
                 }
             }
+        }
+        if let Some(tap) = self.tap.as_mut() {
+            tap.seed(t, g.v, &self.tap_buf);
         }
         if let Some((k, n, b, ln_p)) = best {
             self.on_crossing(

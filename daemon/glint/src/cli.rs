@@ -32,6 +32,9 @@ enum Command {
     Simulate(crate::commands::simulate::SimulateArgs),
     /// Replay recordings through the engine as fast as the CPU allows and print the alerts as JSON lines.
     Replay(crate::commands::replay::ReplayArgs),
+    /// Tune on recordings: measured false-alarm rates, injections, efficiency, upper limits, with plots
+    /// (`glint tune merge` combines the shards of a cluster run).
+    Tune(crate::commands::tune::TuneArgs),
     /// Print what a configured instrument can see: background, critical counts, reach, upper limits.
     Reach(crate::commands::reach::ReachArgs),
     /// Run the daemon: ingest, engines, alert desk, subscribers (until SIGTERM or SIGINT).
@@ -71,6 +74,7 @@ pub(crate) fn dispatch(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Simulate(a) => crate::commands::simulate::run(&a),
         Command::Replay(a) => crate::commands::replay::run(&a),
         Command::Reach(a) => crate::commands::reach::run(&a),
+        Command::Tune(a) => crate::commands::tune::run(&a),
         Command::Run(a) => crate::commands::run::run_command(a),
         Command::Demo(a) => crate::commands::demo::run(a),
         Command::BenchLive(a) => crate::commands::bench_live::bench(a),

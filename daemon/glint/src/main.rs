@@ -22,6 +22,7 @@ mod desk;
 mod http;
 mod serve;
 mod sinks;
+mod tune;
 
 // Joint alerts of several sites from the bus.
 mod coincide;

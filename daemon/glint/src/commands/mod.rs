@@ -15,4 +15,5 @@ pub(crate) mod replay;
 pub(crate) mod run;
 pub(crate) mod simulate;
 pub(crate) mod test_alert;
+pub(crate) mod tune;
 pub(crate) mod withdraw;

@@ -40,6 +40,127 @@ pub(crate) struct ReplayArgs {
     /// Print only the summary line, not the alerts.
     #[arg(long)]
     quiet: bool,
+    /// Run every instrument at this false-alarm rate per year instead of the configured one.
+    #[arg(long)]
+    far_per_year: Option<f64>,
+    /// A truth file (`glint simulate --truth`, JSON lines): the summary says which sources got a flash.
+    #[arg(long)]
+    truth: Option<PathBuf>,
+    /// Put each alert's photons (time, RA, Dec, energy) in its JSON, under `trigger.photon_list`.
+    #[arg(long)]
+    photons: bool,
+}
+
+/// One source of a truth file with a place and a time.
+#[derive(Debug, serde::Deserialize)]
+struct TruthLine {
+    index: usize,
+    kind: String,
+    ra_deg: Option<f64>,
+    dec_deg: Option<f64>,
+    t_gps_ns: i64,
+}
+
+/// A flash, for matching against the truth.
+#[derive(Debug, Clone)]
+struct FlashSeen {
+    id: String,
+    end_ns: i64,
+    ra_deg: f64,
+    dec_deg: f64,
+    match_deg: f64,
+}
+
+/// Truth sources against flashes: a source is found by the nearest flash within the engine's merge radius
+/// ending within `TRUTH_WINDOW_S` of its reference time.
+#[derive(Debug, Serialize)]
+struct TruthSummary {
+    sources: usize,
+    found: usize,
+    missed: Vec<usize>,
+    flashes_unmatched: usize,
+    matches: Vec<TruthMatch>,
+}
+
+#[derive(Debug, Serialize)]
+struct TruthMatch {
+    index: usize,
+    kind: String,
+    alert: String,
+    dt_s: f64,
+    separation_deg: f64,
+}
+
+/// Flashes end at most the longest timescale after a burst's reference time, and a burst's photons come
+/// at most its emission window before it; two minutes either way covers the default ladder.
+const TRUTH_WINDOW_S: f64 = 120.0;
+
+fn read_truth(path: &std::path::Path) -> anyhow::Result<Vec<TruthLine>> {
+    let text = std::fs::read_to_string(path).with_context(|| format!("reading {}", path.display()))?;
+    let mut out = Vec::new();
+    for (i, line) in text.lines().enumerate().filter(|(_, l)| !l.trim().is_empty()) {
+        let t: TruthLine = serde_json::from_str(line)
+            .with_context(|| format!("{} line {}: not a truth record", path.display(), i + 1))?;
+        if t.ra_deg.is_some() && t.dec_deg.is_some() && t.kind != "steady" {
+            out.push(t);
+        }
+    }
+    Ok(out)
+}
+
+fn match_truth(truth: &[TruthLine], flashes: &[FlashSeen]) -> TruthSummary {
+    let mut used = vec![false; flashes.len()];
+    let mut matches = Vec::new();
+    let mut missed = Vec::new();
+    for t in truth {
+        let (Some(ra), Some(dec)) = (t.ra_deg, t.dec_deg) else {
+            continue;
+        };
+        let best = flashes
+            .iter()
+            .enumerate()
+            .map(|(i, f)| (i, f, glint_sim::sky::separation_deg(ra, dec, f.ra_deg, f.dec_deg)))
+            .filter(|(_, f, sep)| {
+                *sep <= f.match_deg && ((f.end_ns - t.t_gps_ns) as f64 * 1e-9).abs() <= TRUTH_WINDOW_S
+            })
+            .min_by(|a, b| a.2.total_cmp(&b.2));
+        match best {
+            Some((i, f, sep)) => {
+                used[i] = true;
+                matches.push(TruthMatch {
+                    index: t.index,
+                    kind: t.kind.clone(),
+                    alert: f.id.clone(),
+                    dt_s: (f.end_ns - t.t_gps_ns) as f64 * 1e-9,
+                    separation_deg: sep,
+                });
+            }
+            None => missed.push(t.index),
+        }
+    }
+    TruthSummary {
+        sources: truth.len(),
+        found: matches.len(),
+        missed,
+        flashes_unmatched: used.iter().filter(|u| !**u).count(),
+        matches,
+    }
+}
+
+/// The trigger's photons as a list of objects, for a light curve.
+fn photon_list(a: &glint_wire::pb::Alert) -> Option<serde_json::Value> {
+    let t = a.trigger.as_ref()?;
+    let list: Vec<serde_json::Value> = (0..t.photon_time_gps_ns.len())
+        .map(|i| {
+            serde_json::json!({
+                "time_gps_ns": t.photon_time_gps_ns[i],
+                "ra_deg": t.photon_ra_deg.get(i),
+                "dec_deg": t.photon_dec_deg.get(i),
+                "energy_gev": t.photon_energy_gev.get(i),
+            })
+        })
+        .collect();
+    Some(serde_json::Value::Array(list))
 }
 
 /// The replay's closing line.
@@ -57,6 +178,10 @@ struct Summary {
     verdicts: BTreeMap<&'static str, u64>,
     wall_seconds: f64,
     photons_per_second: f64,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    far_per_year: Option<f64>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    truth: Option<TruthSummary>,
 }
 
 struct Out {
@@ -79,8 +204,18 @@ impl Out {
 
 /// Runs `glint replay`.
 pub(crate) fn run(args: &ReplayArgs) -> anyhow::Result<ExitCode> {
-    let cfg = config_or_exit(args.config.as_ref())?;
+    let mut cfg = config_or_exit(args.config.as_ref())?;
     crate::logging::init(&cfg.daemon.log_level, cfg.daemon.log_format);
+    if let Some(far) = args.far_per_year {
+        if !(far.is_finite() && far > 0.0) {
+            anyhow::bail!("--far-per-year must be a positive number, got {far}");
+        }
+        for inst in &mut cfg.instruments {
+            inst.search.far_per_year = far;
+        }
+    }
+    let truth = args.truth.as_deref().map(read_truth).transpose()?;
+    let mut flashes_seen: Vec<FlashSeen> = Vec::new();
     let file = match &args.alerts_out {
         Some(p) => Some(BufWriter::new(
             File::create(p).with_context(|| format!("creating {}", p.display()))?,
@@ -98,6 +233,7 @@ pub(crate) fn run(args: &ReplayArgs) -> anyhow::Result<ExitCode> {
     let mut verdicts: BTreeMap<&'static str, u64> = BTreeMap::new();
     let mut findings: Vec<Finding> = Vec::new();
     let started = Instant::now();
+    let photons = args.photons;
 
     let mut emit =
         |id: &str, d: &InstrumentDriver, found: &mut Vec<Finding>, out: &mut Out| -> anyhow::Result<()> {
@@ -105,11 +241,27 @@ pub(crate) fn run(args: &ReplayArgs) -> anyhow::Result<ExitCode> {
                 // Event time, not wall time, so replays are reproducible.
                 let issued = d.watermark_ns().unwrap_or(0);
                 let alert = seq.assign(id, &f, issued);
+                if let Finding::Flash(fl) = &f {
+                    let r = fl.search_radius_deg;
+                    flashes_seen.push(FlashSeen {
+                        id: alert.id.clone(),
+                        end_ns: fl.end_ns,
+                        ra_deg: fl.ra_deg,
+                        dec_deg: fl.dec_deg,
+                        match_deg: (3.0 * r).max(r + 1.0),
+                    });
+                }
                 *alerts_by_kind.entry(alerts::kind_name(alert.kind)).or_default() += 1;
                 if let Some(a) = &alert.assessment {
                     *verdicts.entry(alerts::verdict_name(a.verdict)).or_default() += 1;
                 }
-                out.alert(&alerts::alert_json(&alert).to_string())?;
+                let mut json = alerts::alert_json(&alert);
+                if photons {
+                    if let (Some(list), Some(trig)) = (photon_list(&alert), json.get_mut("trigger")) {
+                        trig["photon_list"] = list;
+                    }
+                }
+                out.alert(&json.to_string())?;
             }
             Ok(())
         };
@@ -171,6 +323,8 @@ pub(crate) fn run(args: &ReplayArgs) -> anyhow::Result<ExitCode> {
         verdicts,
         wall_seconds: wall,
         photons_per_second: 0.0,
+        far_per_year: args.far_per_year,
+        truth: truth.as_ref().map(|t| match_truth(t, &flashes_seen)),
     };
     for d in drivers.values() {
         let c = d.counters();

@@ -121,6 +121,11 @@ impl InstrumentDriver {
         })
     }
 
+    /// Sets the tap that sees every seeded test (`glint tune`).
+    pub(crate) fn set_tap(&mut self, tap: Option<Box<dyn glint_engine::TestTap>>) {
+        self.engine.set_tap(tap);
+    }
+
     /// The reorder tolerance the engine uses, nanoseconds.
     pub(crate) fn reorder_tolerance_ns(&self) -> i64 {
         self.reorder_tolerance_ns

@@ -33,7 +33,7 @@ pub(crate) enum PlotError {
     Png(#[from] png::EncodingError),
 }
 
-fn font_ready() -> bool {
+pub(crate) fn font_ready() -> bool {
     static READY: OnceLock<bool> = OnceLock::new();
     *READY.get_or_init(|| register_font("sans-serif", FontStyle::Normal, FONT).is_ok())
 }
