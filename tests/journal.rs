@@ -228,7 +228,7 @@ fn corrupt_middle_record_costs_only_that_alert_reported_as_a_gap_and_no_number_i
     let seqs: Vec<u64> = String::from_utf8_lossy(&out.stdout)
         .lines()
         .map(|l| {
-            serde_json::from_str::<serde_json::Value>(l).unwrap()["seq"]
+            util::checked_json(l)["seq"]
                 .as_u64()
                 .unwrap()
         })
@@ -314,7 +314,7 @@ fn journal_command_verifies_lists_shows_and_exports_without_touching_the_journal
     let seqs: Vec<u64> = String::from_utf8_lossy(&export.stdout)
         .lines()
         .map(|l| {
-            serde_json::from_str::<serde_json::Value>(l).unwrap()["seq"]
+            util::checked_json(l)["seq"]
                 .as_u64()
                 .unwrap()
         })

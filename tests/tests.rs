@@ -5,6 +5,7 @@
 
 mod bus;
 mod cli;
+mod contract;
 mod email;
 mod hostile;
 mod journal;
