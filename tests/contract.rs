@@ -96,16 +96,22 @@ fn every_rendered_proto_field_is_in_the_schema_and_the_docs() {
         for f in &m.field {
             let field = f.name();
             if props.get(field).is_none() {
-                problems.push(format!("{name}.{field} is not in docs/alert.schema.json $defs.{def}"));
+                problems.push(format!(
+                    "{name}.{field} is not in docs/alert.schema.json $defs.{def}"
+                ));
             }
             if !documented.contains(field) {
-                problems.push(format!("{name}.{field} is not in the table under '{name}' in docs/alerts.md"));
+                problems.push(format!(
+                    "{name}.{field} is not in the table under '{name}' in docs/alerts.md"
+                ));
             }
         }
         // And the other way: nothing documented that the schema does not have.
         let in_schema: BTreeSet<String> = props.as_object().unwrap().keys().cloned().collect();
         for extra in documented.difference(&in_schema) {
-            problems.push(format!("docs/alerts.md documents {name}.{extra}, which the schema lacks"));
+            problems.push(format!(
+                "docs/alerts.md documents {name}.{extra}, which the schema lacks"
+            ));
         }
     }
     assert!(problems.is_empty(), "{}", problems.join("\n"));
@@ -206,7 +212,7 @@ fn listen_keeps_to_the_contract_on_a_live_daemon() {
         assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
         let lines = util::checked_json_lines(&stdout(&o));
         let flashes = lines.iter().filter(|v| v["kind"] == "flash").count();
-        if flashes >= 2 && lines.iter().any(|v| v["kind"] == "withdrawal") || Instant::now() > deadline {
+        if (flashes >= 2 && lines.iter().any(|v| v["kind"] == "withdrawal")) || Instant::now() > deadline {
             break lines;
         }
     };
@@ -219,7 +225,14 @@ fn listen_keeps_to_the_contract_on_a_live_daemon() {
         .unwrap()
         .to_string();
     let w = Command::new(util::glint_bin())
-        .args(["withdraw", &second_flash, "--reason", "contract test", "--from", &d.subs.to_string()])
+        .args([
+            "withdraw",
+            &second_flash,
+            "--reason",
+            "contract test",
+            "--from",
+            &d.subs.to_string(),
+        ])
         .arg("--token-file")
         .arg(&op_token)
         .output()
@@ -254,13 +267,21 @@ fn listen_keeps_to_the_contract_on_a_live_daemon() {
         .position(|i| i == INSTRUMENT)
         .unwrap_or_else(|| panic!("{INSTRUMENT} missing from {hb}"));
     let wm = hb["watermark_gps_ns"][at].as_i64().unwrap();
-    assert!(wm > 1_400_000_000_000_000_000, "watermark {wm} after the demo stream");
+    assert!(
+        wm > 1_400_000_000_000_000_000,
+        "watermark {wm} after the demo stream"
+    );
     assert!(hb["watermark_age_s"][at].as_f64().unwrap() != 0.0);
     for f in of("flash") {
         let t = &f["trigger"];
         let n = t["photons"].as_u64().unwrap() as usize;
         assert!(n > 0);
-        for col in ["photon_time_gps_ns", "photon_ra_deg", "photon_dec_deg", "photon_energy_gev"] {
+        for col in [
+            "photon_time_gps_ns",
+            "photon_ra_deg",
+            "photon_dec_deg",
+            "photon_energy_gev",
+        ] {
             assert_eq!(t[col].as_array().unwrap().len(), n, "{col} of {}", f["id"]);
         }
         assert_eq!(f["replayed"], true);
@@ -274,7 +295,10 @@ fn listen_keeps_to_the_contract_on_a_live_daemon() {
     let keys = |v: &Value| v.as_object().unwrap().keys().cloned().collect::<Vec<_>>();
     assert_eq!(keys(withdrawals[0]), keys(withdrawals[1]));
     for wd in &withdrawals {
-        assert!(wd["trigger"].is_object(), "withdrawal without the withdrawn trigger: {wd}");
+        assert!(
+            wd["trigger"].is_object(),
+            "withdrawal without the withdrawn trigger: {wd}"
+        );
         let target = lines.iter().find(|v| v["id"] == wd["withdrawn_id"]).unwrap();
         assert_eq!(wd["trigger"]["end_gps_ns"], target["trigger"]["end_gps_ns"]);
     }
@@ -282,7 +306,12 @@ fn listen_keeps_to_the_contract_on_a_live_daemon() {
     let assessment = of("assessment")[0];
     let flash = lines.iter().find(|v| v["kind"] == "flash").unwrap();
     let mut flash_small = flash.clone();
-    for col in ["photon_time_gps_ns", "photon_ra_deg", "photon_dec_deg", "photon_energy_gev"] {
+    for col in [
+        "photon_time_gps_ns",
+        "photon_ra_deg",
+        "photon_dec_deg",
+        "photon_energy_gev",
+    ] {
         flash_small["trigger"].as_object_mut().unwrap().remove(col);
     }
     util::keep_example("flash", &flash_small);
@@ -293,14 +322,24 @@ fn listen_keeps_to_the_contract_on_a_live_daemon() {
     util::keep_example("heartbeat", hb);
 
     // On the screen: replayed alerts are marked, and their event-time latency is shown apart from wall time.
-    let o = listen(&d, &token, &["--replay-all", "--kinds", "flash", "--timeout-s", "2"]);
+    let o = listen(
+        &d,
+        &token,
+        &["--replay-all", "--kinds", "flash", "--timeout-s", "2"],
+    );
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
     let screen = stdout(&o);
     assert!(screen.contains("#1 flash GL-"), "{screen}");
     assert!(screen.contains("REPLAYED from the journal"), "{screen}");
     assert!(screen.contains("event-time latency"), "{screen}");
-    assert!(!screen.contains("(receipt to send)"), "a replayed alert shown with wall latency:\n{screen}");
-    assert!(!screen.contains("FLASH"), "kinds are lower case on the screen too:\n{screen}");
+    assert!(
+        !screen.contains("(receipt to send)"),
+        "a replayed alert shown with wall latency:\n{screen}"
+    );
+    assert!(
+        !screen.contains("FLASH"),
+        "kinds are lower case on the screen too:\n{screen}"
+    );
 }
 
 #[test]
@@ -313,11 +352,23 @@ fn listen_timeout_exits_4_when_it_never_connected() {
     for addr in [silent.local_addr().unwrap(), closed] {
         let started = Instant::now();
         let o = Command::new(util::glint_bin())
-            .args(["listen", "--from", &addr.to_string(), "--timeout-s", "1", "--token-file"])
+            .args([
+                "listen",
+                "--from",
+                &addr.to_string(),
+                "--timeout-s",
+                "1",
+                "--token-file",
+            ])
             .arg(&token)
             .output()
             .unwrap();
-        assert_eq!(o.status.code(), Some(4), "{addr}: {}", String::from_utf8_lossy(&o.stderr));
+        assert_eq!(
+            o.status.code(),
+            Some(4),
+            "{addr}: {}",
+            String::from_utf8_lossy(&o.stderr)
+        );
         assert!(String::from_utf8_lossy(&o.stderr).contains("did not accept the subscription"));
         assert!(started.elapsed() < Duration::from_secs(20));
     }
@@ -334,7 +385,16 @@ fn listen_help_lists_every_kind_and_the_probe_exit_code() {
         .output()
         .unwrap();
     let help = stdout(&o);
-    for k in ["flash", "assessment", "withdrawal", "test", "joint", "heartbeat", "--heartbeats", "--photons"] {
+    for k in [
+        "flash",
+        "assessment",
+        "withdrawal",
+        "test",
+        "joint",
+        "heartbeat",
+        "--heartbeats",
+        "--photons",
+    ] {
         assert!(help.contains(k), "listen --help does not mention {k}:\n{help}");
     }
     assert!(help.contains("4 if the"), "{help}");

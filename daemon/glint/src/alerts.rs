@@ -345,7 +345,7 @@ pub(crate) fn alert_json_with(a: &pb::Alert, opts: JsonOptions) -> Value {
         "assessment": a.assessment.as_ref().map_or(Value::Null, assessment_json),
         "withdrawn_id": a.withdrawn_id,
         "reason": a.reason,
-        "latency": latency_json(&a.latency.clone().unwrap_or_default()),
+        "latency": latency_json(&a.latency.unwrap_or_default()),
         "replayed": a.replayed,
         "joint": a.joint.as_ref().map_or(Value::Null, joint_json),
     })
@@ -370,7 +370,11 @@ pub(crate) fn heartbeat_json(h: &pb::Heartbeat) -> Value {
 
 /// A watermark in UTC, or "" when the instrument has no event time yet (watermark 0).
 fn watermark_utc(w: i64) -> String {
-    if w == 0 { String::new() } else { timefmt::gps_ns_to_utc(w) }
+    if w == 0 {
+        String::new()
+    } else {
+        timefmt::gps_ns_to_utc(w)
+    }
 }
 
 /// Seconds from a watermark to the daemon's clock (both GPS ns); 0 when there is no watermark yet.
@@ -423,7 +427,11 @@ pub(crate) fn alert_summary(a: &pb::Alert) -> String {
         kind_name(a.kind),
         a.id,
         a.instrument,
-        if a.replayed { "  REPLAYED from the journal" } else { "" }
+        if a.replayed {
+            "  REPLAYED from the journal"
+        } else {
+            ""
+        }
     );
     if let Some(t) = &a.trigger {
         s += &format!(
@@ -526,7 +534,11 @@ fn latency_words(a: &pb::Alert) -> String {
             ));
         }
     }
-    if let Some(t) = a.trigger.as_ref().filter(|t| t.end_gps_ns != 0 && a.issued_gps_ns != 0) {
+    if let Some(t) = a
+        .trigger
+        .as_ref()
+        .filter(|t| t.end_gps_ns != 0 && a.issued_gps_ns != 0)
+    {
         if a.kind == pb::AlertKind::Flash as i32 || a.kind == pb::AlertKind::Assessment as i32 {
             parts.push(format!(
                 "event-time latency {:.3} s (window end to issue)",
