@@ -465,13 +465,10 @@ fn two_sites_with_one_shared_burst_give_one_joint_alert() {
         .output()
         .unwrap();
     assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
-    let joints: Vec<serde_json::Value> = String::from_utf8(out.stdout)
-        .unwrap()
-        .lines()
-        .map(|l| serde_json::from_str(l).unwrap())
-        .collect();
+    let joints = util::checked_json_lines(&String::from_utf8(out.stdout).unwrap());
     assert_eq!(joints.len(), 1, "{joints:#?}");
     let j = &joints[0];
+    util::keep_example("joint", j);
     assert_eq!(j["kind"], "joint");
     let joint = &j["joint"];
     let ids: Vec<&str> = joint["alert_ids"]

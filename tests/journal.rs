@@ -227,11 +227,7 @@ fn corrupt_middle_record_costs_only_that_alert_reported_as_a_gap_and_no_number_i
     assert!(stderr.contains("warning: alerts 200-200"), "{stderr}");
     let seqs: Vec<u64> = String::from_utf8_lossy(&out.stdout)
         .lines()
-        .map(|l| {
-            serde_json::from_str::<serde_json::Value>(l).unwrap()["seq"]
-                .as_u64()
-                .unwrap()
-        })
+        .map(|l| util::checked_json(l)["seq"].as_u64().unwrap())
         .collect();
     assert_eq!(seqs.len(), 400);
     assert_eq!(seqs.last(), Some(&401));
@@ -313,11 +309,7 @@ fn journal_command_verifies_lists_shows_and_exports_without_touching_the_journal
     assert!(export.status.success(), "{}", text(&export));
     let seqs: Vec<u64> = String::from_utf8_lossy(&export.stdout)
         .lines()
-        .map(|l| {
-            serde_json::from_str::<serde_json::Value>(l).unwrap()["seq"]
-                .as_u64()
-                .unwrap()
-        })
+        .map(|l| util::checked_json(l)["seq"].as_u64().unwrap())
         .collect();
     assert_eq!(seqs, (1..=50).collect::<Vec<_>>());
     // Damaged: a flipped byte in record 10 and a torn tail; verify reports both and changes nothing.

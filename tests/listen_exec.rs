@@ -76,9 +76,8 @@ fn exec_handlers_run_concurrently_up_to_the_limit_with_json_and_environment() {
             .collect();
         assert_eq!(v.len(), 2, "handler {seq} ran once: {t}");
         spans.push((v[0], v[1]));
-        let json: serde_json::Value =
-            serde_json::from_str(&std::fs::read_to_string(out_dir.join(format!("in-{seq}.json"))).unwrap())
-                .unwrap();
+        let json =
+            util::checked_json(&std::fs::read_to_string(out_dir.join(format!("in-{seq}.json"))).unwrap());
         let env = std::fs::read_to_string(out_dir.join(format!("env-{seq}"))).unwrap();
         assert_eq!(json["seq"], seq);
         for want in [

@@ -508,11 +508,7 @@ fn listen_resumes_from_its_state_file_and_operator_withdraws() {
             "listen failed: {}",
             String::from_utf8_lossy(&out.stderr)
         );
-        String::from_utf8(out.stdout)
-            .unwrap()
-            .lines()
-            .map(|l| serde_json::from_str::<serde_json::Value>(l).unwrap())
-            .collect::<Vec<_>>()
+        util::checked_json_lines(&String::from_utf8(out.stdout).unwrap())
     };
     let first = listen(2);
     assert_eq!(

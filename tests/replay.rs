@@ -7,7 +7,7 @@ use std::process::Command;
 
 use serde_json::Value;
 
-use crate::util::{glint_bin, repo_root};
+use crate::util::{self, glint_bin, repo_root};
 
 fn fixtures() -> Vec<PathBuf> {
     let mut dirs: Vec<PathBuf> = std::fs::read_dir(repo_root().join("replay-fixtures"))
@@ -82,6 +82,9 @@ fn fixtures_give_their_committed_alerts_line_for_line() {
         replay(&recording_of(&dir), &out);
         let want = std::fs::read_to_string(dir.join("expected.jsonl")).unwrap();
         let got = std::fs::read_to_string(&out).unwrap();
+        // Both the committed lines and today's keep to the published schema.
+        util::checked_json_lines(&want);
+        util::checked_json_lines(&got);
         let (w, g): (Vec<&str>, Vec<&str>) = (want.lines().collect(), got.lines().collect());
         let mut report = Vec::new();
         for i in 0..w.len().max(g.len()) {
@@ -120,7 +123,8 @@ fn replay_is_byte_identical_run_after_run() {
     replay(&recording_of(dir), &b);
     assert_eq!(std::fs::read(&a).unwrap(), std::fs::read(&b).unwrap());
     // The last stdout line is the summary, with the photon count and throughput.
-    let summary: Value = serde_json::from_str(stdout.lines().last().unwrap()).unwrap();
+    let lines = util::checked_json_lines(&stdout);
+    let summary = lines.last().unwrap();
     assert_eq!(summary["kind"], "summary");
     assert!(summary["photons"].as_u64().unwrap() > 10_000);
     assert!(summary["photons_per_second"].as_f64().unwrap() > 0.0);
@@ -162,7 +166,7 @@ fn no_search_replay_takes_every_photon_and_finds_nothing() {
         1,
         "--no-search must give only the summary:\n{text}"
     );
-    let s: Value = serde_json::from_str(text.trim()).unwrap();
+    let s = util::checked_json(text.trim());
     assert!(s["photons"].as_u64().unwrap() > 10_000);
     assert_eq!(s["refused_photons"], 0);
 }

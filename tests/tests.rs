@@ -6,6 +6,7 @@
 mod bus;
 mod checks;
 mod cli;
+mod contract;
 mod email;
 mod hostile;
 mod journal;

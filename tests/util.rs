@@ -468,3 +468,49 @@ pub(crate) fn token_file(dir: &Path, name: &str, token: &str) -> PathBuf {
     std::fs::write(&p, format!("{token}\n")).unwrap();
     p
 }
+
+/// The JSON Schema of every JSON line glint writes (docs/alert.schema.json), compiled once.
+pub(crate) fn line_schema() -> &'static jsonschema::Validator {
+    static SCHEMA: std::sync::OnceLock<jsonschema::Validator> = std::sync::OnceLock::new();
+    SCHEMA.get_or_init(|| {
+        let text = std::fs::read_to_string(repo_root().join("docs/alert.schema.json")).unwrap();
+        let schema: serde_json::Value = serde_json::from_str(&text).unwrap();
+        jsonschema::draft202012::new(&schema).expect("docs/alert.schema.json is a valid draft 2020-12 schema")
+    })
+}
+
+/// Parses one JSON line glint wrote and checks it against docs/alert.schema.json, failing the test with every
+/// violation when it does not validate. Every test that reads glint's JSON lines reads them through this.
+pub(crate) fn checked_json(line: &str) -> serde_json::Value {
+    let v: serde_json::Value =
+        serde_json::from_str(line).unwrap_or_else(|e| panic!("not a JSON line ({e}): {line}"));
+    let errors: Vec<String> = line_schema()
+        .iter_errors(&v)
+        .map(|e| format!("{} at {}", e, e.instance_path()))
+        .collect();
+    assert!(
+        errors.is_empty(),
+        "a JSON line does not validate against docs/alert.schema.json:\n  {}\nline: {line}",
+        errors.join("\n  ")
+    );
+    v
+}
+
+/// Every non-empty line of `text`, each through [`checked_json`].
+pub(crate) fn checked_json_lines(text: &str) -> Vec<serde_json::Value> {
+    text.lines()
+        .filter(|l| !l.trim().is_empty())
+        .map(checked_json)
+        .collect()
+}
+
+/// Keeps one JSON line as the example of its kind when `GLINT_EXAMPLES_DIR` is set (to regenerate the
+/// examples in docs/alerts.md: `GLINT_EXAMPLES_DIR=/tmp/ex cargo test --release -p glint-tests contract`).
+/// `name` is the file stem, e.g. "flash" or "withdrawal-automatic".
+pub(crate) fn keep_example(name: &str, v: &serde_json::Value) {
+    if let Some(dir) = std::env::var_os("GLINT_EXAMPLES_DIR") {
+        std::fs::create_dir_all(&dir).unwrap();
+        let text = serde_json::to_string_pretty(v).unwrap();
+        std::fs::write(Path::new(&dir).join(format!("{name}.json")), text + "\n").unwrap();
+    }
+}

@@ -10,7 +10,7 @@ use glint_science::poisson::p_from_sigma;
 use crate::candidate::Candidate;
 use crate::config::AssessConfig;
 use crate::engine::pre_end;
-use crate::finding::{Assessment, Flash, Verdict, Withdrawal};
+use crate::finding::{Assessment, Flash, Verdict, Withdrawal, flags as flag};
 use crate::fit::{FitJob, LightCurve, best_strength, ln_likelihood};
 use crate::shape::{ShapeInput, light_curve_shape, precursor_test};
 use crate::sky::{angle_deg, unit_vector};
@@ -219,7 +219,7 @@ pub(crate) fn assess(inp: &AssessInput<'_>) -> (Assessment, Option<Withdrawal>) 
     let decaying =
         shape.is_some_and(|s| s.log_ratio > cfg.shape_log_ratio_min && s.template_p < cfg.shape_p_max);
     if shape.is_none() {
-        flags.push("shape_untested".into());
+        flags.push(flag::SHAPE_UNTESTED.into());
     }
 
     // Before the flash: background from the all-sky photons of the window; the burst's own rise and a
@@ -272,27 +272,27 @@ pub(crate) fn assess(inp: &AssessInput<'_>) -> (Assessment, Option<Withdrawal>) 
     };
     let too_dead = dead_fraction > cfg.max_dead_fraction;
     if too_dead {
-        flags.push("dead_time".into());
+        flags.push(flag::DEAD_TIME.into());
     }
     if inp.cut_short {
-        flags.push("cut_short".into());
+        flags.push(flag::CUT_SHORT.into());
     }
     let post_excess = post_sigma > cfg.post_sigma_max;
     let pre_excess = pre_sigma > cfg.pre_sigma_max;
     if post_excess {
-        flags.push("post_excess".into());
+        flags.push(flag::POST_EXCESS.into());
     }
     if pre_excess {
-        flags.push("pre_excess".into());
+        flags.push(flag::PRE_EXCESS.into());
     }
     if decaying {
-        flags.push("decaying_shape".into());
+        flags.push(flag::DECAYING_SHAPE.into());
     }
     if c.capped {
-        flags.push("photons_capped".into());
+        flags.push(flag::PHOTONS_CAPPED.into());
     }
     if c.late_crossings > 0 {
-        flags.push("crossings_after_flash".into());
+        flags.push(flag::CROSSINGS_AFTER_FLASH.into());
     }
 
     let verdict = if !instrumental.is_empty() {

@@ -17,7 +17,7 @@ use crate::candidate::{CandPhoton, Candidate};
 use crate::config::EngineConfig;
 use crate::dead::DeadTime;
 use crate::error::EngineError;
-use crate::finding::{Finding, FindingSink, Flash, PhotonRec};
+use crate::finding::{Finding, FindingSink, Flash, PhotonRec, flags as flag};
 use crate::localise::{LocPhoton, Localisation, localise};
 use crate::reorder::{Photon, Reorder};
 use crate::sky::{Disc, SkyIndex, Step, radec_of, unit_vector};
@@ -1034,13 +1034,13 @@ impl Engine {
         f.spread_sigma = extension_sigma(&cone, cone_background, own_deg, resp);
         f.flags.clear();
         if f.all_sky_sigma > a_cfg.all_sky_sigma_max {
-            f.flags.push("all_sky_jump".into());
+            f.flags.push(flag::ALL_SKY_JUMP.into());
         }
         if f.identical_time_fraction > a_cfg.identical_fraction_max {
-            f.flags.push("identical_timestamps".into());
+            f.flags.push(flag::IDENTICAL_TIMESTAMPS.into());
         }
         if f.spread_sigma > a_cfg.spread_sigma_max {
-            f.flags.push("wide_spread".into());
+            f.flags.push(flag::WIDE_SPREAD.into());
         }
         (counts, expected)
     }

@@ -20,6 +20,51 @@ impl FindingSink for Vec<Finding> {
     }
 }
 
+/// Every flag the engine can put on a flash (`Flash::flags`) or an assessment (`Assessment::flags`): the one
+/// list the emitting code reads its names from, so the proto's comments and docs/alerts.md can be checked
+/// against it by a test.
+pub mod flags {
+    /// The all-sky rate jumped during the flash window (instrumental sign; flash and assessment).
+    pub const ALL_SKY_JUMP: &str = "all_sky_jump";
+    /// Too many flash photons share one timestamp (instrumental sign; flash and assessment).
+    pub const IDENTICAL_TIMESTAMPS: &str = "identical_timestamps";
+    /// The photons spread wider than the PSF allows (instrumental sign; flash and assessment).
+    pub const WIDE_SPREAD: &str = "wide_spread";
+    /// Too much dead time in the persistence window to decide (assessment).
+    pub const DEAD_TIME: &str = "dead_time";
+    /// The persistence window was cut short by a stream gap or shutdown (assessment).
+    pub const CUT_SHORT: &str = "cut_short";
+    /// Significant emission after the flash (assessment).
+    pub const POST_EXCESS: &str = "post_excess";
+    /// Significant emission before the flash (assessment).
+    pub const PRE_EXCESS: &str = "pre_excess";
+    /// The light curve prefers a fast rise and decay over the evaporation template (assessment).
+    pub const DECAYING_SHAPE: &str = "decaying_shape";
+    /// The light-curve test could not run (assessment).
+    pub const SHAPE_UNTESTED: &str = "shape_untested";
+    /// The candidate kept only its first photons, the rest dropped at the cap (assessment).
+    pub const PHOTONS_CAPPED: &str = "photons_capped";
+    /// Further threshold crossings came after the flash inside the persistence window (assessment).
+    pub const CROSSINGS_AFTER_FLASH: &str = "crossings_after_flash";
+
+    /// The flags a flash can carry: instrumental signs only.
+    pub const FLASH: [&str; 3] = [ALL_SKY_JUMP, IDENTICAL_TIMESTAMPS, WIDE_SPREAD];
+    /// The flags an assessment can carry (the flash's instrumental signs included).
+    pub const ASSESSMENT: [&str; 11] = [
+        ALL_SKY_JUMP,
+        IDENTICAL_TIMESTAMPS,
+        WIDE_SPREAD,
+        DEAD_TIME,
+        CUT_SHORT,
+        POST_EXCESS,
+        PRE_EXCESS,
+        DECAYING_SHAPE,
+        SHAPE_UNTESTED,
+        PHOTONS_CAPPED,
+        CROSSINGS_AFTER_FLASH,
+    ];
+}
+
 /// One photon of a flash, as it arrived (GPS ns, ICRS degrees, GeV, instrument-frame degrees).
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
 pub struct PhotonRec {

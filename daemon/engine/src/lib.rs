@@ -24,5 +24,5 @@ pub mod trials;
 pub use config::{AssessConfig, EngineConfig};
 pub use engine::{Engine, EngineStats, SECONDS_PER_YEAR, TestTap};
 pub use error::EngineError;
-pub use finding::{Assessment, Finding, FindingSink, Flash, PhotonRec, Verdict, Withdrawal};
+pub use finding::{Assessment, Finding, FindingSink, Flash, PhotonRec, Verdict, Withdrawal, flags};
 pub use fit::{FitInput, FitJob, FitResult};

@@ -4,7 +4,7 @@
 
 use glint_engine::{Assessment, Finding, Flash, Verdict};
 use glint_wire::pb;
-use serde::Serialize;
+use serde_json::{Value, json};
 
 use crate::timefmt;
 
@@ -145,33 +145,39 @@ pub(crate) fn stamp(alert: &mut pb::Alert, seq: u64, issued_gps_ns: i64) {
     );
 }
 
-/// Lower-case name of an alert kind, as used on the command line and in JSON.
+/// Version of the JSON lines' shape (`schema_version` on every line; docs/alert.schema.json). It moves only
+/// when a field is removed, renamed or changes meaning; new fields keep it (docs/alerts.md, "Versions").
+pub(crate) const JSON_SCHEMA_VERSION: u32 = 1;
+
+/// The kinds by their JSON and command-line names, in proto order.
+pub(crate) const KIND_NAMES: [(&str, pb::AlertKind); 6] = [
+    ("flash", pb::AlertKind::Flash),
+    ("assessment", pb::AlertKind::Assessment),
+    ("withdrawal", pb::AlertKind::Withdrawal),
+    ("heartbeat", pb::AlertKind::Heartbeat),
+    ("test", pb::AlertKind::Test),
+    ("joint", pb::AlertKind::Joint),
+];
+
+/// Lower-case name of an alert kind: the one case used in JSON, on the command line, on the screen and in
+/// bus subjects.
 pub(crate) fn kind_name(kind: i32) -> &'static str {
-    match pb::AlertKind::try_from(kind) {
-        Ok(pb::AlertKind::Flash) => "flash",
-        Ok(pb::AlertKind::Assessment) => "assessment",
-        Ok(pb::AlertKind::Withdrawal) => "withdrawal",
-        Ok(pb::AlertKind::Heartbeat) => "heartbeat",
-        Ok(pb::AlertKind::Test) => "test",
-        Ok(pb::AlertKind::Joint) => "joint",
-        _ => "unknown",
-    }
+    KIND_NAMES
+        .iter()
+        .find(|(_, k)| *k as i32 == kind)
+        .map_or("unknown", |(n, _)| n)
 }
 
-/// Parses a kind name given on the command line.
+/// Parses a kind name given on the command line or in a configuration, in any case ("flash", "FLASH").
 pub(crate) fn parse_kind(name: &str) -> Option<pb::AlertKind> {
-    match name.trim() {
-        "flash" => Some(pb::AlertKind::Flash),
-        "assessment" => Some(pb::AlertKind::Assessment),
-        "withdrawal" => Some(pb::AlertKind::Withdrawal),
-        "heartbeat" => Some(pb::AlertKind::Heartbeat),
-        "test" => Some(pb::AlertKind::Test),
-        "joint" => Some(pb::AlertKind::Joint),
-        _ => None,
-    }
+    let name = name.trim();
+    KIND_NAMES
+        .iter()
+        .find(|(n, _)| n.eq_ignore_ascii_case(name))
+        .map(|(_, k)| *k)
 }
 
-/// Lower-case name of a verdict.
+/// Lower-case name of a verdict ("none" for an assessment without one, which the engine never issues).
 pub(crate) fn verdict_name(v: i32) -> &'static str {
     match pb::Verdict::try_from(v) {
         Ok(pb::Verdict::Isolated) => "isolated",
@@ -182,225 +188,129 @@ pub(crate) fn verdict_name(v: i32) -> &'static str {
     }
 }
 
-#[derive(Serialize)]
-struct TriggerJson<'a> {
-    start_gps_ns: i64,
-    end_gps_ns: i64,
-    start_utc: &'a str,
-    end_utc: &'a str,
-    end_mjd: &'a str,
-    ra_deg: f64,
-    dec_deg: f64,
-    error_radius_deg: f64,
-    search_radius_deg: f64,
-    zenith_deg: f64,
-    timescale_s: f64,
-    counts: u64,
-    background: f64,
-    p_value: f64,
-    sigma: f64,
-    sigma_per_seed: f64,
-    sigma_post_trials: f64,
-    far_per_year: f64,
-    photons: usize,
-    flags: &'a [String],
-    all_sky_sigma: f64,
-    identical_time_fraction: f64,
-    spread_sigma: f64,
+/// What the JSON of an alert includes beyond its fixed fields.
+#[derive(Debug, Clone, Copy, Default)]
+pub(crate) struct JsonOptions {
+    /// The trigger's photon columns (`photon_time_gps_ns`, `photon_ra_deg`, `photon_dec_deg`,
+    /// `photon_energy_gev`); without them only their number (`photons`) is written.
+    pub(crate) photons: bool,
 }
 
-#[derive(Serialize)]
-struct FitJson<'a> {
-    converged: bool,
-    #[serde(skip_serializing_if = "str::is_empty")]
-    reason: &'a str,
-    explosion_gps_ns: i64,
-    explosion_utc: &'a str,
-    distance_pc: f64,
-    distance_pc_lo: f64,
-    distance_pc_hi: f64,
-    template_p: f64,
-    gof_test: &'a str,
-    signal_counts: f64,
-    background_counts: f64,
-    ln_likelihood_ratio: f64,
-    lr_sigma: f64,
-    burst_preferred: bool,
-}
-
-#[derive(Serialize)]
-struct AssessmentJson<'a> {
-    verdict: &'static str,
-    flash_seq: u64,
-    flash_id: &'a str,
-    post_counts: u64,
-    post_background: f64,
-    post_p_value: f64,
-    post_sigma: f64,
-    pre_counts: u64,
-    pre_background: f64,
-    pre_rise: f64,
-    pre_p_value: f64,
-    pre_sigma: f64,
-    shape_log_ratio: f64,
-    shape_template_p: f64,
-    shape_decay_index: f64,
-    shape_decay_time_s: f64,
-    flags: &'a [String],
-    all_sky_counts: u64,
-    all_sky_expected: f64,
-    all_sky_sigma: f64,
-    identical_time_fraction: f64,
-    spread_ratio: f64,
-    spread_sigma: f64,
-    dead_seconds: f64,
-    #[serde(skip_serializing_if = "Option::is_none")]
-    fit: Option<FitJson<'a>>,
-}
-
-#[derive(Serialize)]
-struct LatencyJson {
-    received_unix_ns: i64,
-    decided_unix_ns: i64,
-    journaled_unix_ns: i64,
-    sent_unix_ns: i64,
-    /// Milliseconds from receipt of the releasing frame to the journal fsync, and to the socket write.
-    journal_ms: f64,
-    sent_ms: f64,
-}
-
-#[derive(Serialize)]
-struct AlertJson<'a> {
-    seq: u64,
-    id: &'a str,
-    kind: &'static str,
-    instrument: &'a str,
-    issued_utc: &'a str,
-    issued_gps_ns: i64,
-    #[serde(skip_serializing_if = "Option::is_none")]
-    trigger: Option<TriggerJson<'a>>,
-    #[serde(skip_serializing_if = "Option::is_none")]
-    assessment: Option<AssessmentJson<'a>>,
-    #[serde(skip_serializing_if = "str::is_empty")]
-    withdrawn_id: &'a str,
-    #[serde(skip_serializing_if = "str::is_empty")]
-    reason: &'a str,
-    #[serde(skip_serializing_if = "Option::is_none")]
-    latency: Option<LatencyJson>,
-    #[serde(skip_serializing_if = "std::ops::Not::not")]
-    replayed: bool,
-    #[serde(skip_serializing_if = "Option::is_none")]
-    joint: Option<serde_json::Value>,
-}
-
-/// The alert as one JSON object (the JSON-lines shape of replay and `listen --json`). Latency appears only
-/// when the alert carries wall-clock stamps, so replays stay byte-identical.
-pub(crate) fn alert_json(a: &pb::Alert) -> serde_json::Value {
-    let trigger = a.trigger.as_ref().map(|t| TriggerJson {
-        start_gps_ns: t.start_gps_ns,
-        end_gps_ns: t.end_gps_ns,
-        start_utc: &t.start_utc,
-        end_utc: &t.end_utc,
-        end_mjd: &t.end_mjd,
-        ra_deg: t.ra_deg,
-        dec_deg: t.dec_deg,
-        error_radius_deg: t.error_radius_deg,
-        search_radius_deg: t.search_radius_deg,
-        zenith_deg: t.zenith_deg,
-        timescale_s: t.timescale_s,
-        counts: t.counts,
-        background: t.background,
-        p_value: t.p_value,
-        sigma: t.sigma,
-        sigma_per_seed: t.sigma_per_seed,
-        sigma_post_trials: t.sigma_post_trials,
-        far_per_year: t.far_per_year,
-        photons: t.photon_time_gps_ns.len(),
-        flags: &t.flags,
-        all_sky_sigma: t.all_sky_sigma,
-        identical_time_fraction: t.identical_time_fraction,
-        spread_sigma: t.spread_sigma,
+fn trigger_json(t: &pb::Trigger, opts: JsonOptions) -> Value {
+    let mut v = json!({
+        "start_gps_ns": t.start_gps_ns,
+        "end_gps_ns": t.end_gps_ns,
+        "start_utc": t.start_utc,
+        "end_utc": t.end_utc,
+        "end_mjd": t.end_mjd,
+        "ra_deg": t.ra_deg,
+        "dec_deg": t.dec_deg,
+        "error_radius_deg": t.error_radius_deg,
+        "search_radius_deg": t.search_radius_deg,
+        "zenith_deg": t.zenith_deg,
+        "timescale_s": t.timescale_s,
+        "counts": t.counts,
+        "background": t.background,
+        "p_value": t.p_value,
+        "sigma": t.sigma,
+        "sigma_per_seed": t.sigma_per_seed,
+        "sigma_post_trials": t.sigma_post_trials,
+        "far_per_year": t.far_per_year,
+        "photons": t.photon_time_gps_ns.len(),
+        "flags": t.flags,
+        "all_sky_sigma": t.all_sky_sigma,
+        "identical_time_fraction": t.identical_time_fraction,
+        "spread_sigma": t.spread_sigma,
     });
-    let assessment = a.assessment.as_ref().map(|s| AssessmentJson {
-        verdict: verdict_name(s.verdict),
-        flash_seq: s.flash_seq,
-        flash_id: &s.flash_id,
-        post_counts: s.post_counts,
-        post_background: s.post_background,
-        post_p_value: s.post_p_value,
-        post_sigma: s.post_sigma,
-        pre_counts: s.pre_counts,
-        pre_background: s.pre_background,
-        pre_rise: s.pre_rise,
-        pre_p_value: s.pre_p_value,
-        pre_sigma: s.pre_sigma,
-        shape_log_ratio: s.shape_log_ratio,
-        shape_template_p: s.shape_template_p,
-        shape_decay_index: s.shape_decay_index,
-        shape_decay_time_s: s.shape_decay_time_s,
-        flags: &s.flags,
-        all_sky_counts: s.all_sky_counts,
-        all_sky_expected: s.all_sky_expected,
-        all_sky_sigma: s.all_sky_sigma,
-        identical_time_fraction: s.identical_time_fraction,
-        spread_ratio: s.spread_ratio,
-        spread_sigma: s.spread_sigma,
-        dead_seconds: s.dead_seconds,
-        fit: s.fit.as_ref().map(|f| FitJson {
-            converged: f.converged,
-            reason: &f.reason,
-            explosion_gps_ns: f.explosion_gps_ns,
-            explosion_utc: &f.explosion_utc,
-            distance_pc: f.distance_pc,
-            distance_pc_lo: f.distance_pc_lo,
-            distance_pc_hi: f.distance_pc_hi,
-            template_p: f.template_p,
-            gof_test: &f.gof_test,
-            signal_counts: f.signal_counts,
-            background_counts: f.background_counts,
-            ln_likelihood_ratio: f.ln_likelihood_ratio,
-            lr_sigma: f.lr_sigma,
-            burst_preferred: f.burst_preferred,
-        }),
-    });
-    let latency = a.latency.as_ref().filter(|l| l.received_unix_ns != 0).map(|l| {
-        let ms = |t: i64| {
-            if t == 0 {
-                0.0
-            } else {
-                (t - l.received_unix_ns) as f64 / 1e6
-            }
-        };
-        LatencyJson {
-            received_unix_ns: l.received_unix_ns,
-            decided_unix_ns: l.decided_unix_ns,
-            journaled_unix_ns: l.journaled_unix_ns,
-            sent_unix_ns: l.sent_unix_ns,
-            journal_ms: ms(l.journaled_unix_ns),
-            sent_ms: ms(l.sent_unix_ns),
+    if opts.photons {
+        v["photon_time_gps_ns"] = json!(t.photon_time_gps_ns);
+        v["photon_ra_deg"] = json!(t.photon_ra_deg);
+        v["photon_dec_deg"] = json!(t.photon_dec_deg);
+        // Widened from the proto's float so the JSON shows the value the proto holds, not a long decimal.
+        v["photon_energy_gev"] = json!(
+            t.photon_energy_gev
+                .iter()
+                .map(|&e| f64::from(e))
+                .collect::<Vec<f64>>()
+        );
+    }
+    v
+}
+
+fn fit_json(f: &pb::EvaporationFit) -> Value {
+    json!({
+        "converged": f.converged,
+        "reason": f.reason,
+        "explosion_gps_ns": f.explosion_gps_ns,
+        "explosion_utc": f.explosion_utc,
+        "distance_pc": f.distance_pc,
+        "distance_pc_lo": f.distance_pc_lo,
+        "distance_pc_hi": f.distance_pc_hi,
+        "template_p": f.template_p,
+        "gof_test": f.gof_test,
+        "signal_counts": f.signal_counts,
+        "background_counts": f.background_counts,
+        "ln_likelihood_ratio": f.ln_likelihood_ratio,
+        "lr_sigma": f.lr_sigma,
+        "burst_preferred": f.burst_preferred,
+    })
+}
+
+fn assessment_json(s: &pb::Assessment) -> Value {
+    json!({
+        "verdict": verdict_name(s.verdict),
+        "flash_seq": s.flash_seq,
+        "flash_id": s.flash_id,
+        "post_counts": s.post_counts,
+        "post_background": s.post_background,
+        "post_p_value": s.post_p_value,
+        "post_sigma": s.post_sigma,
+        "pre_counts": s.pre_counts,
+        "pre_background": s.pre_background,
+        "pre_rise": s.pre_rise,
+        "pre_p_value": s.pre_p_value,
+        "pre_sigma": s.pre_sigma,
+        "shape_log_ratio": s.shape_log_ratio,
+        "shape_template_p": s.shape_template_p,
+        "shape_decay_index": s.shape_decay_index,
+        "shape_decay_time_s": s.shape_decay_time_s,
+        "flags": s.flags,
+        "all_sky_counts": s.all_sky_counts,
+        "all_sky_expected": s.all_sky_expected,
+        "all_sky_sigma": s.all_sky_sigma,
+        "identical_time_fraction": s.identical_time_fraction,
+        "spread_ratio": s.spread_ratio,
+        "spread_sigma": s.spread_sigma,
+        "dead_seconds": s.dead_seconds,
+        "fit": s.fit.as_ref().map_or(Value::Null, fit_json),
+    })
+}
+
+/// Latency stamps as the proto has them (0 when absent), plus two derived spans in milliseconds from the
+/// receipt of the releasing frame: to the journal fsync (`journal_ms`) and to the socket write (`sent_ms`),
+/// each 0 when either stamp is absent.
+fn latency_json(l: &pb::Latency) -> Value {
+    let ms = |t: i64| {
+        if t == 0 || l.received_unix_ns == 0 {
+            0.0
+        } else {
+            (t - l.received_unix_ns) as f64 / 1e6
         }
-    });
-    let j = AlertJson {
-        seq: a.seq,
-        id: &a.id,
-        kind: kind_name(a.kind),
-        instrument: &a.instrument,
-        issued_utc: &a.issued_utc,
-        issued_gps_ns: a.issued_gps_ns,
-        trigger,
-        assessment,
-        withdrawn_id: &a.withdrawn_id,
-        reason: &a.reason,
-        latency,
-        replayed: a.replayed,
-        joint: a.joint.as_ref().map(joint_json),
     };
-    serde_json::to_value(j).unwrap_or(serde_json::Value::Null)
+    json!({
+        "received_unix_ns": l.received_unix_ns,
+        "decided_unix_ns": l.decided_unix_ns,
+        "journaled_unix_ns": l.journaled_unix_ns,
+        "sent_unix_ns": l.sent_unix_ns,
+        "reorder_hold_ns": l.reorder_hold_ns,
+        "journal_ms": ms(l.journaled_unix_ns),
+        "sent_ms": ms(l.sent_unix_ns),
+    })
 }
 
 /// The joint part of a JOINT alert (`glint coincide`).
-fn joint_json(j: &pb::Joint) -> serde_json::Value {
-    serde_json::json!({
+fn joint_json(j: &pb::Joint) -> Value {
+    json!({
         "alert_ids": j.alert_ids,
         "instruments": j.instruments,
         "time_difference_s": j.time_difference_s,
@@ -419,6 +329,91 @@ fn joint_json(j: &pb::Joint) -> serde_json::Value {
     })
 }
 
+/// The alert as one JSON object, without photon columns: see [`alert_json_with`].
+pub(crate) fn alert_json(a: &pb::Alert) -> Value {
+    alert_json_with(a, JsonOptions::default())
+}
+
+/// The alert as one JSON object: the JSON-lines shape of replay, `listen --json`, `journal --json`, demo and
+/// coincide (docs/alerts.md; docs/alert.schema.json). Every field of the proto is present, false and zero
+/// included; a message the alert does not carry (`trigger`, `assessment`, `joint`, the fit) is `null`.
+/// Replays carry no wall-clock stamp (their latency is all zeros), so they stay byte-identical.
+pub(crate) fn alert_json_with(a: &pb::Alert, opts: JsonOptions) -> Value {
+    json!({
+        "schema_version": JSON_SCHEMA_VERSION,
+        "seq": a.seq,
+        "id": a.id,
+        "kind": kind_name(a.kind),
+        "instrument": a.instrument,
+        "issued_utc": a.issued_utc,
+        "issued_gps_ns": a.issued_gps_ns,
+        "trigger": a.trigger.as_ref().map_or(Value::Null, |t| trigger_json(t, opts)),
+        "assessment": a.assessment.as_ref().map_or(Value::Null, assessment_json),
+        "withdrawn_id": a.withdrawn_id,
+        "reason": a.reason,
+        "latency": latency_json(&a.latency.unwrap_or_default()),
+        "replayed": a.replayed,
+        "joint": a.joint.as_ref().map_or(Value::Null, joint_json),
+    })
+}
+
+/// A heartbeat as one JSON line (`listen --json --heartbeats`): the proto's fields, plus each watermark in
+/// UTC and its age against the daemon's clock, so a wrapper can see a stale instrument at a glance.
+pub(crate) fn heartbeat_json(h: &pb::Heartbeat) -> Value {
+    let now_gps = timefmt::unix_ns_to_gps_ns(h.unix_ns);
+    json!({
+        "schema_version": JSON_SCHEMA_VERSION,
+        "kind": "heartbeat",
+        "unix_ns": h.unix_ns,
+        "last_seq": h.last_seq,
+        "instruments": h.instruments,
+        "watermark_gps_ns": h.watermark_gps_ns,
+        "watermark_utc": h.watermark_gps_ns.iter().map(|&w| watermark_utc(w)).collect::<Vec<_>>(),
+        "watermark_age_s": h.watermark_gps_ns.iter().map(|&w| watermark_age_s(w, now_gps)).collect::<Vec<_>>(),
+        "closing": h.closing,
+    })
+}
+
+/// A watermark in UTC, or "" when the instrument has no event time yet (watermark 0).
+fn watermark_utc(w: i64) -> String {
+    if w == 0 {
+        String::new()
+    } else {
+        timefmt::gps_ns_to_utc(w)
+    }
+}
+
+/// Seconds from a watermark to the daemon's clock (both GPS ns); 0 when there is no watermark yet.
+fn watermark_age_s(w: i64, now_gps: i64) -> f64 {
+    if w == 0 || now_gps == 0 {
+        0.0
+    } else {
+        (now_gps - w) as f64 / 1e9
+    }
+}
+
+/// A heartbeat for a terminal: the journal's newest number and each instrument's watermark and its age.
+pub(crate) fn heartbeat_summary(h: &pb::Heartbeat) -> String {
+    let now_gps = timefmt::unix_ns_to_gps_ns(h.unix_ns);
+    let mut s = format!(
+        "heartbeat  last seq {}{}",
+        h.last_seq,
+        if h.closing { "  (daemon closing)" } else { "" }
+    );
+    for (name, &w) in h.instruments.iter().zip(&h.watermark_gps_ns) {
+        if w == 0 {
+            s += &format!("\n    {name}: no event time yet");
+        } else {
+            s += &format!(
+                "\n    {name}: event time {} ({:.1} s behind the daemon's clock)",
+                watermark_utc(w),
+                watermark_age_s(w, now_gps)
+            );
+        }
+    }
+    s
+}
+
 /// A signed significance in words: "+5.2 sigma", "-7.6 sigma (deficit)", or "no excess" at 0.
 fn sigma_words(z: f64) -> String {
     if z > 0.0 {
@@ -433,11 +428,16 @@ fn sigma_words(z: f64) -> String {
 /// A short readable summary of one alert for a terminal.
 pub(crate) fn alert_summary(a: &pb::Alert) -> String {
     let mut s = format!(
-        "#{} {} {} [{}]",
+        "#{} {} {} [{}]{}",
         a.seq,
-        kind_name(a.kind).to_uppercase(),
+        kind_name(a.kind),
         a.id,
-        a.instrument
+        a.instrument,
+        if a.replayed {
+            "  REPLAYED from the journal"
+        } else {
+            ""
+        }
     );
     if let Some(t) = &a.trigger {
         s += &format!(
@@ -461,7 +461,7 @@ pub(crate) fn alert_summary(a: &pb::Alert) -> String {
     if let Some(x) = &a.assessment {
         s += &format!(
             "\n    verdict {} (of {}): after {} on {:.2} background ({}), before {} on {:.2} background + {:.2} burst rise ({}), light curve {:+.1} toward decay (template p = {:.2e}){}",
-            verdict_name(x.verdict).to_uppercase(),
+            verdict_name(x.verdict),
             x.flash_id,
             x.post_counts,
             x.post_background,
@@ -514,17 +514,49 @@ pub(crate) fn alert_summary(a: &pb::Alert) -> String {
     if !a.withdrawn_id.is_empty() {
         s += &format!("\n    withdraws {}: {}", a.withdrawn_id, a.reason);
     }
-    if let Some(l) = a
-        .latency
-        .as_ref()
-        .filter(|l| l.received_unix_ns != 0 && l.sent_unix_ns != 0)
-    {
-        s += &format!(
-            "\n    latency {:.2} ms (receipt to send)",
-            (l.sent_unix_ns - l.received_unix_ns) as f64 / 1e6
-        );
-    }
+    s += &latency_words(a);
     s
+}
+
+/// The latency line of a summary. Wall latency (the daemon host's clock, receipt of the completing photon's
+/// frame to the socket write) means something only for a live alert: a replayed one was sent long after its
+/// receipt, so for it only the original receipt-to-journal span is shown. Event-time latency (issue time minus
+/// the trigger window's end, both GPS) is shown apart from it: for a live alert it includes the photons'
+/// transit to the daemon; for a `glint replay` it is the engine's own hold in event time.
+fn latency_words(a: &pb::Alert) -> String {
+    let mut parts = Vec::new();
+    if let Some(l) = a.latency.as_ref().filter(|l| l.received_unix_ns != 0) {
+        if a.replayed {
+            if l.journaled_unix_ns != 0 {
+                parts.push(format!(
+                    "wall latency when issued {:.2} ms (receipt to journal)",
+                    (l.journaled_unix_ns - l.received_unix_ns) as f64 / 1e6
+                ));
+            }
+        } else if l.sent_unix_ns != 0 {
+            parts.push(format!(
+                "wall latency {:.2} ms (receipt to send)",
+                (l.sent_unix_ns - l.received_unix_ns) as f64 / 1e6
+            ));
+        }
+    }
+    if let Some(t) = a
+        .trigger
+        .as_ref()
+        .filter(|t| t.end_gps_ns != 0 && a.issued_gps_ns != 0)
+    {
+        if a.kind == pb::AlertKind::Flash as i32 || a.kind == pb::AlertKind::Assessment as i32 {
+            parts.push(format!(
+                "event-time latency {:.3} s (window end to issue)",
+                (a.issued_gps_ns - t.end_gps_ns) as f64 / 1e9
+            ));
+        }
+    }
+    if parts.is_empty() {
+        String::new()
+    } else {
+        format!("\n    {}", parts.join("; "))
+    }
 }
 
 /// Numbers findings into alerts: a gap-free global sequence, and for each engine candidate the flash it

@@ -17,7 +17,7 @@ pub(crate) const EXIT_CONFIG: u8 = 2;
     name = "glint",
     version,
     about,
-    after_help = "Exit codes: 0 success, 1 error while running, 2 configuration problems, 3 (listen --exec) a handler failed after its retries."
+    after_help = "Exit codes: 0 success, 1 error while running, 2 configuration problems, 3 (listen --exec) a handler failed after its retries, 4 (listen --timeout-s) the daemon never accepted the subscription."
 )]
 pub(crate) struct Cli {
     #[command(subcommand)]

@@ -177,7 +177,7 @@ pub(crate) fn full_alert() -> pb::Alert {
             pre_background: 1.7,
             pre_p_value: 0.8,
             pre_sigma: -0.8,
-            flags: vec!["dead_time_in_window".into()],
+            flags: vec!["dead_time".into()],
             all_sky_counts: 1200,
             all_sky_expected: 1180.5,
             identical_time_fraction: 0.0,

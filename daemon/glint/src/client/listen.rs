@@ -39,6 +39,18 @@ pub(crate) struct ListenOptions {
 /// What the caller does with each alert; returning `false` ends the session.
 pub(crate) type OnAlert<'a> = dyn FnMut(&pb::Alert) -> anyhow::Result<bool> + Send + 'a;
 
+/// Frames other than alerts that a caller may want to see.
+#[derive(Debug, Clone, Copy)]
+pub(crate) enum Event<'a> {
+    /// The daemon accepted the subscription (once per connection).
+    Welcomed,
+    /// A heartbeat, with each instrument's watermark.
+    Heartbeat(&'a pb::Heartbeat),
+}
+
+/// What the caller does with the other frames; an error ends the session as a refusal does.
+pub(crate) type OnEvent<'a> = dyn FnMut(Event<'_>) -> anyhow::Result<()> + Send + 'a;
+
 /// How a session ended.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub(crate) enum ListenEnd {
@@ -55,6 +67,16 @@ pub(crate) async fn listen_loop(
     reconnect: bool,
     on_alert: &mut OnAlert<'_>,
 ) -> anyhow::Result<ListenEnd> {
+    listen_loop_with(opts, reconnect, on_alert, &mut |_| Ok(())).await
+}
+
+/// [`listen_loop`], also handing welcomes and heartbeats to `on_event`.
+pub(crate) async fn listen_loop_with(
+    opts: &ListenOptions,
+    reconnect: bool,
+    on_alert: &mut OnAlert<'_>,
+    on_event: &mut OnEvent<'_>,
+) -> anyhow::Result<ListenEnd> {
     let mut last_seen = opts.resume_after;
     let mut first = true;
     let mut backoff = Duration::from_millis(200);
@@ -65,6 +87,7 @@ pub(crate) async fn listen_loop(
             first && opts.replay_all && last_seen == 0,
             &mut last_seen,
             on_alert,
+            on_event,
         )
         .await
         {
@@ -109,6 +132,7 @@ async fn session(
     replay_all: bool,
     last_seen: &mut u64,
     on_alert: &mut OnAlert<'_>,
+    on_event: &mut OnEvent<'_>,
 ) -> Result<SessionEnd, SessionError> {
     let lost = |e: anyhow::Error| SessionError::Lost(e, false);
     let io = tls::connect(&opts.addr, opts.tls.as_ref()).await.map_err(lost)?;
@@ -157,6 +181,7 @@ async fn session(
             Some(subscriber_frame::Body::Welcome(w)) => {
                 welcomed = true;
                 tracing::debug!(server = %w.server, last_seq = w.last_seq, "welcomed");
+                on_event(Event::Welcomed).map_err(SessionError::Refused)?;
             }
             // Dropped for reading too slowly: every alert queued before the refusal has been read, so
             // resuming after the last one seen loses nothing.
@@ -174,8 +199,12 @@ async fn session(
                     r.detail
                 )));
             }
-            Some(subscriber_frame::Body::Heartbeat(h)) if h.closing => return Ok(SessionEnd::Closed),
-            Some(subscriber_frame::Body::Heartbeat(_)) => {}
+            Some(subscriber_frame::Body::Heartbeat(h)) => {
+                on_event(Event::Heartbeat(&h)).map_err(SessionError::Refused)?;
+                if h.closing {
+                    return Ok(SessionEnd::Closed);
+                }
+            }
             Some(subscriber_frame::Body::Gap(g)) => {
                 // The daemon cannot deliver these; say so loudly and move on rather than wait for them.
                 eprintln!(

@@ -1,7 +1,8 @@
 //! `glint listen`: a subscriber on the command line. Prints each alert (a readable summary, or one JSON line
 //! with `--json`), optionally runs a handler per alert (`--exec`, see [`crate::client::exec`]), and keeps the
 //! last sequence number handled in `--state-file`; the connection, resume and backoff live in
-//! [`crate::client::listen`]. Exits with [`EXIT_HANDLER_FAILED`] when a handler failed after its retries.
+//! [`crate::client::listen`]. Exits with [`EXIT_HANDLER_FAILED`] when a handler failed after its retries,
+//! and with [`EXIT_NEVER_CONNECTED`] when `--timeout-s` ran out before the daemon ever accepted it.
 
 use std::io::Write as _;
 use std::path::PathBuf;
@@ -13,7 +14,7 @@ use glint_wire::pb;
 
 use crate::alerts;
 use crate::client::exec::{ExecOptions, ExecPool};
-use crate::client::listen::{ListenOptions, listen_loop};
+use crate::client::listen::{Event, ListenOptions, listen_loop_with};
 use crate::client::{read_state, read_token, write_state};
 use crate::tls::ClientTls;
 
@@ -26,9 +27,17 @@ pub(crate) struct ListenArgs {
     /// File holding the subscriber (or operator) token.
     #[arg(long, value_name = "FILE")]
     token_file: PathBuf,
-    /// Alert kinds wanted, comma-separated (flash, assessment, withdrawal, test); all when omitted.
+    /// Alert kinds wanted, comma-separated, in any case: flash, assessment, withdrawal, test, joint, and
+    /// heartbeat (prints heartbeats, as --heartbeats does); all alert kinds when omitted.
     #[arg(long, value_delimiter = ',', value_name = "KINDS")]
     kinds: Vec<String>,
+    /// Also print each heartbeat (every few seconds): the journal's newest number and every instrument's
+    /// event time (watermark), so a wrapper can see a stale instrument.
+    #[arg(long)]
+    heartbeats: bool,
+    /// Include the trigger's photons (times, positions, energies) in the JSON (--json and --exec).
+    #[arg(long)]
+    photons: bool,
     /// Only alerts at least this many sigma (withdrawals always pass).
     #[arg(long, default_value_t = 0.0, value_name = "SIGMA")]
     min_sigma: f64,
@@ -61,7 +70,8 @@ pub(crate) struct ListenArgs {
     /// Exit after this many alerts.
     #[arg(long, value_name = "N")]
     max_alerts: Option<u64>,
-    /// Exit after this many seconds (an error if --max-alerts was given and not reached).
+    /// Exit after this many seconds: 0, or an error (1) if --max-alerts was given and not reached, or 4 if the
+    /// daemon never accepted the subscription in that time.
     #[arg(long, value_name = "SECONDS")]
     timeout_s: Option<f64>,
     /// Connect with TLS, trusting the CA certificates in this PEM file.
@@ -78,7 +88,7 @@ fn parse_kinds(names: &[String]) -> anyhow::Result<Vec<pb::AlertKind>> {
         .filter(|n| !n.trim().is_empty())
         .map(|n| {
             alerts::parse_kind(n).ok_or_else(|| {
-                anyhow!("unknown alert kind '{n}' (flash, assessment, withdrawal, heartbeat, test)")
+                anyhow!("unknown alert kind '{n}' (flash, assessment, withdrawal, test, joint, heartbeat)")
             })
         })
         .collect()
@@ -87,10 +97,18 @@ fn parse_kinds(names: &[String]) -> anyhow::Result<Vec<pb::AlertKind>> {
 /// Exit code of `glint listen` when a handler failed after its retries (the state file stops before it).
 pub(crate) const EXIT_HANDLER_FAILED: u8 = 3;
 
+/// Exit code of `glint listen --timeout-s` when the daemon never accepted the subscription in that time
+/// (unreachable, or never answered), so the command serves as a probe. A refusal (bad token) exits 1.
+pub(crate) const EXIT_NEVER_CONNECTED: u8 = 4;
+
 /// `glint listen`.
 pub(crate) fn run(args: ListenArgs) -> anyhow::Result<ExitCode> {
     let token = read_token(&args.token_file)?;
     let kinds = parse_kinds(&args.kinds)?;
+    let heartbeats = args.heartbeats || kinds.contains(&pb::AlertKind::Heartbeat);
+    let json_opts = alerts::JsonOptions {
+        photons: args.photons,
+    };
     if !args.min_sigma.is_finite() || args.min_sigma < 0.0 {
         bail!("--min-sigma {} must be a number >= 0", args.min_sigma);
     }
@@ -134,7 +152,7 @@ pub(crate) fn run(args: ListenArgs) -> anyhow::Result<ExitCode> {
     let mut count = 0u64;
     let max = args.max_alerts;
     let mut on_alert = |a: &pb::Alert| -> anyhow::Result<bool> {
-        let json = alerts::alert_json(a).to_string();
+        let json = alerts::alert_json_with(a, json_opts).to_string();
         let mut out = std::io::stdout().lock();
         if args.json {
             writeln!(out, "{json}")?;
@@ -154,7 +172,25 @@ pub(crate) fn run(args: ListenArgs) -> anyhow::Result<ExitCode> {
         count += 1;
         Ok(max.is_none_or(|m| count < m))
     };
-    let fut = listen_loop(&opts, true, &mut on_alert);
+    let mut welcomed = false;
+    let json = args.json;
+    let mut on_event = |e: Event<'_>| -> anyhow::Result<()> {
+        match e {
+            Event::Welcomed => welcomed = true,
+            Event::Heartbeat(h) if heartbeats => {
+                let mut out = std::io::stdout().lock();
+                if json {
+                    writeln!(out, "{}", alerts::heartbeat_json(h))?;
+                } else {
+                    writeln!(out, "{}\n", alerts::heartbeat_summary(h))?;
+                }
+                out.flush()?;
+            }
+            Event::Heartbeat(_) => {}
+        }
+        Ok(())
+    };
+    let fut = listen_loop_with(&opts, true, &mut on_alert, &mut on_event);
     let result = rt.block_on(async {
         match args.timeout_s {
             Some(t) => {
@@ -170,6 +206,14 @@ pub(crate) fn run(args: ListenArgs) -> anyhow::Result<ExitCode> {
     });
     // Every handler started finishes (or times out) before the command ends.
     let report = pool.map(ExecPool::finish);
+    if matches!(result, Ok(None)) && !welcomed {
+        eprintln!(
+            "glint listen: {} did not accept the subscription within {} s",
+            args.from,
+            args.timeout_s.unwrap_or(0.0)
+        );
+        return Ok(ExitCode::from(EXIT_NEVER_CONNECTED));
+    }
     let outcome = match result? {
         Some(_) => Ok(ExitCode::SUCCESS),
         None => match max {

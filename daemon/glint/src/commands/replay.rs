@@ -166,6 +166,7 @@ fn photon_list(a: &glint_wire::pb::Alert) -> Option<serde_json::Value> {
 /// The replay's closing line.
 #[derive(Debug, Serialize)]
 struct Summary {
+    schema_version: u32,
     kind: &'static str,
     files: usize,
     photons: u64,
@@ -311,6 +312,7 @@ pub(crate) fn run(args: &ReplayArgs) -> anyhow::Result<ExitCode> {
 
     let wall = started.elapsed().as_secs_f64();
     let mut s = Summary {
+        schema_version: alerts::JSON_SCHEMA_VERSION,
         kind: "summary",
         files: args.files.len(),
         photons: 0,
