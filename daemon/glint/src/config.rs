@@ -1541,7 +1541,7 @@ impl Reader {
         let max_per_window = self.nonzero(&mut s, "max_per_window", 10).get();
         let window = self.seconds(&mut s, "window_s", 3600.0);
         let quiet_text: String = self.get(&mut s, "quiet_hours_utc", String::new());
-        let quiet_sigma: f64 = self.get(&mut s, "quiet_min_sigma", 7.0);
+        let quiet_sigma: f64 = self.get(&mut s, "quiet_min_sigma", 5.0);
         let quiet_sigma = self.in_range(&s, "quiet_min_sigma", quiet_sigma, 0.0, 1e6);
         let quiet = if quiet_text.is_empty() {
             None

@@ -29,7 +29,7 @@ pub(crate) struct ListenArgs {
     /// Alert kinds wanted, comma-separated (flash, assessment, withdrawal, test); all when omitted.
     #[arg(long, value_delimiter = ',', value_name = "KINDS")]
     kinds: Vec<String>,
-    /// Only alerts at least this many sigma (withdrawals always pass).
+    /// Only alerts at least this many sigma post-trials (`sigma_post_trials`; withdrawals always pass).
     #[arg(long, default_value_t = 0.0, value_name = "SIGMA")]
     min_sigma: f64,
     /// Replay journalled alerts after this sequence number first (overrides --state-file).
