@@ -1650,7 +1650,7 @@ impl Reader {
             persistence_timescale_factor: num(self, "persistence_timescale_factor", 10.0, 1.0, 1000.0),
             pre_window_s: num(self, "pre_window_s", 120.0, 0.0, 3600.0),
             post_sigma_max: num(self, "post_sigma_max", 3.0, 0.0, 100.0),
-            pre_sigma_max: num(self, "pre_sigma_max", 3.0, 0.0, 100.0),
+            pre_sigma_max: num(self, "pre_sigma_max", 2.5, 0.0, 100.0),
             all_sky_sigma_max: num(self, "all_sky_sigma_max", 5.0, 0.0, 100.0),
             identical_fraction_max: num(self, "identical_fraction_max", 0.5, 0.0, 1.0),
             spread_ratio_max: num(self, "spread_ratio_max", 2.5, 1.0, 100.0),
