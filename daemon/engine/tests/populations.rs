@@ -3,7 +3,7 @@
 //! and identical-timestamp glitches must be `instrumental` with the sign on the flash itself, and no
 //! significance anywhere may equal a clamp bound. One runner serves the CI-sized tests here and the full
 //! populations behind `#[ignore]` (`cargo test --release -p glint-engine --test populations -- --ignored
-//! --nocapture --test-threads 3 full_populations`), which prints the table quoted in README's "Verdicts" section.
+//! --nocapture --test-threads 2 full_populations`), which prints the table quoted in README's "Verdicts" section.
 #![allow(missing_docs)]
 #![allow(clippy::unwrap_used)] // tests may unwrap
 
