@@ -2000,7 +2000,7 @@ mod tests {
         assert_eq!(r.address.email.to_string(), "oncall@example.org");
         assert_eq!((r.max_per_window, r.window), (10, Duration::from_secs(3600)));
         let q = r.quiet.unwrap();
-        assert_eq!((q.start_min, q.end_min, q.min_sigma), (22 * 60, 6 * 60, 7.0));
+        assert_eq!((q.start_min, q.end_min, q.min_sigma), (22 * 60, 6 * 60, 5.0));
         assert!(q.contains(23 * 60) && q.contains(0) && !q.contains(6 * 60) && !q.contains(12 * 60));
     }
 
