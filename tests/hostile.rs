@@ -435,6 +435,8 @@ fn check_config(dir: &std::path::Path, text: &str, env: &[(&str, &str)]) -> (boo
 fn check_config_refuses_what_run_would_and_ignores_stray_environment() {
     let dir = tempfile::tempdir().unwrap();
     let state = dir.path().join("state");
+    // check-config also wants the state directory to exist and be writable.
+    std::fs::create_dir_all(&state).unwrap();
     let good = util::config_text(&state, "");
     let (ok, out) = check_config(dir.path(), &good, &[]);
     assert!(ok, "{out}");

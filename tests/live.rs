@@ -551,14 +551,17 @@ fn listen_resumes_from_its_state_file_and_operator_withdraws() {
     let Some(subscriber_frame::Body::Welcome(w)) = welcome.body else {
         panic!("{welcome:?}")
     };
+    // The flash's withdrawal, among the newest alerts (its assessment, if issued, is withdrawn after it).
     let mut withdrawal = None;
+    let mut reached = 0;
     let deadline = Instant::now() + Duration::from_secs(20);
-    while withdrawal.is_none() && Instant::now() < deadline {
+    while reached < w.last_seq && Instant::now() < deadline {
         if let Got::Frame(pb::SubscriberFrame {
             body: Some(subscriber_frame::Body::Alert(a)),
         }) = c.recv::<pb::SubscriberFrame>(Duration::from_secs(5))
         {
-            if a.seq == w.last_seq {
+            reached = a.seq;
+            if a.kind == pb::AlertKind::Withdrawal as i32 && a.withdrawn_id == id {
                 withdrawal = Some(a);
             }
         }

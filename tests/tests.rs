@@ -4,6 +4,7 @@
 #![allow(clippy::unwrap_used)] // tests may unwrap: a panic is the failure report
 
 mod bus;
+mod checks;
 mod cli;
 mod email;
 mod hostile;
@@ -12,5 +13,8 @@ mod layout;
 mod listen_exec;
 mod live;
 mod replay;
+mod restart;
 mod service;
+mod tls;
 mod util;
+mod withdrawals;

@@ -284,7 +284,8 @@ impl Engine {
         if let Some(power) = cfg.acceptance_prior_cos_power {
             accept.seed_prior(power, cfg.warmup_photons.max(1) as f64);
         }
-        let sky = SkyIndex::new(cfg.search_radius_deg);
+        let mut sky = SkyIndex::new(cfg.search_radius_deg);
+        sky.follow_windows(&p.ladder_ns);
         let stats = EngineStats {
             tests: vec![0; p.k],
             skipped_dead: vec![0; p.k],
@@ -314,6 +315,14 @@ impl Engine {
             flash_buf: Vec::new(),
             cfg,
         })
+    }
+
+    /// Counts every seed's disc exactly, without the sub-pixel bound that spares most of those counts; the
+    /// findings and counters are the same either way (a test holds the two against each other). Call before
+    /// the first frame.
+    #[doc(hidden)]
+    pub fn count_every_seed_exactly(&mut self) {
+        self.sky.stop_following();
     }
 
     /// The configuration the engine runs with.
@@ -610,6 +619,7 @@ impl Engine {
                 }
             }
         }
+        self.sky.advance_windows(t);
         self.sky.evict_before(t.saturating_sub(self.p.sky_retention_ns));
         self.all_sky
             .evict_before(t.saturating_sub(self.p.allsky_retention_ns));
@@ -734,21 +744,10 @@ impl Engine {
             return;
         }
         self.stats.seeds_tested += 1;
-        self.hist.iter_mut().for_each(|h| *h = 0);
-        self.sky.count_disc(
-            g.slot,
-            &Disc::new(g.v, self.p.cos_r),
-            t,
-            &self.p.steps[..kmax],
-            &mut self.hist,
-        );
         let Some(model) = self.model.as_mut() else { return };
-        let mut n = 0u64;
-        let mut mask = 0u64;
-        let mut best: Option<(usize, u64, f64, f64)> = None;
         let base = usize::from(bin) * k_all;
+        // Thresholds first: they do not depend on the counts.
         for k in 0..kmax {
-            n += u64::from(self.hist[k]);
             let idx = base + k;
             if model.crit[idx] == 0 {
                 let a = model.dens[usize::from(bin)];
@@ -758,6 +757,25 @@ impl Engine {
                 model.b[idx] = b;
                 model.pfalse[idx] = false_crossing_probability(b, c);
             }
+        }
+        // The exact count is needed only where the sub-pixel bound reaches a critical count: elsewhere no
+        // timescale can cross, and the zero counts below cross none either (every critical count is >= 1).
+        self.hist.iter_mut().for_each(|h| *h = 0);
+        if self.sky.may_cross(g.slot, g.v, &model.crit[base..base + kmax]) {
+            self.sky.count_disc(
+                g.slot,
+                &Disc::new(g.v, self.p.cos_r),
+                t,
+                &self.p.steps[..kmax],
+                &mut self.hist,
+            );
+        }
+        let mut n = 0u64;
+        let mut mask = 0u64;
+        let mut best: Option<(usize, u64, f64, f64)> = None;
+        for k in 0..kmax {
+            n += u64::from(self.hist[k]);
+            let idx = base + k;
             let crit = model.crit[idx];
             self.stats.tests[k] += 1;
             self.stats.predicted_false_crossings[k] += model.pfalse[idx];

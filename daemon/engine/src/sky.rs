@@ -1,11 +1,13 @@
 //! Sky index: the photons of the last (longest timescale + pre-window), bucketed by HEALPix nested pixel at a
 //! depth whose pixels are at least as wide as the search radius, so a seed's disc lies inside its own pixel
 //! and the 8 (or 7) neighbours. Each active pixel is a ring of 8-photon blocks in time order that a seed
-//! walks back from the newest, f32 screen first, exact f64 test near the edge. Memory: 88 bytes per held
-//! photon (48 in its pixel's ring, 40 in the release-order ring) plus about 270 per active pixel (engine
-//! `held_bytes` about 275 per held photon at 500 Hz, 170 at 20 kHz): it grows with event rate x retention,
-//! never with uptime.
-
+//! walks back from the newest, f32 screen first, exact f64 test near the edge. Beside its photons each pixel
+//! keeps, per timescale, how many of them are younger than it, in all and per sub-pixel (64, three levels
+//! finer), kept current by one cursor per timescale over the release order: their sums over the
+//! neighbourhood, then over the sub-pixels a disc can reach, bound the disc's counts at a cost that does not
+//! grow with the background, so the walk runs only where a bound reaches a critical count. Memory: 88 bytes
+//! per held photon (48 in its pixel's ring, 40 in the release-order ring) plus about 1.3 KB per active pixel
+//! (2.3 KB once a bound has read its sub-pixels): it grows with event rate x retention, never with uptime.
 use std::collections::{HashMap, VecDeque};
 use std::hash::{BuildHasherDefault, Hasher};
 
@@ -70,6 +72,23 @@ const COARSE_SHIFT: u32 = 16;
 
 /// Marks an inactive neighbour in a bucket's neighbour cache.
 const NONE: u32 = u32::MAX;
+
+/// Sub-pixels are this many HEALPix levels below the index's pixels: 4^FINE_LEVELS of them per pixel, each an
+/// eighth of its width, so the sub-pixels a disc can reach cover about 1.7 times its area at the default
+/// radius (pixel spacing 0.92 deg, radius 0.5 deg).
+const FINE_LEVELS: u8 = 3;
+/// Sub-pixels per pixel (nested numbering: a sub-pixel's number is the pixel's shifted left by
+/// 2 FINE_LEVELS, plus its place in the pixel).
+const SUBS: usize = 1 << (2 * FINE_LEVELS);
+/// Timescales the windowed sub-pixel counts follow; a longer ladder counts every seed exactly.
+const WINDOWS: usize = 8;
+/// Sub-pixel counts are kept for the ladder's longest FINE_ROWS timescales only: the shorter ones hold so few
+/// photons that the pixels' totals already stay below their critical counts (and each row costs 128 bytes a
+/// pixel).
+const FINE_ROWS: usize = 4;
+/// The sub-pixel bound is taken only where the neighbourhood holds at least this many photons; a sparser
+/// one is walked.
+const REFINE_MIN_HELD: usize = 128;
 
 /// Coarse time of a time.
 #[inline]
@@ -411,7 +430,43 @@ struct Meta {
 struct Entry {
     t: i64,
     slot: u32,
+    /// Place of the photon's sub-pixel in its pixel.
+    sub: u8,
     cold: Cold,
+}
+
+/// The windowed counts of one bucket's sub-pixels, and their geometry once a bound has needed it.
+#[derive(Debug)]
+struct Fine {
+    /// Per timescale k (row k - fine_from) and sub-pixel, the photons younger than the k-th window at the time the cursors were
+    /// last moved to (a timescale's counts side by side, so a bound sums them as vectors). Arithmetic wraps:
+    /// every count is exact while the pixel holds fewer than 2^16 photons (increments and decrements balance
+    /// modulo 2^16), and a bound is not taken from a larger pixel.
+    cnt: [[u16; SUBS]; FINE_ROWS],
+    /// Per timescale, the sum of its row: the pixel's photons in that window (same wrapping arithmetic).
+    tot: [u16; WINDOWS],
+    geo: Option<Box<SubGeo>>,
+}
+
+impl Default for Fine {
+    fn default() -> Self {
+        Self {
+            cnt: [[0; SUBS]; FINE_ROWS],
+            tot: [0; WINDOWS],
+            geo: None,
+        }
+    }
+}
+
+/// Centres of a pixel's sub-pixels (unit vectors, f32) and, per sub-pixel, the cosine of (search radius + its
+/// bounding radius) less a margin for the f32 rounding: a seed whose product with the centre is below it
+/// cannot reach into that sub-pixel.
+#[derive(Debug)]
+struct SubGeo {
+    x: [f32; SUBS],
+    y: [f32; SUBS],
+    z: [f32; SUBS],
+    c: [f32; SUBS],
 }
 
 /// Pixel number -> bucket. A flat table when the depth has at most 2^20 pixels (4 MiB; search radii above
@@ -546,6 +601,20 @@ pub(crate) struct SkyIndex {
     /// Every held photon in release order: the front is the oldest photon of the whole index.
     fifo: VecDeque<Entry>,
     scratch: Vec<u64>,
+    /// The layer of the sub-pixels (None when it would be deeper than HEALPix allows).
+    fine_layer: Option<&'static Layer>,
+    /// Windowed sub-pixel counts, one per bucket.
+    fines: Vec<Fine>,
+    /// The timescales the counts follow (empty: no bound), and per timescale the release-order position
+    /// (counted from the first photon ever held) of the oldest photon still inside its window.
+    win_dt: Vec<i64>,
+    win_at: [u64; WINDOWS],
+    /// Release-order position of the fifo's front.
+    popped: u64,
+    /// What an inserted photon adds to its pixel's totals: 1 for each followed timescale.
+    win_inc: [u16; WINDOWS],
+    /// The first timescale with sub-pixel counts.
+    fine_from: usize,
 }
 
 impl std::fmt::Debug for SkyIndex {
@@ -582,7 +651,156 @@ impl SkyIndex {
             map: PixMap::new(depth),
             fifo: VecDeque::new(),
             scratch: Vec::with_capacity(8),
+            fine_layer: (depth + FINE_LEVELS <= 29).then(|| nested::get(depth + FINE_LEVELS)),
+            fines: Vec::new(),
+            win_dt: Vec::new(),
+            win_at: [0; WINDOWS],
+            popped: 0,
+            win_inc: [0; WINDOWS],
+            fine_from: 0,
         }
+    }
+
+    /// Follows the windows of these timescales (ns, increasing) in the sub-pixel counts; a ladder longer
+    /// than WINDOWS follows none (every seed is then counted exactly). Call before the first insert.
+    pub(crate) fn follow_windows(&mut self, ladder_ns: &[i64]) {
+        if ladder_ns.len() > WINDOWS || self.fine_layer.is_none() || !self.fifo.is_empty() {
+            return;
+        }
+        self.win_dt = ladder_ns.to_vec();
+        self.win_inc = [0; WINDOWS];
+        self.win_inc[..ladder_ns.len()].fill(1);
+        self.fine_from = ladder_ns.len().saturating_sub(FINE_ROWS);
+    }
+
+    /// Stops following the windows: every seed is then counted exactly (for the test that compares the two).
+    pub(crate) fn stop_following(&mut self) {
+        self.win_dt.clear();
+        self.win_inc = [0; WINDOWS];
+        self.fine_from = 0;
+    }
+
+    /// Moves every window to end at `t` (no earlier than the last call): photons at or before t - dt leave
+    /// window dt.
+    pub(crate) fn advance_windows(&mut self, t: i64) {
+        for (k, (&dt, at)) in self.win_dt.iter().zip(self.win_at.iter_mut()).enumerate() {
+            let cut = t.saturating_sub(dt);
+            while let Some(e) = self.fifo.get((*at - self.popped) as usize) {
+                if e.t > cut {
+                    break;
+                }
+                let f = &mut self.fines[e.slot as usize];
+                if let Some(row) = k.checked_sub(self.fine_from) {
+                    f.cnt[row][usize::from(e.sub)] = f.cnt[row][usize::from(e.sub)].wrapping_sub(1);
+                }
+                f.tot[k] = f.tot[k].wrapping_sub(1);
+                *at += 1;
+            }
+        }
+    }
+
+    /// False when no timescale of a seed at direction `v` in bucket `slot` can reach its critical count
+    /// `crit[k]` (for the first crit.len() timescales) at the time the windows were last moved to; true when
+    /// one may, and whenever no bound is kept: then `count_disc` must count. Two bounds, each a superset of the
+    /// disc: the whole pixels of the neighbourhood, then, for the timescales where those reach their critical
+    /// count, the sub-pixels the disc can reach.
+    pub(crate) fn may_cross(&mut self, slot: u32, v: [f64; 3], crit: &[u32]) -> bool {
+        if self.win_dt.is_empty() || crit.len() > self.win_dt.len() {
+            return true;
+        }
+        let mut slots = [0u32; 9];
+        let ns = self.neighbourhood(slot, v, &mut slots);
+        let mut tot = [0u32; WINDOWS];
+        let mut held = 0;
+        for &s in &slots[..ns] {
+            let n = self.buckets[s as usize].held.len();
+            if n > usize::from(u16::MAX) {
+                return true;
+            }
+            held += n;
+            for (a, &c) in tot.iter_mut().zip(&self.fines[s as usize].tot) {
+                *a += u32::from(c);
+            }
+        }
+        let mut need = 0u32;
+        for (k, (&n, &c)) in tot.iter().zip(crit).enumerate() {
+            need |= u32::from(n >= c) << k;
+        }
+        if need == 0 {
+            return false;
+        }
+        if held < REFINE_MIN_HELD || need & ((1 << self.fine_from) - 1) != 0 {
+            // A sparse neighbourhood (its walk costs less than the sub-pixels' geometry), or a short timescale
+            // without sub-pixel counts.
+            return true;
+        }
+        let q = [v[0] as f32, v[1] as f32, v[2] as f32];
+        let mut acc = [0u32; WINDOWS];
+        for &s in &slots[..ns] {
+            if self.fines[s as usize].geo.is_none() {
+                let geo = self.sub_geo(self.meta[s as usize].pix);
+                self.fines[s as usize].geo = Some(geo);
+            }
+            let f = &self.fines[s as usize];
+            let Some(g) = f.geo.as_deref() else { continue };
+            // Branch-free, so that both loops run as vectors: a mask per sub-pixel the disc can reach, then
+            // per timescale the masked counts summed (one pixel's sum fits 16 bits: it holds fewer than 2^16
+            // photons).
+            let mut d = [0f32; SUBS];
+            for (((d, &x), &y), &z) in d.iter_mut().zip(&g.x).zip(&g.y).zip(&g.z) {
+                *d = x * q[0] + y * q[1] + z * q[2];
+            }
+            let mut mask = [0u16; SUBS];
+            for ((m, &d), &c) in mask.iter_mut().zip(&d).zip(&g.c) {
+                *m = 0u16.wrapping_sub(u16::from(d >= c));
+            }
+            let mut rows = need;
+            while rows != 0 {
+                let k = rows.trailing_zeros() as usize;
+                rows &= rows - 1;
+                let sum = f.cnt[k - self.fine_from]
+                    .iter()
+                    .zip(&mask)
+                    .fold(0u16, |s, (&c, &m)| s.wrapping_add(c & m));
+                acc[k] += u32::from(sum);
+            }
+        }
+        acc.iter()
+            .zip(crit)
+            .enumerate()
+            .any(|(k, (&n, &c))| need >> k & 1 == 1 && n >= c)
+    }
+
+    /// The sub-pixel geometry of pixel `pix`.
+    fn sub_geo(&self, pix: u64) -> Box<SubGeo> {
+        let mut g = Box::new(SubGeo {
+            x: [0.0; SUBS],
+            y: [0.0; SUBS],
+            z: [0.0; SUBS],
+            c: [-2.0; SUBS],
+        });
+        let Some(layer) = self.fine_layer else {
+            return g;
+        };
+        for j in 0..SUBS {
+            let (lon, lat) = layer.center((pix << (2 * FINE_LEVELS)) | j as u64);
+            let (sl, cl) = lat.sin_cos();
+            let (so, co) = lon.sin_cos();
+            // As for the neighbours in `open`: the cell's centre-to-vertex bound with 1% to spare.
+            let bound =
+                cdshealpix::largest_center_to_vertex_distance(self.depth + FINE_LEVELS, lon, lat) * 1.01;
+            let reach = self.radius_rad + bound;
+            let cos_reach = if reach >= std::f64::consts::PI {
+                -2.0
+            } else {
+                reach.cos() - GEO_MARGIN
+            };
+            g.x[j] = (cl * co) as f32;
+            g.y[j] = (cl * so) as f32;
+            g.z[j] = sl as f32;
+            g.c[j] = cos_reach as f32;
+        }
+        g
     }
 
     /// Heap bytes of the index, from capacities.
@@ -595,6 +813,8 @@ impl SkyIndex {
         held + self.buckets.capacity() * size_of::<Bucket>()
             + self.meta.capacity() * size_of::<Meta>()
             + self.fifo.capacity() * size_of::<Entry>()
+            + self.fines.capacity() * size_of::<Fine>()
+            + self.fines.iter().filter(|f| f.geo.is_some()).count() * size_of::<SubGeo>()
             + map
     }
 
@@ -620,12 +840,31 @@ impl SkyIndex {
 
     /// Adds a photon (in release order); returns its bucket.
     pub(crate) fn insert(&mut self, p: &Photon, v: [f64; 3]) -> u32 {
-        let pix = self.pixel(p.ra, p.dec);
+        // The sub-pixel's number holds its pixel's (nested numbering), so one hash gives both.
+        let (pix, sub) = match self.fine_layer {
+            Some(fine) => {
+                let lat = p
+                    .dec
+                    .to_radians()
+                    .clamp(-std::f64::consts::FRAC_PI_2, std::f64::consts::FRAC_PI_2);
+                let h = fine.hash(p.ra.to_radians(), lat);
+                (h >> (2 * FINE_LEVELS), (h & (SUBS as u64 - 1)) as u8)
+            }
+            None => (self.pixel(p.ra, p.dec), 0),
+        };
         let slot = match self.map.get(pix) {
             Some(s) => s,
             None => self.open(pix),
         };
         self.buckets[slot as usize].held.push_back(p.t, v);
+        let f = &mut self.fines[slot as usize];
+        for (tot, &i) in f.tot.iter_mut().zip(&self.win_inc) {
+            *tot = tot.wrapping_add(i);
+        }
+        let rows = self.win_dt.len().saturating_sub(self.fine_from);
+        for row in &mut f.cnt[..rows] {
+            row[usize::from(sub)] = row[usize::from(sub)].wrapping_add(1);
+        }
         let cold = Cold {
             ra: p.ra,
             dec: p.dec,
@@ -633,7 +872,12 @@ impl SkyIndex {
             zenith: p.zenith,
             azimuth: p.azimuth,
         };
-        self.fifo.push_back(Entry { t: p.t, slot, cold });
+        self.fifo.push_back(Entry {
+            t: p.t,
+            slot,
+            sub,
+            cold,
+        });
         slot
     }
 
@@ -652,9 +896,13 @@ impl SkyIndex {
                     geo: [[0.0; 4]; 8],
                 });
                 self.meta.push(Meta::default());
+                self.fines.push(Fine::default());
                 (self.buckets.len() - 1) as u32
             }
         };
+        // A reused bucket's counts are all zero (its photons left every window before their eviction); its
+        // sub-pixel geometry was another pixel's.
+        self.fines[slot as usize].geo = None;
         let mut geo = [[0.0f32, 0.0, 0.0, 2.0]; 8];
         for (g, &q) in geo.iter_mut().zip(&neigh[..n]) {
             let (lon, lat) = self.layer.center(q);
@@ -719,7 +967,20 @@ impl SkyIndex {
             if e.t >= t_min {
                 break;
             }
-            let slot = e.slot;
+            let (slot, sub) = (e.slot, e.sub);
+            // Retention exceeds every window, so the cursors have passed this photon already unless the
+            // windows were not moved to its time: take it out of those it is still counted in.
+            for (k, at) in self.win_at[..self.win_dt.len()].iter_mut().enumerate() {
+                if *at == self.popped {
+                    let f = &mut self.fines[slot as usize];
+                    if let Some(row) = k.checked_sub(self.fine_from) {
+                        f.cnt[row][usize::from(sub)] = f.cnt[row][usize::from(sub)].wrapping_sub(1);
+                    }
+                    f.tot[k] = f.tot[k].wrapping_sub(1);
+                    *at += 1;
+                }
+            }
+            self.popped += 1;
             self.fifo.pop_front();
             let b = &mut self.buckets[slot as usize];
             b.held.pop_front();
@@ -1119,6 +1380,85 @@ mod tests {
             }
         }
         hist
+    }
+
+    #[test]
+    fn sub_pixel_bounds_never_spare_a_count_that_reaches_its_critical_count() {
+        // A stream whose density changes (a 3 x 3 degree patch, then 12 x 12), with ties and times on a 1 us
+        // grid; the windows follow a ladder and the fifo is evicted as the engine does. At every seed, with
+        // the plain walk's cumulative counts n_k: critical counts equal to them on any one timescale (the
+        // others out of reach) must be reported as reachable; the windowed counts summed over all sub-pixels,
+        // and the pixel totals, equal the photons inside each window; and critical counts of 2 n_k + 3 are
+        // mostly found out of reach (the bounds are tight enough to spare the walk).
+        use rand::{RngExt, SeedableRng};
+        let mut rng = rand_pcg::Pcg64::seed_from_u64(23);
+        let r = 0.5;
+        let cos_r = f64::to_radians(r).cos();
+        let ladder = vec![1_000_000, 3_000_000, 10_000_000, 65_536_000, 300_000_000];
+        let mut idx = SkyIndex::new(r);
+        idx.follow_windows(&ladder);
+        let mut t = 1_420_000_000_000_000_000i64;
+        let mut times = std::collections::VecDeque::new();
+        let (mut seeds, mut spared, mut refined) = (0u64, 0u64, 0u64);
+        for i in 0..30_000 {
+            let w = if i < 15_000 { 3.0 } else { 12.0 };
+            if rng.random::<f64>() > 0.1 {
+                t += 1000 * (1 + (rng.random::<f64>() * 60.0) as i64);
+            }
+            let p = ph(t, 40.0 + w * rng.random::<f64>(), 10.0 + w * rng.random::<f64>());
+            let v = unit_vector(p.ra, p.dec);
+            let slot = idx.insert(&p, v);
+            times.push_back(t);
+            idx.advance_windows(t);
+            idx.evict_before(t - 400_000_000);
+            while times.front().is_some_and(|&x| x < t - 400_000_000) {
+                times.pop_front();
+            }
+            if i % 997 == 0 {
+                for (k, &dt) in ladder.iter().enumerate() {
+                    let want = times.iter().filter(|&&x| t - x < dt).count() as u64;
+                    let cells: u64 = match k.checked_sub(idx.fine_from) {
+                        Some(row) => idx
+                            .fines
+                            .iter()
+                            .map(|f| f.cnt[row].iter().map(|&c| u64::from(c)).sum::<u64>())
+                            .sum(),
+                        None => want,
+                    };
+                    let tot: u64 = idx.fines.iter().map(|f| u64::from(f.tot[k])).sum();
+                    assert_eq!((cells, tot), (want, want), "photon {i}, window {dt}");
+                }
+            }
+            let hist = plain_walk(&idx, slot, v, t, cos_r, &ladder);
+            let cum: Vec<u32> = hist
+                .iter()
+                .scan(0, |n, &h| {
+                    *n += h;
+                    Some(*n)
+                })
+                .collect();
+            let k = i % ladder.len();
+            let mut crit = vec![u32::MAX; ladder.len()];
+            crit[k] = cum[k];
+            assert!(
+                idx.may_cross(slot, v, &crit),
+                "photon {i}: timescale {k} at {} spared",
+                cum[k]
+            );
+            // The timescales with sub-pixel counts at twice their counts, the others out of reach.
+            let loose: Vec<u32> = cum
+                .iter()
+                .enumerate()
+                .map(|(k, &n)| if k < idx.fine_from { u32::MAX } else { 2 * n + 3 })
+                .collect();
+            seeds += 1;
+            spared += u64::from(!idx.may_cross(slot, v, &loose));
+            refined += u64::from(idx.fines.iter().any(|f| f.geo.is_some()));
+        }
+        assert!(
+            spared * 10 > seeds * 7 && refined > 0,
+            "{spared} of {seeds} seeds spared at twice their counts"
+        );
     }
 
     #[test]

@@ -126,6 +126,12 @@ pub(crate) fn finding_to_alert(instrument: &str, f: &Finding, flash: Option<(u64
 
 /// Gives an alert its sequence number, id and issue time (GPS ns: wall-clock for live alerts, event time
 /// for replays, so replays are byte-identical run after run).
+///
+/// The id rule, one for every alert: `GL-<instrument>-<time>-<seq>`, where `<time>` is the UTC end of the
+/// trigger the alert is about, in event time: a flash's and an assessment's own trigger, a withdrawal's (the
+/// engine's or an operator's) the trigger of the alert it withdraws. Only alerts about no trigger (a test
+/// alert, an operator's withdrawal of one) use their issue time. So an alert's id is the same live and in a
+/// replay of the same photons, whoever withdraws it.
 pub(crate) fn stamp(alert: &mut pb::Alert, seq: u64, issued_gps_ns: i64) {
     alert.seq = seq;
     alert.issued_gps_ns = issued_gps_ns;
@@ -526,9 +532,9 @@ pub(crate) fn alert_summary(a: &pb::Alert) -> String {
 #[derive(Debug, Default)]
 pub(crate) struct Sequencer {
     next_seq: u64,
-    /// (instrument, engine candidate) -> (flash seq, flash id). Entries leave when the candidate is assessed,
-    /// so the map holds only open candidates.
-    flashes: std::collections::BTreeMap<(String, u64), (u64, String)>,
+    /// (instrument, engine candidate) -> (flash seq, flash id, flash trigger). Entries leave when the
+    /// candidate is assessed, so the map holds only open candidates.
+    flashes: std::collections::BTreeMap<(String, u64), (u64, String, Option<pb::Trigger>)>,
 }
 
 impl Sequencer {
@@ -563,10 +569,16 @@ impl Sequencer {
         if matches!(f, Finding::Withdrawal(_)) {
             self.flashes.remove(&key);
         }
-        let mut alert = finding_to_alert(instrument, f, flash.as_ref().map(|(s, id)| (*s, id.as_str())));
+        let mut alert = finding_to_alert(instrument, f, flash.as_ref().map(|(s, id, _)| (*s, id.as_str())));
+        if let (Finding::Withdrawal(_), Some((_, _, trigger))) = (f, flash) {
+            // Like an operator's, the engine's withdrawal carries the trigger of what it withdraws, which also
+            // gives its id the same event time live and in replay.
+            alert.trigger = trigger;
+        }
         stamp(&mut alert, seq, issued_gps_ns);
         if matches!(f, Finding::Flash(_)) {
-            self.flashes.insert(key, (seq, alert.id.clone()));
+            self.flashes
+                .insert(key, (seq, alert.id.clone(), alert.trigger.clone()));
         }
         alert
     }
@@ -594,6 +606,37 @@ impl Sequencer {
         };
         stamp(&mut alert, seq, issued_gps_ns);
         alert
+    }
+
+    /// The id of the flash an engine withdrawal would withdraw (the open candidate's flash), if known.
+    pub(crate) fn peek_withdrawn(&self, instrument: &str, f: &Finding) -> Option<&String> {
+        let Finding::Withdrawal(w) = f else { return None };
+        self.flashes
+            .get(&(instrument.to_string(), w.candidate))
+            .map(|(_, id, _)| id)
+    }
+
+    /// Drops what is kept of a candidate whose finding is not issued.
+    pub(crate) fn forget(&mut self, instrument: &str, f: &Finding) {
+        if let Finding::Withdrawal(w) = f {
+            self.flashes.remove(&(instrument.to_string(), w.candidate));
+        }
+    }
+
+    /// A withdrawal of `target` (any alert) saying `reason`: it names the target's instrument and carries its
+    /// trigger, so a subscriber filtering by place matches it and its id follows the one id rule.
+    pub(crate) fn withdrawal_of(
+        &mut self,
+        target: &pb::Alert,
+        reason: &str,
+        issued_gps_ns: i64,
+    ) -> pb::Alert {
+        let mut a = self.operator_withdrawal(&target.id, reason, issued_gps_ns);
+        a.instrument = target.instrument.clone();
+        a.trigger = target.trigger.clone();
+        let seq = a.seq;
+        stamp(&mut a, seq, issued_gps_ns);
+        a
     }
 
     /// An operator's withdrawal of any alert by id.

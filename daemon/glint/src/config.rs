@@ -426,6 +426,10 @@ pub(crate) struct Config {
     pub(crate) instruments: Vec<InstrumentConfig>,
     /// `GLINT_*` environment variables that name no configuration key, so were not used.
     pub(crate) ignored_env: Vec<String>,
+    /// What compiles and would run but must not be deployed: the shipped placeholder tokens, token files
+    /// readable by group or others. `check-config` refuses them (with [`Config::state_dir_problem`]);
+    /// `run` logs them as warnings.
+    pub(crate) deployment: Vec<Problem>,
 }
 
 impl Config {
@@ -469,6 +473,16 @@ impl Config {
         } else {
             BTreeMap::new()
         };
+        // Instrument keys live in an array of tables, which the environment source cannot index: those
+        // variables are applied to the parsed tree here instead.
+        let instrument_env: BTreeMap<String, String> = env
+            .iter()
+            .filter(|(k, _)| k.to_ascii_uppercase().starts_with(INSTRUMENT_ENV_PREFIX))
+            .map(|(k, v)| (k.clone(), v.clone()))
+            .collect();
+        env.retain(|k, _| !instrument_env.contains_key(k));
+        // Which configuration key each variable set, to name the variable in a problem with that key.
+        let mut env_keys: Vec<(String, String)> = env.keys().map(|v| (env_key(v), v.clone())).collect();
         let compile = |env: &BTreeMap<String, String>| -> Result<(Option<Self>, Vec<Problem>), ConfigError> {
             let mut builder =
                 config::Config::builder().add_source(config::File::from_str(text, config::FileFormat::Toml));
@@ -484,14 +498,28 @@ impl Config {
                 );
             }
             let raw = builder.build().map_err(|e| fail("(syntax)", e.to_string()))?;
-            let root: Table = raw
+            let mut root: Table = raw
                 .try_deserialize()
                 .map_err(|e| fail("(syntax)", e.to_string()))?;
             let mut r = Reader {
                 problems: Vec::new(),
                 base_dir: base_dir.to_path_buf(),
+                deployment: Vec::new(),
             };
-            let cfg = r.compile(root);
+            let mut r_problems = Vec::new();
+            for (var, value) in &instrument_env {
+                if let Err(message) = apply_instrument_env(&mut root, var, value) {
+                    r_problems.push(Problem {
+                        key: format!("{var} (environment)"),
+                        message,
+                    });
+                }
+            }
+            r.problems.extend(r_problems);
+            let cfg = r.compile(root).map(|c| Self {
+                deployment: std::mem::take(&mut r.deployment),
+                ..c
+            });
             Ok((cfg, r.problems))
         };
         let (mut cfg, mut problems) = compile(&env)?;
@@ -516,6 +544,12 @@ impl Config {
             env.retain(|k, _| !ignored.contains(k));
             (cfg, problems) = compile(&env)?;
         }
+        env_keys.retain(|(_, var)| !ignored.contains(var));
+        for var in instrument_env.keys() {
+            if let Some(key) = instrument_env_key(var, &text_instrument_ids(cfg.as_ref())) {
+                env_keys.push((key, var.clone()));
+            }
+        }
         match cfg {
             Some(c) if problems.is_empty() => Ok(Self {
                 source_name: source_name.to_string(),
@@ -524,7 +558,7 @@ impl Config {
             }),
             _ => Err(ConfigError {
                 source_name: source_name.to_string(),
-                problems,
+                problems: problems.into_iter().map(|p| name_env_var(p, &env_keys)).collect(),
             }),
         }
     }
@@ -562,6 +596,9 @@ impl Config {
                 ));
             }
         }
+        for p in &self.deployment {
+            w.push(format!("{}: {} (check-config refuses this)", p.key, p.message));
+        }
         if !self.ignored_env.is_empty() {
             w.push(format!(
                 "ignored environment variable(s) that name no configuration key: {}",
@@ -569,6 +606,34 @@ impl Config {
             ));
         }
         w
+    }
+
+    /// What is wrong with `daemon.state_dir` for a deployment: missing, not a directory, or not writable by
+    /// this user (tried with a temporary file, removed at once).
+    pub(crate) fn state_dir_problem(&self) -> Option<Problem> {
+        let dir = &self.daemon.state_dir;
+        let message = match std::fs::metadata(dir) {
+            Err(e) if e.kind() == std::io::ErrorKind::NotFound => format!(
+                "{} does not exist: create it, owned by the daemon's user (the service file's StateDirectory= does)",
+                dir.display()
+            ),
+            Err(e) => format!("{}: {e}", dir.display()),
+            Ok(m) if !m.is_dir() => format!("{} is not a directory", dir.display()),
+            Ok(_) => {
+                let probe = dir.join(format!(".glint-check-{}.tmp", std::process::id()));
+                match std::fs::File::create(&probe) {
+                    Ok(_) => {
+                        let _ = std::fs::remove_file(&probe);
+                        return None;
+                    }
+                    Err(e) => format!("{} is not writable by this user: {e}", dir.display()),
+                }
+            }
+        };
+        Some(Problem {
+            key: "daemon.state_dir".into(),
+            message,
+        })
     }
 
     /// The instrument with this id.
@@ -603,6 +668,7 @@ impl CoincideConfig {
         let mut r = Reader {
             problems: Vec::new(),
             base_dir: base_dir.to_path_buf(),
+            deployment: Vec::new(),
         };
         let cfg = r.compile_coincide(root);
         match cfg {
@@ -648,6 +714,112 @@ fn raw_root(text: &str, source_name: &str, with_env: bool) -> Result<Table, Conf
     raw.try_deserialize().map_err(|e| fail("(syntax)", e.to_string()))
 }
 
+/// Variables that set a key of one `[[instrument]]`: `GLINT_INSTRUMENT__<index or id>__<KEY>[__<KEY>...]`,
+/// the id written with `_` for `-` (any case), e.g. `GLINT_INSTRUMENT__VENTISCA_ARRAY__TOKEN_FILE` or
+/// `GLINT_INSTRUMENT__0__SEARCH__FAR_PER_YEAR`.
+const INSTRUMENT_ENV_PREFIX: &str = "GLINT_INSTRUMENT__";
+
+/// Which instrument a selector names: an index, or an id with `_` standing for `-` (any case).
+fn instrument_index(selector: &str, ids: &[String]) -> Option<usize> {
+    if let Ok(i) = selector.parse::<usize>() {
+        return (i < ids.len()).then_some(i);
+    }
+    let norm = |s: &str| s.to_ascii_lowercase().replace('-', "_");
+    ids.iter().position(|id| norm(id) == norm(selector))
+}
+
+/// The instrument ids of a parsed tree, in order (blank where an entry has none).
+fn instrument_ids(root: &Table) -> Vec<String> {
+    match root.get("instrument") {
+        Some(Value::Array(a)) => a
+            .iter()
+            .map(|t| {
+                t.get("id")
+                    .and_then(|v| v.as_str())
+                    .unwrap_or_default()
+                    .to_string()
+            })
+            .collect(),
+        _ => Vec::new(),
+    }
+}
+
+/// The ids of a compiled configuration (for naming variables in problems).
+fn text_instrument_ids(cfg: Option<&Config>) -> Vec<String> {
+    cfg.map(|c| c.instruments.iter().map(|i| i.id.clone()).collect())
+        .unwrap_or_default()
+}
+
+/// Splits an instrument variable into its selector and its key path (lower case).
+fn split_instrument_var(var: &str) -> Option<(String, Vec<String>)> {
+    let rest = var.get(INSTRUMENT_ENV_PREFIX.len()..)?;
+    let mut parts = rest.split("__");
+    let selector = parts.next().filter(|s| !s.is_empty())?.to_string();
+    let path: Vec<String> = parts.map(str::to_ascii_lowercase).collect();
+    (!path.is_empty() && path.iter().all(|p| !p.is_empty())).then_some((selector, path))
+}
+
+/// The dotted key an instrument variable sets, e.g. `instrument[0].token_file`.
+fn instrument_env_key(var: &str, ids: &[String]) -> Option<String> {
+    let (selector, path) = split_instrument_var(var)?;
+    let i = selector
+        .parse::<usize>()
+        .ok()
+        .or_else(|| instrument_index(&selector, ids))?;
+    Some(format!("instrument[{i}].{}", path.join(".")))
+}
+
+/// Sets the key an instrument variable names in the parsed tree (a number or boolean when the value reads
+/// as one, else text).
+fn apply_instrument_env(root: &mut Table, var: &str, value: &str) -> Result<(), String> {
+    let (selector, path) = split_instrument_var(var)
+        .ok_or_else(|| "write it GLINT_INSTRUMENT__<index or id>__<KEY>".to_string())?;
+    let ids = instrument_ids(root);
+    let i = instrument_index(&selector, &ids).ok_or_else(|| {
+        format!(
+            "no instrument '{selector}' (by index or id; configured: {})",
+            ids.join(", ")
+        )
+    })?;
+    let Some(Value::Array(list)) = root.get_mut("instrument") else {
+        return Err("the configuration has no [[instrument]]".into());
+    };
+    let Some(Value::Table(first)) = list.get_mut(i) else {
+        return Err(format!("instrument[{i}] is not a table"));
+    };
+    let mut t: &mut Table = first;
+    let (last, parents) = path.split_last().ok_or("no key")?;
+    for p in parents {
+        let entry = t.entry(p.clone()).or_insert_with(|| Value::Table(Table::new()));
+        let Value::Table(next) = entry else {
+            return Err(format!("instrument[{i}].{p} is not a table"));
+        };
+        t = next;
+    }
+    let parsed = value
+        .parse::<i64>()
+        .map(Value::Integer)
+        .or_else(|_| value.parse::<f64>().map(Value::Float))
+        .or_else(|_| value.parse::<bool>().map(Value::Boolean))
+        .unwrap_or_else(|_| Value::String(value.to_string()));
+    t.insert(last.clone(), parsed);
+    Ok(())
+}
+
+/// A problem whose key an environment variable set names that variable, so it is not blamed on the file.
+fn name_env_var(p: Problem, env_keys: &[(String, String)]) -> Problem {
+    let hit = env_keys.iter().find(|(key, _)| {
+        p.key == *key || p.key.starts_with(&format!("{key}.")) || p.key.starts_with(&format!("{key}["))
+    });
+    match hit {
+        Some((_, var)) => Problem {
+            key: format!("{} ({var}, environment)", p.key),
+            message: p.message,
+        },
+        None => p,
+    }
+}
+
 /// The dotted key a `GLINT_SECTION__KEY` variable stands for, as the `config` crate reads it.
 fn env_key(var: &str) -> String {
     var.to_lowercase()
@@ -659,10 +831,16 @@ fn env_key(var: &str) -> String {
 /// Smallest size accepted for byte-count keys whose tiny values make no sense (frame limits, segments).
 const MIN_SIZE_BYTES: i64 = 4096;
 
+/// How the sample tokens under `deploy/tokens/` begin: never a real secret.
+const PLACEHOLDER_TOKEN_PREFIX: &str = "change-me-";
+
 /// Walks the raw tree, taking each known key out of its table so that what is left over is unknown.
 struct Reader {
     problems: Vec<Problem>,
     base_dir: PathBuf,
+    /// What would run but must not be deployed (placeholder tokens, token files others can read):
+    /// `check-config` refuses it, `run` warns.
+    deployment: Vec<Problem>,
 }
 
 /// One table being read; leftover keys are reported as unknown when it is finished.
@@ -849,7 +1027,10 @@ impl Reader {
             (None, Some(f)) => {
                 let path = self.path(&f);
                 match std::fs::read_to_string(&path) {
-                    Ok(t) => self.check_secret(s.key(&file_key), t.trim().to_string()),
+                    Ok(t) => {
+                        self.check_token_file_mode(s.key(&file_key), &path);
+                        self.check_secret(s.key(&file_key), t.trim().to_string())
+                    }
                     Err(e) => {
                         self.problem(
                             s.key(&file_key),
@@ -868,7 +1049,31 @@ impl Reader {
         }
     }
 
+    /// A token file the group or others may read is a deployment problem (its secret is not one).
+    fn check_token_file_mode(&mut self, key: String, path: &Path) {
+        use std::os::unix::fs::PermissionsExt as _;
+        if let Ok(m) = std::fs::metadata(path) {
+            let mode = m.permissions().mode() & 0o777;
+            if mode & 0o077 != 0 {
+                self.deployment.push(Problem {
+                    key,
+                    message: format!(
+                        "token file {} is readable by group or others (mode {mode:o}): chmod 600 it",
+                        path.display()
+                    ),
+                });
+            }
+        }
+    }
+
     fn check_secret(&mut self, key: String, t: String) -> Option<Secret> {
+        if t.starts_with(PLACEHOLDER_TOKEN_PREFIX) {
+            self.deployment.push(Problem {
+                key: key.clone(),
+                message: "is the shipped placeholder token: make a secret of your own (e.g. `openssl rand -hex 24`)"
+                    .into(),
+            });
+        }
         if t.len() < 8 {
             self.problem(key, "token must be at least 8 characters");
             None
@@ -945,11 +1150,8 @@ impl Reader {
         let mut d = self.section(&mut top, "daemon");
         let state_dir: String = self.get(&mut d, "state_dir", "/var/lib/glint".to_string());
         let log_level: String = self.get(&mut d, "log_level", "info".to_string());
-        if tracing_subscriber::EnvFilter::try_new(&log_level).is_err() {
-            self.problem(
-                d.key("log_level"),
-                format!("'{log_level}' is not a log filter (e.g. info, glint=debug)"),
-            );
+        if let Some(why) = crate::logging::level_problem(&log_level) {
+            self.problem(d.key("log_level"), why);
         }
         let fmt_text: String = self.get(&mut d, "log_format", "text".to_string());
         let log_format = match fmt_text.as_str() {
@@ -1025,6 +1227,7 @@ impl Reader {
             let p = self.path(&f);
             match std::fs::read_to_string(&p) {
                 Ok(t) => {
+                    self.check_token_file_mode(s.key(&format!("token_files[{i}]")), &p);
                     tokens.extend(self.check_secret(s.key(&format!("token_files[{i}]")), t.trim().into()))
                 }
                 Err(e) => self.problem(
@@ -1152,6 +1355,7 @@ impl Reader {
             bus,
             instruments,
             ignored_env: Vec::new(),
+            deployment: Vec::new(),
         })
     }
 
@@ -1280,8 +1484,8 @@ impl Reader {
         let horizon_s: f64 = self.get(&mut s, "horizon_s", 3600.0);
         self.in_range(&s, "horizon_s", horizon_s, 1.0, 30.0 * 86_400.0);
         let log_level: String = self.get(&mut s, "log_level", "info".to_string());
-        if tracing_subscriber::EnvFilter::try_new(&log_level).is_err() {
-            self.problem(s.key("log_level"), format!("'{log_level}' is not a log filter"));
+        if let Some(why) = crate::logging::level_problem(&log_level) {
+            self.problem(s.key("log_level"), why);
         }
         self.finish(s);
 

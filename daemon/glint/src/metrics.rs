@@ -129,6 +129,9 @@ pub(crate) struct Metrics {
     pub(crate) refused_subscriber_connections: AtomicU64,
     /// Photons taken but dropped as late (behind the instrument's watermark on arrival).
     pub(crate) late_photons: AtomicU64,
+    /// Photons dropped after a restart because they lie behind the instrument's resume point (searched
+    /// before the restart).
+    pub(crate) photons_behind_resume: AtomicU64,
     /// Alerts issued, by kind: flash, assessment, withdrawal.
     pub(crate) alerts: [AtomicU64; 3],
     /// Producers connected now.
@@ -186,6 +189,7 @@ impl Metrics {
             refused_connections: AtomicU64::new(0),
             refused_subscriber_connections: AtomicU64::new(0),
             late_photons: AtomicU64::new(0),
+            photons_behind_resume: AtomicU64::new(0),
             alerts: [AtomicU64::new(0), AtomicU64::new(0), AtomicU64::new(0)],
             producers: AtomicI64::new(0),
             subscribers: AtomicI64::new(0),
@@ -299,6 +303,11 @@ impl Metrics {
                 "glint_late_photons_total",
                 "Photons dropped as late (behind the instrument's watermark on arrival).",
                 get(&self.late_photons),
+            ),
+            (
+                "glint_photons_behind_resume_total",
+                "Photons dropped after a restart as already searched (behind the instrument's resume point).",
+                get(&self.photons_behind_resume),
             ),
             (
                 "glint_subscribers_dropped_total",

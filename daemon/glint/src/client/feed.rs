@@ -70,6 +70,12 @@ pub(crate) struct FeedReport {
     pub(crate) late_photons: u64,
     /// Warnings the daemon sent (code and detail).
     pub(crate) refusals: Vec<String>,
+    /// The daemon's `Welcome.last_seq`: the highest seq it had already taken from this instrument.
+    pub(crate) daemon_last_seq: u64,
+    /// Frames not sent because the daemon had already taken them (seq at most `daemon_last_seq`).
+    pub(crate) skipped_frames: u64,
+    /// Photons in those frames.
+    pub(crate) skipped_photons: u64,
 }
 
 impl FeedReport {
@@ -98,6 +104,9 @@ pub(crate) struct FeedTarget {
     pub(crate) tls: Option<ClientTls>,
     /// Frame size limit.
     pub(crate) max_frame: usize,
+    /// Resume after the daemon's `Welcome.last_seq` (skip the leading frames it already took); false sends
+    /// everything from the start.
+    pub(crate) resume: bool,
 }
 
 /// Event time a frame stands for: a batch's latest photon, a status frame's `now`.
@@ -161,12 +170,12 @@ where
         })
         .await
         .map_err(|e| anyhow!("sending the Hello to {}: {e}", target.addr))?;
-    match tokio::time::timeout(Duration::from_secs(30), framed.next()).await {
+    let daemon_last_seq = match tokio::time::timeout(Duration::from_secs(30), framed.next()).await {
         Err(_) => bail!("no reply to the Hello from {} within 30 s", target.addr),
         Ok(None) => bail!("{} closed the connection after the Hello", target.addr),
         Ok(Some(Err(e))) => bail!("reading from {}: {e}", target.addr),
         Ok(Some(Ok(r))) => match r.body {
-            Some(ingest_reply::Body::Welcome(_)) => {}
+            Some(ingest_reply::Body::Welcome(w)) => w.last_seq,
             Some(ingest_reply::Body::Refusal(r)) => {
                 bail!(
                     "{} refused {instrument}: {} ({})",
@@ -180,7 +189,7 @@ where
                 target.addr
             ),
         },
-    }
+    };
     let (mut sink, mut replies) = framed.split();
     // Replies are read alongside: acks and warnings, and a closing refusal. Once the last frame is sent its
     // seq arrives on `want_rx`, and the task ends when the daemon has acked it.
@@ -228,8 +237,15 @@ where
     };
     let start = Instant::now();
     let mut t0: Option<i64> = None;
-    let mut report = FeedReport::default();
+    let mut report = FeedReport {
+        daemon_last_seq,
+        ..FeedReport::default()
+    };
     let mut last_seq = 0;
+    // Leading frames the daemon already took (a restart of this feed, or of the daemon, whose state keeps the
+    // number) are skipped until the first one past it; a Hello inside the recording starts a new numbering,
+    // so skipping stops there too.
+    let mut skipping = target.resume && daemon_last_seq > 0;
     loop {
         let next = match pending.take() {
             Some(f) => Some(Ok(f)),
@@ -247,7 +263,18 @@ where
         let frame = frame?;
         if matches!(frame.body, Some(producer_frame::Body::Hello(_))) {
             // A Hello inside a recording marks a reconnect of the original producer; ours stays connected.
+            skipping = false;
             continue;
+        }
+        if skipping {
+            if seq_of(&frame) <= daemon_last_seq {
+                report.skipped_frames += 1;
+                if let Some(producer_frame::Body::Batch(b)) = &frame.body {
+                    report.skipped_photons += b.time_gps_ns.len() as u64;
+                }
+                continue;
+            }
+            skipping = false;
         }
         if let (Speed::Times(x), Some(t)) = (speed, event_time(&frame)) {
             let t0 = *t0.get_or_insert(t);
@@ -317,6 +344,12 @@ pub(crate) fn print_report(name: &str, r: &FeedReport) {
         r.refused_photons,
         r.late_photons
     );
+    if r.skipped_frames > 0 {
+        println!(
+            "  resumed after seq {} (the daemon had taken it before): skipped {} frames, {} photons",
+            r.daemon_last_seq, r.skipped_frames, r.skipped_photons
+        );
+    }
     for w in &r.refusals {
         println!("  daemon warned: {w}");
     }

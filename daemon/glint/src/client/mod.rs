@@ -63,7 +63,7 @@ pub(crate) fn operator_command(
     tls_ca: Option<&Path>,
     operator: Option<String>,
     make: impl FnOnce(String, String) -> subscriber_request::Body,
-) -> anyhow::Result<pb::Alert> {
+) -> anyhow::Result<Vec<pb::Alert>> {
     let token = read_token(token_file)?;
     let tls = tls_ca.map(ClientTls::from_ca_file).transpose()?;
     let operator = operator
@@ -76,13 +76,18 @@ pub(crate) fn operator_command(
     rt.block_on(operator_request(from, tls.as_ref(), make(token, operator)))
 }
 
+/// Alerts one operator request may bring (a withdrawal and the one issued with it, say); more is a daemon
+/// gone wrong, not a reason to read on.
+const MAX_REPLY_ALERTS: usize = 16;
+
 /// Sends one operator request (a withdrawal, a test alert) to a daemon's subscriber port and returns the
-/// alert the daemon issued for it; a refusal or no reply within 30 s is an error naming the daemon.
+/// alerts the daemon issued for it, the one asked for first (a withdrawn flash's assessment is withdrawn
+/// with it); a refusal or no reply within 30 s is an error naming the daemon.
 pub(crate) async fn operator_request(
     addr: &str,
     tls: Option<&ClientTls>,
     body: subscriber_request::Body,
-) -> anyhow::Result<pb::Alert> {
+) -> anyhow::Result<Vec<pb::Alert>> {
     let io = tls::connect(addr, tls).await?;
     let mut framed = Framed::new(
         io,
@@ -94,7 +99,20 @@ pub(crate) async fn operator_request(
         .map_err(|_| anyhow!("no reply from {addr} within 30 s"))?
         .ok_or_else(|| anyhow!("{addr} closed the connection without a reply"))??;
     match reply.body {
-        Some(subscriber_frame::Body::Alert(a)) => Ok(a),
+        Some(subscriber_frame::Body::Alert(a)) => {
+            let mut alerts = vec![a];
+            // The daemon closes the connection after the last alert; a daemon that does not is not waited for
+            // long.
+            while alerts.len() < MAX_REPLY_ALERTS {
+                match tokio::time::timeout(Duration::from_secs(5), framed.next()).await {
+                    Ok(Some(Ok(pb::SubscriberFrame {
+                        body: Some(subscriber_frame::Body::Alert(a)),
+                    }))) => alerts.push(a),
+                    _ => break,
+                }
+            }
+            Ok(alerts)
+        }
         Some(subscriber_frame::Body::Refusal(r)) => {
             Err(anyhow!("{addr} refused: {} ({})", refusal_name(r.code), r.detail))
         }

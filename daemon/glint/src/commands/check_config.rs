@@ -1,11 +1,13 @@
 //! `glint check-config`: compiles a configuration (the daemon's, or `glint coincide`'s) and lists every
 //! problem in it at once (TLS material is loaded and listener ports compared, so what passes here also
-//! starts), then the warnings `run` would log.
+//! starts), then the warnings `run` would log. It also refuses what would run but must not be deployed: the
+//! shipped placeholder tokens, token files the group or others can read, a state directory that is missing
+//! or not writable by this user (run it as the daemon's user).
 
 use std::path::PathBuf;
 use std::process::ExitCode;
 
-use crate::config::{BadConfig, CoincideConfig, config_or_exit, is_coincide_config};
+use crate::config::{BadConfig, CoincideConfig, ConfigError, config_or_exit, is_coincide_config};
 
 /// Arguments of `glint check-config`.
 #[derive(Debug, clap::Args)]
@@ -35,6 +37,15 @@ pub(crate) fn run(a: &CheckConfigArgs) -> anyhow::Result<ExitCode> {
         }
     }
     let cfg = config_or_exit(a.file.as_ref())?;
+    let mut problems = cfg.deployment.clone();
+    problems.extend(cfg.state_dir_problem());
+    if !problems.is_empty() {
+        return Err(BadConfig(ConfigError {
+            source_name: cfg.source_name.clone(),
+            problems,
+        })
+        .into());
+    }
     println!(
         "{}: ok ({} instrument(s): {})",
         cfg.source_name,

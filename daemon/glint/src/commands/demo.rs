@@ -103,6 +103,7 @@ pub(crate) fn run(args: DemoArgs) -> anyhow::Result<ExitCode> {
             producer: "glint-demo".into(),
             tls: None,
             max_frame: 64 << 20,
+            resume: true,
         };
         let started = Instant::now();
         let fed = feed::feed(sim.map(Ok::<_, anyhow::Error>), &target, Speed::Times(speed)).await;
@@ -255,6 +256,7 @@ reason = "readout stop"
                 producer: "test".into(),
                 tls: None,
                 max_frame: 64 << 20,
+                resume: true,
             };
             let fed = feed::feed(sim.map(Ok::<_, anyhow::Error>), &target, Speed::Max)
                 .await

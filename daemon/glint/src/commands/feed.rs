@@ -33,6 +33,10 @@ pub(crate) struct FeedArgs {
     /// Producer name sent in the Hello.
     #[arg(long, default_value = "glint-feed")]
     producer: String,
+    /// Send every frame, even those the daemon says it already took (its Welcome.last_seq); by default the
+    /// feed resumes after them.
+    #[arg(long)]
+    from_start: bool,
 }
 
 /// `glint feed`.
@@ -49,6 +53,7 @@ pub(crate) fn run(args: FeedArgs) -> anyhow::Result<ExitCode> {
         producer: args.producer.clone(),
         tls,
         max_frame,
+        resume: !args.from_start,
     };
     let rt = tokio::runtime::Builder::new_multi_thread()
         .worker_threads(2)

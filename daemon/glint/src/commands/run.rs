@@ -17,7 +17,7 @@ pub(crate) struct RunArgs {
     config: Option<PathBuf>,
 }
 
-/// `glint run`: runs until SIGTERM or SIGINT.
+/// `glint run`: runs until SIGTERM or SIGINT; SIGHUP reloads tokens and email recipients.
 pub(crate) fn run_command(args: RunArgs) -> anyhow::Result<ExitCode> {
     let cfg = config_or_exit(args.config.as_ref())?;
     crate::logging::init(&cfg.daemon.log_level, cfg.daemon.log_format);
@@ -27,7 +27,7 @@ pub(crate) fn run_command(args: RunArgs) -> anyhow::Result<ExitCode> {
         .context("cannot start the runtime")?;
     rt.block_on(async {
         let first = shutdown_signals()?;
-        crate::serve::run(cfg, first).await
+        crate::serve::run(cfg, args.config.clone(), first).await
     })?;
     Ok(ExitCode::SUCCESS)
 }

@@ -8,6 +8,8 @@ use std::process::ExitCode;
 
 use glint_wire::pb::{self, subscriber_request};
 
+use anyhow::bail;
+
 use crate::client::operator_command;
 
 /// Arguments of `glint test-alert`.
@@ -33,7 +35,7 @@ pub(crate) struct TestAlertArgs {
 /// `glint test-alert`.
 pub(crate) fn run(args: TestAlertArgs) -> anyhow::Result<ExitCode> {
     let note = args.note.clone();
-    let alert = operator_command(
+    let alerts = operator_command(
         &args.from,
         &args.token_file,
         args.tls_ca.as_deref(),
@@ -46,6 +48,9 @@ pub(crate) fn run(args: TestAlertArgs) -> anyhow::Result<ExitCode> {
             })
         },
     )?;
+    let Some(alert) = alerts.first() else {
+        bail!("{} answered without an alert", args.from);
+    };
     println!("issued test alert {} (seq {})", alert.id, alert.seq);
     Ok(ExitCode::SUCCESS)
 }

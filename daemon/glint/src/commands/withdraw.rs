@@ -1,6 +1,8 @@
 //! `glint withdraw ID --reason TEXT`: an operator retracts an alert. The request goes to the daemon's
 //! subscriber port with the operator token; the daemon journals a withdrawal alert through the same desk path
-//! as every other alert and sends it to all subscribers. The command prints the withdrawal's id.
+//! as every other alert and sends it to all subscribers. Withdrawing a flash withdraws its assessment too;
+//! withdrawing an assessment leaves its flash standing (each withdrawal's reason says which). The command
+//! prints one line per withdrawal: what it withdrew, its id and its reason.
 
 use std::path::PathBuf;
 use std::process::ExitCode;
@@ -38,7 +40,7 @@ pub(crate) fn run(args: WithdrawArgs) -> anyhow::Result<ExitCode> {
         bail!("--reason must say why the alert is withdrawn");
     }
     let (alert_id, reason) = (args.id.clone(), args.reason.clone());
-    let alert = operator_command(
+    let alerts = operator_command(
         &args.from,
         &args.token_file,
         args.tls_ca.as_deref(),
@@ -52,9 +54,14 @@ pub(crate) fn run(args: WithdrawArgs) -> anyhow::Result<ExitCode> {
             })
         },
     )?;
-    println!(
-        "withdrew {} with {} (seq {})",
-        alert.withdrawn_id, alert.id, alert.seq
-    );
+    if alerts.is_empty() {
+        bail!("{} answered without a withdrawal", args.from);
+    }
+    for a in &alerts {
+        println!(
+            "withdrew {} with {} (seq {}): {}",
+            a.withdrawn_id, a.id, a.seq, a.reason
+        );
+    }
     Ok(ExitCode::SUCCESS)
 }

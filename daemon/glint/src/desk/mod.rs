@@ -8,7 +8,7 @@
 pub(crate) mod issuing;
 pub(crate) mod journal;
 
-use std::collections::{BTreeSet, VecDeque};
+use std::collections::{BTreeMap, BTreeSet, VecDeque};
 use std::path::{Path, PathBuf};
 use std::sync::{Arc, Condvar, Mutex, RwLock};
 
@@ -94,6 +94,9 @@ struct Numbering {
     /// when the withdrawal is numbered, so a second one of the same alert is refused even before the first is
     /// on disk.
     withdrawn: BTreeSet<String>,
+    /// Flash id -> the id of its assessment, within the journal kept: withdrawing a flash withdraws its
+    /// assessment with it.
+    assessed: BTreeMap<String, String>,
     queue: Vec<Pending>,
     queued_alerts: usize,
     /// Newest sequence number handed out, and newest one journalled and published.
@@ -136,6 +139,8 @@ pub(crate) struct Desk {
     journal_dir: PathBuf,
     /// Holes in the sequence found at open, with their reasons, for the gaps subscribers are sent.
     known_gaps: Vec<SeqGap>,
+    /// Per instrument, the latest trigger end (GPS ns) of a flash or assessment in the journal at open.
+    issued_through: BTreeMap<String, i64>,
 }
 
 impl std::fmt::Debug for Desk {
@@ -145,6 +150,15 @@ impl std::fmt::Debug for Desk {
             .field("last_seq", &self.last_seq())
             .finish()
     }
+}
+
+/// The flash an assessment belongs to, by id.
+fn linked_flash(a: &pb::Alert) -> Option<&str> {
+    (a.kind == pb::AlertKind::Assessment as i32)
+        .then_some(a.assessment.as_ref())
+        .flatten()
+        .map(|x| x.flash_id.as_str())
+        .filter(|id| !id.is_empty())
 }
 
 fn lock<T>(m: &Mutex<T>) -> std::sync::MutexGuard<'_, T> {
@@ -167,6 +181,8 @@ impl Desk {
     ) -> Result<(Self, OpenReport), DeskError> {
         let mut tail = VecDeque::with_capacity(TAIL_CAPACITY);
         let mut withdrawn = BTreeSet::new();
+        let mut issued_through = BTreeMap::new();
+        let mut assessed = BTreeMap::new();
         let (journal, report) = Journal::open(
             dir,
             cfg.segment_bytes,
@@ -175,6 +191,17 @@ impl Desk {
             &mut |rec: &journal::Record| {
                 if !rec.alert.withdrawn_id.is_empty() {
                     withdrawn.insert(rec.alert.withdrawn_id.clone());
+                }
+                if let Some(flash) = linked_flash(&rec.alert) {
+                    assessed.insert(flash.to_string(), rec.alert.id.clone());
+                }
+                let engine_kind = rec.alert.kind == pb::AlertKind::Flash as i32
+                    || rec.alert.kind == pb::AlertKind::Assessment as i32;
+                if let (true, Some(t)) = (engine_kind, rec.alert.trigger.as_ref()) {
+                    let e = issued_through
+                        .entry(rec.alert.instrument.clone())
+                        .or_insert(t.end_gps_ns);
+                    *e = (*e).max(t.end_gps_ns);
                 }
                 if tail.len() == TAIL_CAPACITY {
                     tail.pop_front();
@@ -192,6 +219,7 @@ impl Desk {
             numbering: Mutex::new(Numbering {
                 sequencer: Sequencer::starting_at(next),
                 withdrawn,
+                assessed,
                 queue: Vec::new(),
                 queued_alerts: 0,
                 assigned: next - 1,
@@ -224,8 +252,15 @@ impl Desk {
             committer: Some(committer),
             journal_dir: dir.to_path_buf(),
             known_gaps: report.gaps.clone(),
+            issued_through,
         };
         Ok((desk, report))
+    }
+
+    /// The latest trigger end (GPS ns) of a flash or assessment of `instrument` that the journal held when
+    /// the desk opened: photons up to it were searched before, whatever the engine's saved state says.
+    pub(crate) fn issued_through(&self, instrument: &str) -> Option<i64> {
+        self.issued_through.get(instrument).copied()
     }
 
     /// Newest published (journalled and fsynced) sequence number.
@@ -250,12 +285,32 @@ impl Desk {
         if findings.is_empty() {
             return Ok(());
         }
-        let mut g = self.room_for(findings.len())?;
+        // Room for each finding and the withdrawal an operator's earlier word may add to it.
+        let mut g = self.room_for(2 * findings.len())?;
         let issued_gps = unix_ns_to_gps_ns(now_unix_ns());
-        let alerts = findings
-            .iter()
-            .map(|f| g.sequencer.assign(instrument, f, issued_gps))
-            .collect();
+        let mut alerts = Vec::with_capacity(findings.len());
+        for f in findings {
+            if let Finding::Withdrawal(_) = f {
+                // The engine withdraws a flash an operator already withdrew: said once is enough.
+                let a = g.sequencer.peek_withdrawn(instrument, f);
+                if a.is_some_and(|id| g.withdrawn.contains(id.as_str())) {
+                    g.sequencer.forget(instrument, f);
+                    continue;
+                }
+            }
+            let a = g.sequencer.assign(instrument, f, issued_gps);
+            let flash = linked_flash(&a)
+                .filter(|id| g.withdrawn.contains(*id))
+                .map(str::to_string);
+            alerts.push(a);
+            if let Some(flash) = flash {
+                // An operator withdrew the flash while its candidate was open: the assessment goes with it.
+                let target = alerts.last().cloned().unwrap_or_default();
+                let reason = format!("withdrawn with its flash {flash}, which an operator withdrew");
+                alerts.push(g.sequencer.withdrawal_of(&target, &reason, issued_gps));
+                tracing::warn!(alert = %target.id, flash = %flash, "assessment withdrawn with its flash");
+            }
+        }
         self.shared.enqueue(&mut g, alerts, stamps, None);
         Ok(())
     }
@@ -292,12 +347,16 @@ impl Desk {
 
     /// An operator's withdrawal of the alert `alert_id`: journalled and published like any alert; returns once
     /// it is on disk. Runs file I/O and waits: call it from a blocking thread.
+    ///
+    /// Withdrawing a flash withdraws its assessment too (now if it was issued, else the moment it is); each
+    /// withdrawal's reason says so. Withdrawing an assessment withdraws it alone, and its reason says the
+    /// flash still stands. Returns the withdrawal of `alert_id` first, then any issued with it.
     pub(crate) fn withdraw(
         &self,
         alert_id: &str,
         reason: &str,
         operator: &str,
-    ) -> Result<Arc<pb::Alert>, WithdrawError> {
+    ) -> Result<Vec<Arc<pb::Alert>>, WithdrawError> {
         let reason = reason.trim();
         if reason.is_empty() {
             return Err(WithdrawError::NoReason);
@@ -313,16 +372,35 @@ impl Desk {
             return Err(WithdrawError::AlreadyWithdrawn(alert_id.to_string()));
         }
         let issued_gps = unix_ns_to_gps_ns(now_unix_ns());
-        let mut a = g.sequencer.operator_withdrawal(alert_id, reason, issued_gps);
-        // The withdrawal names the instrument and carries the trigger of what it withdraws, so a subscriber
-        // filtering by place can match it; the id is stamped again from those.
-        a.instrument = target.instrument.clone();
-        a.trigger = target.trigger.clone();
-        let seq = a.seq;
-        alerts::stamp(&mut a, seq, issued_gps);
-        tracing::warn!(alert = alert_id, withdrawal = %a.id, operator, reason, "operator withdrawal");
-        let mut out = self.issue_and_wait(g, vec![a], Stamps::default())?;
-        out.pop().ok_or(WithdrawError::Desk(DeskError::Stopped))
+        let is_flash = target.kind == pb::AlertKind::Flash as i32;
+        let assessment = if is_flash {
+            g.assessed
+                .get(alert_id)
+                .filter(|a| !g.withdrawn.contains(a.as_str()))
+                .cloned()
+        } else {
+            None
+        };
+        let assessment = match assessment {
+            Some(id) => self.find(&id)?,
+            None => None,
+        };
+        let said = match (&assessment, is_flash, linked_flash(&target)) {
+            (Some(a), _, _) => format!("{reason} (its assessment {} is withdrawn with it)", a.id),
+            (None, true, _) => format!("{reason} (its assessment, when issued, is withdrawn with it)"),
+            (None, false, Some(flash)) => format!(
+                "{reason} (this assessment only: its flash {flash} still stands; withdraw the flash to retract the detection)"
+            ),
+            (None, false, None) => reason.to_string(),
+        };
+        let mut out = vec![g.sequencer.withdrawal_of(&target, &said, issued_gps)];
+        tracing::warn!(alert = alert_id, withdrawal = %out[0].id, operator, reason, "operator withdrawal");
+        if let Some(a) = assessment {
+            let why = format!("{reason} (withdrawn with its flash {alert_id})");
+            out.push(g.sequencer.withdrawal_of(&a, &why, issued_gps));
+            tracing::warn!(alert = %a.id, withdrawal = %out[1].id, operator, flash = alert_id, "operator withdrawal of the flash's assessment");
+        }
+        Ok(self.issue_and_wait(g, out, Stamps::default())?)
     }
 
     /// An operator's TEST alert: journalled and published like any alert, so it reaches every sink; it
@@ -410,6 +488,9 @@ impl Shared {
         for a in &alerts {
             if !a.withdrawn_id.is_empty() {
                 g.withdrawn.insert(a.withdrawn_id.clone());
+            }
+            if let Some(flash) = linked_flash(a) {
+                g.assessed.insert(flash.to_string(), a.id.clone());
             }
         }
         if let Some(last) = alerts.last() {
@@ -513,7 +594,7 @@ impl Shared {
             self.settled.notify_all();
         }
         for a in &done {
-            tracing::info!(instrument = %a.instrument, seq = a.seq, id = %a.id, kind = alerts::kind_name(a.kind), "alert issued");
+            tracing::info!(instrument = %a.instrument, seq = a.seq, id = %a.id, kind = alerts::kind_name(a.kind), verdict = a.assessment.as_ref().map_or("", |x| alerts::verdict_name(x.verdict)), "alert issued");
         }
         for (r, out) in replies {
             let _ = r.send(Ok(out));
@@ -736,6 +817,17 @@ pub(crate) mod tests {
         let wd = desk
             .withdraw(&id, "cosmic-ray shower in the camera", "ops")
             .unwrap();
+        // A flash with no assessment yet: one withdrawal, saying the assessment will follow it.
+        assert_eq!(wd.len(), 1);
+        let wd = wd[0].clone();
+        assert!(
+            wd.reason
+                .contains("its assessment, when issued, is withdrawn with it"),
+            "{}",
+            wd.reason
+        );
+        // Its id carries the withdrawn flash's trigger time, like the flash's own id.
+        assert_eq!(wd.id.rsplit_once('-').unwrap().0, id.rsplit_once('-').unwrap().0);
         assert_eq!(
             (wd.seq, wd.withdrawn_id.as_str(), wd.kind),
             (4, id.as_str(), pb::AlertKind::Withdrawal as i32)

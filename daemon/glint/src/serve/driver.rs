@@ -77,6 +77,8 @@ pub(crate) struct StreamCounters {
     pub(crate) refused_frames: u64,
     /// Frames refused as clock jumps.
     pub(crate) clock_jumps: u64,
+    /// Photons dropped because they lie behind the resume point of a restart (searched before it).
+    pub(crate) behind_resume: u64,
 }
 
 /// One instrument's engine with validation and counters in front of it.
@@ -84,6 +86,8 @@ pub(crate) struct InstrumentDriver {
     engine: Engine,
     reorder_tolerance_ns: i64,
     counters: StreamCounters,
+    /// Photons before this time were searched before a restart: dropped until the engine's watermark passes it.
+    resume_floor: Option<i64>,
 }
 
 impl InstrumentDriver {
@@ -113,6 +117,7 @@ impl InstrumentDriver {
             engine: Engine::new(cfg)?,
             reorder_tolerance_ns,
             counters: StreamCounters::default(),
+            resume_floor: None,
         })
     }
 
@@ -130,6 +135,65 @@ impl InstrumentDriver {
         })
     }
 
+    /// After a restart: photons before `floor_ns` (GPS ns) were searched before it, so they are counted
+    /// ([`StreamCounters::behind_resume`]) and dropped here, never handed to the engine again.
+    pub(crate) fn resume_after(&mut self, floor_ns: i64) {
+        self.resume_floor = Some(floor_ns);
+    }
+
+    /// The resume floor still in force, if any: what a resume point must not fall behind.
+    pub(crate) fn resume_floor(&self) -> Option<i64> {
+        self.resume_floor
+    }
+
+    /// The part of `batch` at or after the resume floor: `None` when the batch is wholly behind it (all its
+    /// photons counted), a filtered copy when it straddles it, the batch itself otherwise.
+    fn past_floor<'b>(
+        &mut self,
+        batch: &'b pb::PhotonBatch,
+    ) -> Option<std::borrow::Cow<'b, pb::PhotonBatch>> {
+        use std::borrow::Cow;
+        let Some(floor) = self.resume_floor else {
+            return Some(Cow::Borrowed(batch));
+        };
+        if self.engine.watermark_ns().is_some_and(|w| w >= floor) {
+            self.resume_floor = None;
+            return Some(Cow::Borrowed(batch));
+        }
+        let behind = batch.time_gps_ns.iter().filter(|&&t| t < floor).count();
+        if behind == 0 {
+            return Some(Cow::Borrowed(batch));
+        }
+        self.counters.behind_resume += behind as u64;
+        if behind == batch.time_gps_ns.len() {
+            return None;
+        }
+        let keep: Vec<bool> = batch.time_gps_ns.iter().map(|&t| t >= floor).collect();
+        fn pick<T: Copy>(col: &[T], keep: &[bool]) -> Vec<T> {
+            // Optional columns may be empty: they stay empty.
+            if col.len() != keep.len() {
+                return col.to_vec();
+            }
+            col.iter()
+                .zip(keep)
+                .filter(|(_, k)| **k)
+                .map(|(v, _)| *v)
+                .collect()
+        }
+        Some(Cow::Owned(pb::PhotonBatch {
+            seq: batch.seq,
+            time_gps_ns: pick(&batch.time_gps_ns, &keep),
+            ra_deg: pick(&batch.ra_deg, &keep),
+            dec_deg: pick(&batch.dec_deg, &keep),
+            zenith_deg: pick(&batch.zenith_deg, &keep),
+            azimuth_deg: pick(&batch.azimuth_deg, &keep),
+            energy_gev: pick(&batch.energy_gev, &keep),
+            psf68_deg: pick(&batch.psf68_deg, &keep),
+            gammaness: pick(&batch.gammaness, &keep),
+            complete_before_gps_ns: batch.complete_before_gps_ns,
+        }))
+    }
+
     /// Validates and takes a photon batch.
     pub(crate) fn on_batch(
         &mut self,
@@ -138,8 +202,11 @@ impl InstrumentDriver {
     ) -> Result<(), Refused> {
         let n = batch.time_gps_ns.len() as u64;
         let checked = Self::check_batch(batch, self.reorder_tolerance_ns).and_then(|()| {
+            let Some(part) = self.past_floor(batch) else {
+                return Ok(());
+            };
             self.engine
-                .push_batch(batch, out)
+                .push_batch(&part, out)
                 .map_err(|e| self.engine_refusal(e, batch.seq))
         });
         match checked {
@@ -162,6 +229,14 @@ impl InstrumentDriver {
         status: &pb::StreamStatus,
         out: &mut dyn FindingSink,
     ) -> Result<(), Refused> {
+        if self
+            .resume_floor
+            .is_some_and(|f| status.now_gps_ns < f && self.engine.watermark_ns().is_none_or(|w| w < f))
+        {
+            // Searched before the restart, its dead time included.
+            self.counters.statuses += 1;
+            return Ok(());
+        }
         let checked = validate::validate_status(status)
             .map_err(|e| Refused {
                 code: e.refusal_code(),
@@ -257,5 +332,51 @@ impl InstrumentDriver {
     /// Restores the engine's persistent state.
     pub(crate) fn load_state(&mut self, blob: &[u8]) -> Result<(), EngineError> {
         self.engine.load_state(blob)
+    }
+}
+
+#[cfg(test)]
+#[allow(clippy::unwrap_used)] // tests may unwrap
+mod tests {
+    use super::*;
+
+    fn batch(seq: u64, times: &[i64]) -> pb::PhotonBatch {
+        let n = times.len();
+        pb::PhotonBatch {
+            seq,
+            time_gps_ns: times.to_vec(),
+            ra_deg: vec![10.0; n],
+            dec_deg: vec![-20.0; n],
+            zenith_deg: vec![20.0; n],
+            azimuth_deg: vec![90.0; n],
+            energy_gev: vec![500.0; n],
+            ..Default::default()
+        }
+    }
+
+    #[test]
+    fn photons_behind_the_resume_floor_are_counted_and_never_reach_the_engine() {
+        let cfg = crate::config::Config::embedded_default().unwrap();
+        let mut d = InstrumentDriver::new(&cfg.instruments[0], false).unwrap();
+        let t0 = 1_400_000_000_000_000_000;
+        d.resume_after(t0 + 1_000);
+        let mut out = Vec::new();
+        // Wholly behind, then straddling, then past the floor.
+        d.on_batch(&batch(1, &[t0, t0 + 10, t0 + 20]), &mut out).unwrap();
+        d.on_batch(&batch(2, &[t0 + 900, t0 + 1_000, t0 + 1_100]), &mut out)
+            .unwrap();
+        d.on_batch(&batch(3, &[t0 + 2_000]), &mut out).unwrap();
+        assert_eq!(d.counters().behind_resume, 4);
+        assert_eq!(d.engine_stats().photons_in, 3);
+        assert_eq!(d.engine_stats().late, 0);
+        // A status frame from before the floor is taken without touching the engine.
+        let status = pb::StreamStatus {
+            seq: 4,
+            now_gps_ns: t0 + 500,
+            ..Default::default()
+        };
+        d.on_status(&status, &mut out).unwrap();
+        assert_eq!(d.counters().statuses, 1);
+        assert!(out.is_empty());
     }
 }

@@ -140,6 +140,12 @@ impl Slot {
         }
     }
 
+    /// After a restart: the highest seq the engine took before it, so the next producer's Welcome says
+    /// where to resume.
+    pub(crate) fn resume_seq(&self, seq: u64) {
+        self.last_seq.store(seq, Ordering::Release);
+    }
+
     fn clock(&self) -> StreamClock {
         *self
             .clock
@@ -453,7 +459,14 @@ async fn authenticate_peer<'a>(
         }
         io = tls::accept(tcp, tls.as_ref()) => match io {
             Ok(io) => io,
-            Err(e) => {
+            Err(tls::AcceptError::PlainOnTls(tcp)) => {
+                // Answered in the plain protocol the client speaks, so it says why instead of failing to read.
+                let mut plain = Framed::new(Box::new(tcp) as tls::BoxIo, IngestServerCodec::new(PRE_AUTH_MAX_FRAME));
+                let r = Refusal::new(pb::RefusalCode::ProtocolViolation, tls::PLAIN_ON_TLS, 0);
+                refuse_unauthenticated(&mut plain, shared, peer, "plain (non-TLS) client on the TLS port", r).await;
+                return None;
+            }
+            Err(tls::AcceptError::Failed(e)) => {
                 shared.gate.refusals.note(peer, "TLS handshake failed", &untrusted(&format!("{e:#}")));
                 return None;
             }

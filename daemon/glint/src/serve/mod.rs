@@ -12,6 +12,7 @@ pub(crate) mod hostprobe;
 pub(crate) mod ingest;
 pub(crate) mod loopback;
 pub(crate) mod notify;
+pub(crate) mod resume;
 #[cfg(test)]
 mod tests;
 
@@ -40,19 +41,49 @@ use crate::serve::driver::InstrumentDriver;
 use crate::sinks::subscribers::{self, Hub};
 use ingest::{EngineMsg, IngestShared, Slot};
 
-/// Runs the daemon until `shutdown` resolves (or a fatal error), then stops in stages.
-pub(crate) async fn run(cfg: Config, shutdown: impl Future<Output = ()>) -> anyhow::Result<()> {
-    let daemon = Daemon::start(cfg).await?;
-    notify::ready(&format!(
+/// Runs the daemon until `shutdown` resolves (or a fatal error), then stops in stages. Each SIGHUP reloads
+/// the configuration from `config_path` (the embedded default when None) and applies what can change
+/// without a restart (see [`Daemon::reload`]).
+pub(crate) async fn run(
+    cfg: Config,
+    config_path: Option<PathBuf>,
+    shutdown: impl Future<Output = ()>,
+) -> anyhow::Result<()> {
+    use tokio::signal::unix::{SignalKind, signal};
+    let mut hangups = signal(SignalKind::hangup()).context("cannot install the SIGHUP handler")?;
+    let mut daemon = Daemon::start(cfg).await?;
+    let status = format!(
         "ingest {}, subscribers {}",
         daemon.ingest_addr, daemon.subscribers_addr
-    ));
+    );
+    notify::ready(&status);
     let pings = CancellationToken::new();
     let fatal = daemon.fatal.clone();
     tokio::spawn(notify::watchdog(pings.clone(), move || !fatal.is_cancelled()));
-    tokio::select! {
-        () = shutdown => {}
-        () = daemon.fatal.cancelled() => tracing::error!("stopping after a fatal error"),
+    tokio::pin!(shutdown);
+    loop {
+        tokio::select! {
+            () = &mut shutdown => break,
+            () = daemon.fatal.cancelled() => {
+                tracing::error!("stopping after a fatal error");
+                break;
+            }
+            _ = hangups.recv() => {
+                notify::reloading();
+                match crate::config::load_config(config_path.as_ref()) {
+                    Ok(new) => {
+                        let notes = daemon.reload(&new);
+                        tracing::info!(
+                            config = %config_path.as_ref().map_or("<embedded default>".into(), |p| p.display().to_string()),
+                            "SIGHUP: configuration reloaded{}",
+                            if notes.is_empty() { "; nothing that can change without a restart changed".to_string() } else { format!(": {}", notes.join("; ")) }
+                        );
+                    }
+                    Err(e) => tracing::error!("SIGHUP: the configuration does not load, the running one stays: {e}"),
+                }
+                notify::ready(&status);
+            }
+        }
     }
     notify::stopping();
     pings.cancel();
@@ -74,6 +105,10 @@ pub(crate) struct Daemon {
     pub(crate) metrics: Arc<Metrics>,
     /// The alert desk.
     pub(crate) desk: Arc<Desk>,
+    /// The subscriber side, whose tokens a reload replaces.
+    hub: Arc<Hub>,
+    /// The email sink, whose recipients a reload replaces.
+    email: Option<crate::sinks::email::EmailSinks>,
     deadline: Duration,
     stop_accept: CancellationToken,
     closing: CancellationToken,
@@ -292,14 +327,42 @@ impl Daemon {
                     tracing::warn!(instrument = %inst.id, file = %sp.display(), "cannot read saved engine state: {e}")
                 }
             }
+            let resume_file = resume::path(&state_dir, &inst.id);
+            let point = match resume::load(&resume_file, &inst.id) {
+                Ok(p) => p,
+                Err(e) => {
+                    tracing::warn!(instrument = %inst.id, "resume point not used, starting afresh: {e}");
+                    None
+                }
+            };
+            // Photons up to the newest trigger already journalled were searched, even if the state saved
+            // after them was lost in a crash.
+            let floor = [
+                point.map(|p| p.watermark_gps_ns),
+                desk.issued_through(&inst.id).map(|t| t.saturating_add(1)),
+            ]
+            .into_iter()
+            .flatten()
+            .max();
+            if let Some(f) = floor {
+                driver.resume_after(f);
+                tracing::info!(
+                    instrument = %inst.id,
+                    resume_after = %crate::timefmt::gps_ns_to_utc(f),
+                    last_seq = point.map_or(0, |p| p.last_seq),
+                    "resuming: photons before this time were searched before the restart and are counted and dropped"
+                );
+            }
             let ns = |s: f64| (s * 1e9).round() as i64;
-            slots.push(Slot::new(
+            let slot = Slot::new(
                 inst.id.clone(),
                 inst.token.clone(),
                 tx,
                 ns(inst.search.reorder_tolerance_s),
                 ns(inst.search.max_clock_jump_s),
-            ));
+            );
+            slot.resume_seq(point.map_or(0, |p| p.last_seq));
+            slots.push(slot);
             let ctx = EngineThread {
                 index,
                 id: inst.id.clone(),
@@ -314,6 +377,10 @@ impl Daemon {
                 rx,
                 watermarks: watermarks.clone(),
                 state_file: sp,
+                resume_file,
+                last_seq: point.map_or(0, |p| p.last_seq),
+                behind_reported: 0,
+                metrics: metrics.clone(),
                 save_every: cfg.daemon.state_save_interval,
                 recorder: recorder(&cfg, inst)?,
                 hello: None,
@@ -357,6 +424,7 @@ impl Daemon {
             )),
             desk: desk.clone(),
             cfg: cfg.subscribers.clone(),
+            tokens: std::sync::RwLock::new(Arc::new(cfg.subscribers.clone())),
             max_frame: cfg.daemon.max_frame_bytes,
             watermarks,
             metrics: metrics.clone(),
@@ -366,6 +434,7 @@ impl Daemon {
         let ingest_tasks = TaskTracker::new();
         let subscriber_tasks = TaskTracker::new();
         let email_tasks = TaskTracker::new();
+        let mut email_sinks = None;
         if let Some(email) = &cfg.email {
             // A quarter of the shutdown deadline to mail what the last stages journalled; the rest waits for
             // the next start, the cursors being on disk.
@@ -374,19 +443,21 @@ impl Daemon {
                 .iter()
                 .map(|i| (i.id.clone(), i.response.clone()))
                 .collect();
-            crate::sinks::email::start(
-                email,
-                responses,
-                &state_dir,
-                &crate::sinks::email::Wiring {
-                    desk: &desk,
-                    metrics: &metrics,
-                    closing: &closing,
-                    tracker: &email_tasks,
-                },
-                cfg.daemon.shutdown_deadline / 4,
-            )
-            .context("cannot start the email sink")?;
+            email_sinks = Some(
+                crate::sinks::email::start(
+                    email,
+                    responses,
+                    &state_dir,
+                    &crate::sinks::email::Wiring {
+                        desk: &desk,
+                        metrics: &metrics,
+                        closing: &closing,
+                        tracker: &email_tasks,
+                    },
+                    cfg.daemon.shutdown_deadline / 4,
+                )
+                .context("cannot start the email sink")?,
+            );
         }
         tokio::spawn(ingest::serve(
             ingest_listener,
@@ -398,7 +469,7 @@ impl Daemon {
         tokio::spawn(subscribers::serve(
             sub_listener,
             sub_tls,
-            hub,
+            hub.clone(),
             subscriber_tasks.clone(),
             stop_accept.clone(),
         ));
@@ -424,11 +495,18 @@ impl Daemon {
                 tokio::select! { () = crate::http::serve(l, m) => {}, () = stop.cancelled() => {} }
             });
         }
-        tracing::info!("ingest listening on {ingest_addr}");
-        tracing::info!("subscribers listening on {subscribers_addr}");
-        if let Some(a) = metrics_addr {
-            tracing::info!("metrics listening on {a}");
-        }
+        tracing::info!(
+            version = env!("CARGO_PKG_VERSION"),
+            config = %cfg.source_name,
+            state_dir = %state_dir.display(),
+            ingest = %ingest_addr,
+            subscribers = %subscribers_addr,
+            metrics = %metrics_addr.map(|a| a.to_string()).unwrap_or_else(|| "off".into()),
+            "glint {} started with {}: ingest on {ingest_addr}, subscribers on {subscribers_addr}{}",
+            env!("CARGO_PKG_VERSION"),
+            cfg.source_name,
+            metrics_addr.map(|a| format!(", metrics on {a}")).unwrap_or_default()
+        );
         let ports = serde_json::json!({
             "ingest": ingest_addr.to_string(),
             "subscribers": subscribers_addr.to_string(),
@@ -443,6 +521,8 @@ impl Daemon {
             subscribers_addr,
             metrics,
             desk,
+            hub,
+            email: email_sinks,
             deadline: cfg.daemon.shutdown_deadline,
             stop_accept,
             closing,
@@ -457,6 +537,19 @@ impl Daemon {
             fit_worker: Some(fit_worker),
             _lock: lock,
         })
+    }
+
+    /// Applies a reloaded configuration without dropping a stream: the subscriber and operator tokens (new
+    /// requests are checked against them; connected subscribers stay) and the email recipients (added,
+    /// removed, changed; the others untouched). Everything else needs a restart. Returns what changed.
+    pub(crate) fn reload(&mut self, new: &Config) -> Vec<String> {
+        let mut notes = self.hub.reload_tokens(&new.subscribers);
+        match (self.email.as_mut(), new.email.as_ref()) {
+            (Some(e), cfg) => notes.extend(e.reload(cfg)),
+            (None, Some(_)) => notes.push("an [email] section was added: it applies after a restart".into()),
+            (None, None) => {}
+        }
+        notes
     }
 
     /// Stops in stages within the configured deadline.
@@ -551,6 +644,9 @@ fn recorder(cfg: &Config, inst: &InstrumentConfig) -> anyhow::Result<Option<Rota
     Ok(Some(w))
 }
 
+/// Photons behind the resume point between two log lines about them.
+const BEHIND_LOG_EVERY: u64 = 1_000_000;
+
 /// One instrument's engine, on its own thread.
 struct EngineThread {
     index: usize,
@@ -560,6 +656,12 @@ struct EngineThread {
     rx: async_channel::Receiver<EngineMsg>,
     watermarks: Arc<Watermarks>,
     state_file: PathBuf,
+    /// Where the resume point is kept, and the highest frame seq taken (kept in it).
+    resume_file: PathBuf,
+    last_seq: u64,
+    /// Photons behind the resume point already counted in the metrics.
+    behind_reported: u64,
+    metrics: Arc<Metrics>,
     save_every: Duration,
     recorder: Option<RotatingWriter>,
     /// The producer's Hello, until the first frame after it is recorded.
@@ -585,6 +687,7 @@ impl EngineThread {
                     continue;
                 }
                 EngineMsg::Batch(b, received) => {
+                    self.last_seq = self.last_seq.max(b.seq);
                     self.issuer.note_batch(&b.time_gps_ns, received);
                     event_ns = event_ns.max(b.time_gps_ns.iter().copied().max().unwrap_or(0));
                     let mut step = self.issuer.step(received);
@@ -597,6 +700,7 @@ impl EngineThread {
                     self.record(pb::producer_frame::Body::Batch(b), event_ns);
                 }
                 EngineMsg::Status(s, received) => {
+                    self.last_seq = self.last_seq.max(s.seq);
                     event_ns = event_ns.max(s.now_gps_ns);
                     let mut step = self.issuer.step(received);
                     let taken = self.driver.on_status(&s, &mut step);
@@ -613,8 +717,12 @@ impl EngineThread {
                 self.watermarks.set(self.index, w);
             }
             self.issuer.after_step(watermark);
+            self.count_behind_resume();
+            // No save after each alert: that would put an fsync on the engine thread behind every flash, and
+            // the journal already holds the floor an alert sets (the newest trigger issued, see `start`).
             if last_save.elapsed() >= self.save_every {
                 self.save();
+                self.save_resume();
                 last_save = Instant::now();
             }
         }
@@ -622,11 +730,14 @@ impl EngineThread {
         self.driver.finish(&mut step);
         step.end();
         self.save();
+        self.save_resume();
+        self.count_behind_resume();
         let st = self.driver.engine_stats();
         tracing::info!(
             instrument = %self.id,
             photons = st.photons_in,
             late = st.late,
+            behind_resume = self.driver.counters().behind_resume,
             stream_breaks = st.stream_breaks,
             seq_gaps = st.seq_gaps,
             dead_s = st.dead_ns as f64 / 1e9,
@@ -648,6 +759,47 @@ impl EngineThread {
                 tracing::warn!(instrument = %self.id, file = %self.state_file.display(), "cannot save engine state: {e}")
             }
         }
+    }
+
+    /// Keeps the resume point: the engine's watermark (never behind a floor still in force) and the highest
+    /// seq taken. Nothing is written before the first photon of a first start.
+    fn save_resume(&self) {
+        let watermark = [self.driver.watermark_ns(), self.driver.resume_floor()]
+            .into_iter()
+            .flatten()
+            .max();
+        let Some(watermark_gps_ns) = watermark else {
+            return;
+        };
+        let point = resume::ResumePoint {
+            watermark_gps_ns,
+            last_seq: self.last_seq,
+        };
+        if let Err(e) = resume::save(&self.resume_file, &self.id, point) {
+            tracing::warn!(instrument = %self.id, "cannot keep the resume point: {e}");
+        }
+    }
+
+    /// Moves newly dropped photons behind the resume point to the metrics; logs the first drop and then at
+    /// most one line per [`BEHIND_LOG_EVERY`] photons, so a whole recording fed again gives a few lines.
+    fn count_behind_resume(&mut self) {
+        let behind = self.driver.counters().behind_resume;
+        let new = behind - self.behind_reported;
+        if new == 0 {
+            return;
+        }
+        self.metrics
+            .photons_behind_resume
+            .fetch_add(new, Ordering::Relaxed);
+        if self.behind_reported == 0 || behind / BEHIND_LOG_EVERY != self.behind_reported / BEHIND_LOG_EVERY {
+            tracing::warn!(
+                instrument = %self.id,
+                photons = behind,
+                resume_after = %self.driver.resume_floor().map(crate::timefmt::gps_ns_to_utc).unwrap_or_default(),
+                "photons behind the resume point dropped: they were searched before the restart"
+            );
+        }
+        self.behind_reported = behind;
     }
 
     fn record(&mut self, body: pb::producer_frame::Body, event_ns: i64) {

@@ -13,6 +13,14 @@ pub(crate) fn ready(status: &str) {
     send(&[NotifyState::Ready, NotifyState::Status(status)]);
 }
 
+/// Tells the service manager a configuration reload has begun (READY follows when it is done).
+pub(crate) fn reloading() {
+    send(&[
+        NotifyState::Reloading,
+        NotifyState::Status("reloading the configuration"),
+    ]);
+}
+
 /// Tells the service manager the staged shutdown has begun.
 pub(crate) fn stopping() {
     send(&[NotifyState::Stopping, NotifyState::Status("stopping")]);

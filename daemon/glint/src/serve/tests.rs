@@ -209,6 +209,7 @@ async fn feed_rate(daemon: &Daemon, tmp: &std::path::Path) -> f64 {
         producer: "rate".into(),
         tls: None,
         max_frame: 64 << 20,
+        resume: true,
     };
     let fed = crate::client::feed::feed(
         sim.map(Ok::<_, anyhow::Error>),

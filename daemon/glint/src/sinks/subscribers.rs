@@ -50,8 +50,11 @@ pub(crate) struct Hub {
     pub(crate) gate: Arc<Gate>,
     /// Source of alerts.
     pub(crate) desk: Arc<Desk>,
-    /// Tokens, heartbeat, timeouts, limits.
+    /// Tokens, heartbeat, timeouts, limits, as at start.
     pub(crate) cfg: SubscribersConfig,
+    /// The tokens in force: those of `cfg` until a reload (SIGHUP) replaces them. Requests are checked
+    /// against this; connections already accepted are not asked again.
+    pub(crate) tokens: std::sync::RwLock<Arc<SubscribersConfig>>,
     /// Frame size limit.
     pub(crate) max_frame: usize,
     /// Engine event times for heartbeats.
@@ -61,6 +64,45 @@ pub(crate) struct Hub {
     /// Cancelled when the daemon says goodbye: each subscriber sends what is left, a closing heartbeat, and
     /// ends.
     pub(crate) closing: CancellationToken,
+}
+
+impl Hub {
+    /// The subscriber settings in force (tokens as last reloaded).
+    pub(crate) fn current(&self) -> Arc<SubscribersConfig> {
+        self.tokens
+            .read()
+            .unwrap_or_else(std::sync::PoisonError::into_inner)
+            .clone()
+    }
+
+    /// Replaces the subscriber and operator tokens (a reload); returns what changed, counts only (tokens
+    /// are secrets).
+    pub(crate) fn reload_tokens(&self, new: &SubscribersConfig) -> Vec<String> {
+        let mut live = self
+            .tokens
+            .write()
+            .unwrap_or_else(std::sync::PoisonError::into_inner);
+        let mut notes = Vec::new();
+        let same = |a: &[crate::config::Secret], b: &[crate::config::Secret]| {
+            a.len() == b.len() && a.iter().zip(b).all(|(x, y)| x.expose() == y.expose())
+        };
+        if !same(&live.tokens, &new.tokens) {
+            notes.push(format!(
+                "subscriber tokens reloaded ({} before, {} now)",
+                live.tokens.len(),
+                new.tokens.len()
+            ));
+        }
+        if live.operator_token.as_ref().map(|t| t.expose()) != new.operator_token.as_ref().map(|t| t.expose())
+        {
+            notes.push("operator token reloaded".to_string());
+        }
+        let mut next = (**live).clone();
+        next.tokens = new.tokens.clone();
+        next.operator_token = new.operator_token.clone();
+        *live = Arc::new(next);
+        notes
+    }
 }
 
 /// Accepts subscribers until `stop` is cancelled; every connection task is spawned on `tracker`. Until its
@@ -158,7 +200,14 @@ async fn first_request(
         }
         io = tls::accept(tcp, tls.as_ref()) => match io {
             Ok(io) => io,
-            Err(e) => {
+            Err(tls::AcceptError::PlainOnTls(tcp)) => {
+                // Answered in the plain protocol the client speaks, so it says why instead of failing to read.
+                let mut plain = Framed::new(Box::new(tcp) as tls::BoxIo, SubscriberServerCodec::new(PRE_AUTH_MAX_FRAME));
+                let r = Refusal::new(pb::RefusalCode::ProtocolViolation, tls::PLAIN_ON_TLS, 0);
+                refuse_unauthenticated(&mut plain, peer, hub, "plain (non-TLS) client on the TLS port", r).await;
+                return None;
+            }
+            Err(tls::AcceptError::Failed(e)) => {
                 hub.gate.refusals.note(peer, "TLS handshake failed", &untrusted(&format!("{e:#}")));
                 return None;
             }
@@ -325,7 +374,7 @@ async fn handle(
     hub: &Hub,
 ) -> anyhow::Result<()> {
     let last = hub.desk.last_seq();
-    let req = match check_request(req, &hub.cfg, last) {
+    let req = match check_request(req, &hub.current(), last) {
         Ok(r) => r,
         Err(r) => {
             let reason = if r.code == pb::RefusalCode::BadToken {
@@ -365,6 +414,8 @@ async fn test_alert(mut framed: Conn, t: pb::TestAlertRequest, hub: &Hub) -> any
                 body: Some(subscriber_frame::Body::Alert((*alert).clone())),
             };
             tokio::time::timeout(REQUEST_TIMEOUT, framed.send(frame)).await??;
+            // Closing says that was all (the operator's client reads until then).
+            let _ = tokio::time::timeout(REQUEST_TIMEOUT, framed.close()).await;
             Ok(())
         }
         Err(e) => {
@@ -379,11 +430,16 @@ async fn withdraw(mut framed: Conn, w: pb::WithdrawRequest, hub: &Hub) -> anyhow
     let (id, reason, operator) = (w.alert_id.clone(), w.reason.clone(), w.operator.clone());
     let result = tokio::task::spawn_blocking(move || desk.withdraw(&id, &reason, &operator)).await?;
     match result {
-        Ok(alert) => {
-            let frame = pb::SubscriberFrame {
-                body: Some(subscriber_frame::Body::Alert((*alert).clone())),
-            };
-            tokio::time::timeout(REQUEST_TIMEOUT, framed.send(frame)).await??;
+        Ok(alerts) => {
+            // The withdrawal asked for first, then those issued with it (a flash's assessment); then the
+            // connection closes, which tells the operator's client that was all.
+            for alert in alerts {
+                let frame = pb::SubscriberFrame {
+                    body: Some(subscriber_frame::Body::Alert((*alert).clone())),
+                };
+                tokio::time::timeout(REQUEST_TIMEOUT, framed.send(frame)).await??;
+            }
+            let _ = tokio::time::timeout(REQUEST_TIMEOUT, framed.close()).await;
             Ok(())
         }
         Err(e) => {

@@ -143,6 +143,38 @@ pub(crate) struct Wiring<'a> {
     pub(crate) tracker: &'a TaskTracker,
 }
 
+/// The running email sink: one task per recipient, each with its own stop token (a child of `closing`), so
+/// a configuration reload can add and remove recipients without touching the others.
+pub(crate) struct EmailSinks {
+    mailer: Arc<Mailer>,
+    /// The relay settings the mailer was built from; a reload that changes them needs a restart.
+    relay: String,
+    dir: PathBuf,
+    desk: Arc<Desk>,
+    metrics: Arc<Metrics>,
+    closing: CancellationToken,
+    tracker: TaskTracker,
+    grace: Duration,
+    /// Running recipients by address: their settings and their stop token.
+    running: BTreeMap<String, (EmailRecipient, CancellationToken, tokio::task::JoinHandle<()>)>,
+}
+
+/// The relay side of `[email]`, for telling whether a reload changed it; compared only, never printed (it
+/// holds the password).
+fn relay_key(cfg: &EmailConfig) -> String {
+    format!(
+        "{}:{} from {} tls {:?} ca {:?} auth {:?} timeout {:?} retry {:?}",
+        cfg.relay_host,
+        cfg.relay_port,
+        cfg.from,
+        cfg.tls,
+        cfg.tls_ca_file,
+        cfg.auth.as_ref().map(|(u, p)| (u, p.expose())),
+        cfg.timeout,
+        cfg.retry_max
+    )
+}
+
 /// Starts one task per recipient on `tracker`. Each resumes from its cursor in `state_dir/email/`; a
 /// recipient seen for the first time starts at the newest alert (the journal's history is not mailed).
 /// At shutdown (`closing`) each gets `grace` to send what was journalled, then stops where it is.
@@ -152,7 +184,7 @@ pub(crate) fn start(
     state_dir: &Path,
     wiring: &Wiring<'_>,
     grace: Duration,
-) -> anyhow::Result<()> {
+) -> anyhow::Result<EmailSinks> {
     let Wiring {
         desk,
         metrics,
@@ -167,53 +199,158 @@ pub(crate) fn start(
         retry_max: cfg.retry_max,
         responses,
     });
+    let mut sinks = EmailSinks {
+        mailer,
+        relay: relay_key(cfg),
+        dir,
+        desk: desk.clone(),
+        metrics: metrics.clone(),
+        closing: closing.clone(),
+        tracker: tracker.clone(),
+        grace,
+        running: BTreeMap::new(),
+    };
     for r in &cfg.recipients {
-        let path = state_file(&dir, &r.address);
-        let saved = match std::fs::read(&path) {
-            Ok(bytes) => serde_json::from_slice::<Saved>(&bytes)
-                .with_context(|| format!("email cursor {} is not readable", path.display()))?,
-            Err(e) if e.kind() == std::io::ErrorKind::NotFound => {
-                let s = Saved {
-                    after_seq: desk.last_seq(),
-                    storm: Storm::default(),
-                };
-                let bytes = serde_json::to_vec(&s)?;
-                write_durable(&path, &bytes).with_context(|| format!("cannot write {}", path.display()))?;
-                s
-            }
-            Err(e) => return Err(e).with_context(|| format!("cannot read {}", path.display())),
-        };
-        tracing::info!(recipient = %r.address.email, after_seq = saved.after_seq, held = saved.storm.held.len(), "email recipient");
-        let mut sink = RecipientSink {
-            name: r.address.email.to_string(),
-            r: r.clone(),
-            mailer: mailer.clone(),
-            saved,
-            path,
-            metrics: metrics.clone(),
-            grace,
-        };
-        let desk = desk.clone();
-        let closing = closing.clone();
-        let span = tracing::info_span!("email", recipient = %sink.name);
-        tracker.spawn(
+        sinks.start_recipient(r.clone(), None)?;
+    }
+    Ok(sinks)
+}
+
+impl EmailSinks {
+    /// Starts one recipient's task; `after` is the task of the same address being replaced, which must
+    /// have stopped before the new one reads the cursor they share.
+    fn start_recipient(
+        &mut self,
+        r: EmailRecipient,
+        after: Option<tokio::task::JoinHandle<()>>,
+    ) -> anyhow::Result<()> {
+        let path = state_file(&self.dir, &r.address);
+        let key = r.address.email.to_string();
+        let stop = self.closing.child_token();
+        let (desk, metrics, mailer, grace) = (
+            self.desk.clone(),
+            self.metrics.clone(),
+            self.mailer.clone(),
+            self.grace,
+        );
+        let settings = r.clone();
+        let task_stop = stop.clone();
+        let span = tracing::info_span!("email", recipient = %key);
+        let handle = self.tracker.spawn(
             async move {
+                if let Some(previous) = after {
+                    let _ = previous.await;
+                }
+                let saved = match load_cursor(&path, &desk) {
+                    Ok(s) => s,
+                    Err(e) => {
+                        tracing::error!("email recipient not started: {e:#}");
+                        return;
+                    }
+                };
+                tracing::info!(
+                    after_seq = saved.after_seq,
+                    held = saved.storm.held.len(),
+                    "email recipient"
+                );
+                let mut sink = RecipientSink {
+                    name: r.address.email.to_string(),
+                    r,
+                    mailer,
+                    saved,
+                    path,
+                    metrics,
+                    grace,
+                };
                 loop {
                     let mut cursor = sink.saved.after_seq;
-                    match drive(&mut sink, &desk, &mut cursor, &closing).await {
+                    match drive(&mut sink, &desk, &mut cursor, &task_stop).await {
                         Ok(()) => return,
                         Err(e) => tracing::error!("email delivery stopped: {e:#}; starting again"),
                     }
                     tokio::select! {
                         () = tokio::time::sleep(RESTART_AFTER) => {}
-                        () = closing.cancelled() => return,
+                        () = task_stop.cancelled() => return,
                     }
                 }
             }
             .instrument(span),
         );
+        self.running.insert(key, (settings, stop, handle));
+        Ok(())
     }
-    Ok(())
+
+    /// Applies a reloaded `[email]` (None: the section was removed): recipients added are started,
+    /// recipients removed are stopped (after sending what was journalled, within the shutdown grace; their
+    /// cursors stay on disk), recipients whose settings changed restart from their cursors; the others run
+    /// on untouched. Relay settings are not reloaded (a restart applies them): said in the returned notes.
+    pub(crate) fn reload(&mut self, cfg: Option<&EmailConfig>) -> Vec<String> {
+        let mut notes = Vec::new();
+        let wanted: BTreeMap<String, EmailRecipient> = cfg
+            .map(|c| {
+                c.recipients
+                    .iter()
+                    .map(|r| (r.address.email.to_string(), r.clone()))
+                    .collect()
+            })
+            .unwrap_or_default();
+        if let Some(c) = cfg {
+            if relay_key(c) != self.relay {
+                notes.push("email relay settings changed: they apply after a restart".to_string());
+            }
+        }
+        let gone: Vec<String> = self
+            .running
+            .keys()
+            .filter(|k| !wanted.contains_key(*k))
+            .cloned()
+            .collect();
+        for k in gone {
+            if let Some((_, stop, _)) = self.running.remove(&k) {
+                stop.cancel();
+                notes.push(format!("email recipient {k} removed"));
+            }
+        }
+        for (k, r) in wanted {
+            let previous = match self.running.get(&k) {
+                Some((old, _, _)) if recipient_key(old) == recipient_key(&r) => continue,
+                Some(_) => self.running.remove(&k).map(|(_, stop, handle)| {
+                    stop.cancel();
+                    handle
+                }),
+                None => None,
+            };
+            let what = if previous.is_some() { "changed" } else { "added" };
+            match self.start_recipient(r, previous) {
+                Ok(()) => notes.push(format!("email recipient {k} {what}")),
+                Err(e) => notes.push(format!("email recipient {k} not started: {e:#}")),
+            }
+        }
+        notes
+    }
+}
+
+/// A recipient's settings, for telling whether a reload changed them.
+fn recipient_key(r: &EmailRecipient) -> String {
+    format!("{r:?}")
+}
+
+/// A recipient's cursor, or a new one at the newest alert for a recipient seen for the first time.
+fn load_cursor(path: &Path, desk: &Desk) -> anyhow::Result<Saved> {
+    match std::fs::read(path) {
+        Ok(bytes) => serde_json::from_slice::<Saved>(&bytes)
+            .with_context(|| format!("email cursor {} is not readable", path.display())),
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => {
+            let s = Saved {
+                after_seq: desk.last_seq(),
+                storm: Storm::default(),
+            };
+            let bytes = serde_json::to_vec(&s)?;
+            write_durable(path, &bytes).with_context(|| format!("cannot write {}", path.display()))?;
+            Ok(s)
+        }
+        Err(e) => Err(e).with_context(|| format!("cannot read {}", path.display())),
+    }
 }
 
 /// What became of one message.
