@@ -150,7 +150,9 @@ pub(crate) fn extension_sigma(
 /// Builds the assessment and, for an instrumental verdict, the withdrawal.
 ///
 /// Verdict rules, in order: `instrumental` if the best trigger's flash carries an instrumental sign (all-sky
-/// jump, identical timestamps, spread wider than the PSF; set when the flash was decided); else
+/// jump, identical timestamps, spread wider than the PSF; set when the flash was decided), or, when it
+/// carries none, the same signs measured over its window run as long again past its end
+/// (`signs_after_flash`: a glitch that crossed before all its photons had arrived); else
 /// `undecided` if dead time covers more than `max_dead_fraction` of the post-flash window or the input
 /// ended first; else `persistent` if the post- or pre-flash excess passes its significance or the flash's
 /// own light curve decays (`decaying_shape`); else `isolated`.
@@ -259,9 +261,17 @@ pub(crate) fn assess(inp: &AssessInput<'_>) -> (Assessment, Option<Withdrawal>) 
         }
     };
 
-    // Instrumental signs, from the best trigger's flash.
-    let instrumental: Vec<String> = c.best.flags.clone();
+    // Instrumental signs, from the best trigger's flash; when it carried none, from the same signs measured
+    // again once the window had run as long again (a glitch that crossed before all its photons arrived).
+    let late = c
+        .late_signs
+        .as_ref()
+        .filter(|l| c.best.flags.is_empty() && l.best_end_ns == c.best.end_ns && !l.flags.is_empty());
+    let instrumental: Vec<String> = late.map_or_else(|| c.best.flags.clone(), |l| l.flags.clone());
     flags.extend(instrumental.iter().cloned());
+    if late.is_some() {
+        flags.push("signs_after_flash".into());
+    }
     let spread = spread_ratio(&c.best, inp.response);
 
     let window_ns = inp.close.saturating_sub(post_from);
@@ -326,10 +336,10 @@ pub(crate) fn assess(inp: &AssessInput<'_>) -> (Assessment, Option<Withdrawal>) 
         flags,
         all_sky_counts: c.best_all_sky,
         all_sky_expected: c.best_all_sky_expected,
-        all_sky_sigma: c.best.all_sky_sigma,
-        identical_time_fraction: c.best.identical_time_fraction,
+        all_sky_sigma: late.map_or(c.best.all_sky_sigma, |l| l.all_sky_sigma),
+        identical_time_fraction: late.map_or(c.best.identical_time_fraction, |l| l.identical_time_fraction),
         spread_ratio: spread,
-        spread_sigma: c.best.spread_sigma,
+        spread_sigma: late.map_or(c.best.spread_sigma, |l| l.spread_sigma),
         shape_log_ratio: shape.map_or(0.0, |s| s.log_ratio),
         shape_template_p: shape.map_or(1.0, |s| s.template_p),
         shape_decay_index: shape.map_or(0.0, |s| s.decay_index),

@@ -45,4 +45,20 @@ pub(crate) struct Candidate {
     pub(crate) photons: Vec<CandPhoton>,
     pub(crate) capped: bool,
     pub(crate) late_crossings: u64,
+    /// The best flash's instrumental signs measured again once its window had run as long again past its
+    /// end (None until then, or after the best flash changed).
+    pub(crate) late_signs: Option<LateSigns>,
+}
+
+/// Instrumental signs of the best flash re-measured over (start, end + its timescale]: a glitch that crossed
+/// before all its photons had arrived shows its spread only there. The flash went out at once without them;
+/// the assessment reads them.
+#[derive(Debug, Clone)]
+pub(crate) struct LateSigns {
+    /// End of the best flash's window they were measured for (a later best flash needs its own).
+    pub(crate) best_end_ns: i64,
+    pub(crate) flags: Vec<String>,
+    pub(crate) all_sky_sigma: f64,
+    pub(crate) identical_time_fraction: f64,
+    pub(crate) spread_sigma: f64,
 }

@@ -13,7 +13,7 @@ use glint_wire::pb::{PhotonBatch, StreamStatus};
 
 use crate::assess::{self, AssessInput};
 use crate::background::{AcceptanceMap, AllSky, N_BINS};
-use crate::candidate::{CandPhoton, Candidate};
+use crate::candidate::{CandPhoton, Candidate, LateSigns};
 use crate::config::EngineConfig;
 use crate::dead::DeadTime;
 use crate::error::EngineError;
@@ -962,6 +962,7 @@ impl Engine {
             photons,
             capped,
             late_crossings: 0,
+            late_signs: None,
         });
     }
 
@@ -1174,11 +1175,43 @@ impl Engine {
         c.t_last.saturating_add(self.persistence_ns(c))
     }
 
+    /// Re-measures the instrumental signs of each open candidate's best flash once photons up to its window's
+    /// end plus its timescale are released (before `t`): a cluster that crossed early shows its full spread
+    /// there. The flash has long gone out; the assessment carries what this finds (`late_instrumental`). The
+    /// sky index still holds the photons: the longest timescale twice is within its retention.
+    fn late_signs_due(&mut self, t: i64) {
+        for i in 0..self.cands.len() {
+            let c = &self.cands[i];
+            let len = c.best.end_ns.saturating_sub(c.best.start_ns);
+            let until = c.best.end_ns.saturating_add(len);
+            let done = c
+                .late_signs
+                .as_ref()
+                .is_some_and(|l| l.best_end_ns == c.best.end_ns);
+            if done || until >= t {
+                continue;
+            }
+            let mut f = c.best.clone();
+            f.end_ns = until;
+            let bin = Some(c.bin0);
+            self.flash_signs(&mut f, bin);
+            let best_end_ns = self.cands[i].best.end_ns;
+            self.cands[i].late_signs = Some(LateSigns {
+                best_end_ns,
+                flags: f.flags,
+                all_sky_sigma: f.all_sky_sigma,
+                identical_time_fraction: f.identical_time_fraction,
+                spread_sigma: f.spread_sigma,
+            });
+        }
+    }
+
     /// Assesses every candidate whose persistence window closed before `t` (all its photons are released).
     fn assess_due(&mut self, t: i64, out: &mut dyn FindingSink) {
         if self.cands.is_empty() {
             return;
         }
+        self.late_signs_due(t);
         let mut i = 0;
         while i < self.cands.len() {
             let close = self.close_of(&self.cands[i]);

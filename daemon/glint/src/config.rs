@@ -1745,7 +1745,7 @@ impl Reader {
         let max_per_window = self.nonzero(&mut s, "max_per_window", 10).get();
         let window = self.seconds(&mut s, "window_s", 3600.0);
         let quiet_text: String = self.get(&mut s, "quiet_hours_utc", String::new());
-        let quiet_sigma: f64 = self.get(&mut s, "quiet_min_sigma", 7.0);
+        let quiet_sigma: f64 = self.get(&mut s, "quiet_min_sigma", 5.0);
         let quiet_sigma = self.in_range(&s, "quiet_min_sigma", quiet_sigma, 0.0, 1e6);
         let quiet = if quiet_text.is_empty() {
             None
@@ -1854,7 +1854,7 @@ impl Reader {
             persistence_timescale_factor: num(self, "persistence_timescale_factor", 10.0, 1.0, 1000.0),
             pre_window_s: num(self, "pre_window_s", 120.0, 0.0, 3600.0),
             post_sigma_max: num(self, "post_sigma_max", 3.0, 0.0, 100.0),
-            pre_sigma_max: num(self, "pre_sigma_max", 3.0, 0.0, 100.0),
+            pre_sigma_max: num(self, "pre_sigma_max", 2.5, 0.0, 100.0),
             all_sky_sigma_max: num(self, "all_sky_sigma_max", 5.0, 0.0, 100.0),
             identical_fraction_max: num(self, "identical_fraction_max", 0.5, 0.0, 1.0),
             spread_ratio_max: num(self, "spread_ratio_max", 2.5, 1.0, 100.0),
@@ -2204,7 +2204,7 @@ mod tests {
         assert_eq!(r.address.email.to_string(), "oncall@example.org");
         assert_eq!((r.max_per_window, r.window), (10, Duration::from_secs(3600)));
         let q = r.quiet.unwrap();
-        assert_eq!((q.start_min, q.end_min, q.min_sigma), (22 * 60, 6 * 60, 7.0));
+        assert_eq!((q.start_min, q.end_min, q.min_sigma), (22 * 60, 6 * 60, 5.0));
         assert!(q.contains(23 * 60) && q.contains(0) && !q.contains(6 * 60) && !q.contains(12 * 60));
     }
 

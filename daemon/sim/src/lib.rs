@@ -13,12 +13,14 @@
 
 pub mod draw;
 pub mod scenario;
+pub mod scramble;
 pub mod simulator;
 pub mod sky;
 
 use std::path::PathBuf;
 
 pub use scenario::{Problem, Scenario, Source, load_scenario, parse_scenario};
+pub use scramble::scramble_times;
 pub use simulator::{SimStats, Simulator, TimescaleCount, TruthRecord};
 
 /// The ladder of search timescales, s, for which truth records count each source's photons.

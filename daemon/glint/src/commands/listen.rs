@@ -38,7 +38,7 @@ pub(crate) struct ListenArgs {
     /// Include the trigger's photons (times, positions, energies) in the JSON (--json and --exec).
     #[arg(long)]
     photons: bool,
-    /// Only alerts at least this many sigma (withdrawals always pass).
+    /// Only alerts at least this many sigma post-trials (`sigma_post_trials`; withdrawals always pass).
     #[arg(long, default_value_t = 0.0, value_name = "SIGMA")]
     min_sigma: f64,
     /// Replay journalled alerts after this sequence number first (overrides --state-file).

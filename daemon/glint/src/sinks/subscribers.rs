@@ -458,11 +458,15 @@ pub(crate) struct Filter {
 
 impl Filter {
     /// Kinds filter, then the significance cut (withdrawals always pass it, so a retraction is never missed).
+    /// The cut reads the post-trials significance, the alert's own: the per-seed one (`sigma`) is 7 or more
+    /// for every flash at the design false-alarm rate, so a cut on it would pass background alerts.
     fn wants(&self, a: &pb::Alert) -> bool {
         let kind_ok = self.kinds.is_empty() || self.kinds.contains(&a.kind);
         let sigma_ok = self.min_sigma <= 0.0
             || a.kind == pb::AlertKind::Withdrawal as i32
-            || a.trigger.as_ref().is_some_and(|t| t.sigma >= self.min_sigma);
+            || a.trigger
+                .as_ref()
+                .is_some_and(|t| t.sigma_post_trials >= self.min_sigma);
         kind_ok && sigma_ok
     }
 }
@@ -694,10 +698,13 @@ mod tests {
 
     #[test]
     fn filter_by_kind_and_sigma_lets_withdrawals_through() {
-        let alert = |kind: pb::AlertKind, sigma: f64| pb::Alert {
+        // A flash's per-seed sigma is high whatever its false-alarm rate; the cut must read the post-trials one.
+        let alert = |kind: pb::AlertKind, post: f64| pb::Alert {
             kind: kind as i32,
             trigger: Some(pb::Trigger {
-                sigma,
+                sigma: 9.0,
+                sigma_per_seed: 9.0,
+                sigma_post_trials: post,
                 ..Default::default()
             }),
             ..Default::default()
@@ -708,6 +715,7 @@ mod tests {
         };
         assert!(f.wants(&alert(pb::AlertKind::Flash, 5.0)));
         assert!(!f.wants(&alert(pb::AlertKind::Flash, 4.9)));
+        assert!(!f.wants(&alert(pb::AlertKind::Flash, -0.3)));
         assert!(!f.wants(&alert(pb::AlertKind::Assessment, 9.0)));
         assert!(f.wants(&alert(pb::AlertKind::Withdrawal, 1.0)));
         let all = Filter {

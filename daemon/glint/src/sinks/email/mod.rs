@@ -123,10 +123,11 @@ fn now_s() -> f64 {
     now_unix_ns() as f64 / 1e9
 }
 
-/// Significance used by the filters and quiet hours: the trigger's (a withdrawal carries the withdrawn
-/// alert's); 0 for an alert without one.
+/// Significance used by the filters and quiet hours: the trigger's post-trials significance, the alert's own
+/// (a withdrawal carries the withdrawn alert's); 0 for an alert without one. Not the per-seed `sigma`, which
+/// is 7 or more for every flash whatever its false-alarm rate.
 fn sigma_of(a: &pb::Alert) -> f64 {
-    a.trigger.as_ref().map_or(0.0, |t| t.sigma)
+    a.trigger.as_ref().map_or(0.0, |t| t.sigma_post_trials)
 }
 
 /// What the sink's tasks share with the rest of the daemon.
