@@ -32,6 +32,8 @@ enum Command {
     Simulate(crate::commands::simulate::SimulateArgs),
     /// Replay recordings through the engine as fast as the CPU allows and print the alerts as JSON lines.
     Replay(crate::commands::replay::ReplayArgs),
+    /// Write a FITS event list (an EVENTS table) as a recording; replay also reads such files directly.
+    Import(crate::commands::import::ImportArgs),
     /// Print what a configured instrument can see: background, critical counts, reach, upper limits.
     Reach(crate::commands::reach::ReachArgs),
     /// Run the daemon: ingest, engines, alert desk, subscribers (until SIGTERM or SIGINT).
@@ -70,6 +72,7 @@ pub(crate) fn dispatch(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::CheckConfig(a) => crate::commands::check_config::run(&a),
         Command::Simulate(a) => crate::commands::simulate::run(&a),
         Command::Replay(a) => crate::commands::replay::run(&a),
+        Command::Import(a) => crate::commands::import::run(&a),
         Command::Reach(a) => crate::commands::reach::run(&a),
         Command::Run(a) => crate::commands::run::run_command(a),
         Command::Demo(a) => crate::commands::demo::run(a),
