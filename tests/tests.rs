@@ -7,6 +7,7 @@ mod bus;
 mod cli;
 mod email;
 mod hostile;
+mod inputs;
 mod journal;
 mod layout;
 mod listen_exec;
