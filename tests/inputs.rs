@@ -26,7 +26,12 @@ fn summary(o: &Output) -> Value {
 
 #[test]
 fn replay_reads_fits_event_lists_and_refuses_broken_ones_by_name() {
-    for f in ["events_tt.fits", "events_tai.fits", "events_utc.fits", "events_gps.fits"] {
+    for f in [
+        "events_tt.fits",
+        "events_tai.fits",
+        "events_utc.fits",
+        "events_gps.fits",
+    ] {
         let s = summary(&glint(&["replay", "--quiet"], &[&fits(f)]));
         assert_eq!(s["photons"], 40, "{f}: {s}");
         assert_eq!(s["refused_photons"], 0, "{f}: {s}");
@@ -47,12 +52,19 @@ fn replay_reads_fits_event_lists_and_refuses_broken_ones_by_name() {
 #[test]
 fn import_names_the_recording_by_its_first_photon_and_replays_like_the_fits_file() {
     let tmp = tempfile::tempdir().unwrap();
-    let o = glint(&["import", "-o", tmp.path().to_str().unwrap()], &[&fits("events_tt.fits")]);
+    let o = glint(
+        &["import", "-o", tmp.path().to_str().unwrap()],
+        &[&fits("events_tt.fits")],
+    );
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
     // The first photon of events_tt.fits is at GPS 1480118560.087418914 s, 2026-12-01T00:02:22.087 UTC
     // (tests/reference/fits_photons.csv; GPS - UTC = 18 s).
     let rec = tmp.path().join("ventisca-array-20261201T000222.087Z.glrec.zst");
-    assert!(rec.is_file(), "{:?}", std::fs::read_dir(tmp.path()).unwrap().collect::<Vec<_>>());
+    assert!(
+        rec.is_file(),
+        "{:?}",
+        std::fs::read_dir(tmp.path()).unwrap().collect::<Vec<_>>()
+    );
     let a = summary(&glint(&["replay", "--quiet"], &[&rec]));
     let b = summary(&glint(&["replay", "--quiet"], &[&fits("events_tt.fits")]));
     for k in ["photons", "live_seconds", "dead_seconds", "alerts"] {
@@ -77,7 +89,14 @@ fn simulate_into_a_directory_names_the_file_by_its_first_photon() {
     let out = tmp.path().join("recs");
     std::fs::create_dir(&out).unwrap();
     let o = glint(
-        &["simulate", "--quiet", "--scenario", scenario.to_str().unwrap(), "--out", out.to_str().unwrap()],
+        &[
+            "simulate",
+            "--quiet",
+            "--scenario",
+            scenario.to_str().unwrap(),
+            "--out",
+            out.to_str().unwrap(),
+        ],
         &[],
     );
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
@@ -95,7 +114,11 @@ fn simulate_into_a_directory_names_the_file_by_its_first_photon() {
 
 #[test]
 fn overlapping_inputs_are_warned_about_and_counted() {
-    let (tt, tai, gps) = (fits("events_tt.fits"), fits("events_tai.fits"), fits("events_gps.fits"));
+    let (tt, tai, gps) = (
+        fits("events_tt.fits"),
+        fits("events_tai.fits"),
+        fits("events_gps.fits"),
+    );
     // events_tai.fits ends before events_gps.fits starts: no overlap.
     let s = summary(&glint(&["replay", "--quiet"], &[&tai, &gps]));
     assert_eq!(s["overlapping_files"], 0, "{s}");
@@ -117,13 +140,24 @@ fn overlapping_inputs_are_warned_about_and_counted() {
 fn progress_is_a_plain_line_when_stderr_is_not_a_terminal() {
     let rec = repo_root().join("replay-fixtures/quiet/quiet.glrec.zst");
     // Interval 0: a line for every batch, then the closing line.
-    let o = glint(&["replay", "--progress-every", "0", "--alerts-out", "/dev/null"], &[&rec]);
+    let o = glint(
+        &["replay", "--progress-every", "0", "--alerts-out", "/dev/null"],
+        &[&rec],
+    );
     assert!(o.status.success());
     let err = String::from_utf8_lossy(&o.stderr);
-    let lines: Vec<&str> = err.lines().filter(|l| l.starts_with("progress: replay: ")).collect();
+    let lines: Vec<&str> = err
+        .lines()
+        .filter(|l| l.starts_with("progress: replay: "))
+        .collect();
     assert!(lines.len() > 100, "{err}");
     // The estimate comes from the bytes read off disk (the zstd reader takes them in large blocks).
-    assert!(lines.iter().any(|l| l.contains("% done, about") && l.ends_with(" left")), "{err}");
+    assert!(
+        lines
+            .iter()
+            .any(|l| l.contains("% done, about") && l.ends_with(" left")),
+        "{err}"
+    );
     let last = lines.last().unwrap();
     assert!(
         last.starts_with("progress: replay: 5689 photons, 7m59s of event time up to 2026-12-01T02:07:59"),
@@ -133,7 +167,10 @@ fn progress_is_a_plain_line_when_stderr_is_not_a_terminal() {
     assert!(!err.contains('\r'), "no bar drawing off a terminal");
     // The default interval (10 s) on a sub-second run: only the closing line.
     let o = glint(&["replay", "--alerts-out", "/dev/null"], &[&rec]);
-    let n = String::from_utf8_lossy(&o.stderr).lines().filter(|l| l.starts_with("progress:")).count();
+    let n = String::from_utf8_lossy(&o.stderr)
+        .lines()
+        .filter(|l| l.starts_with("progress:"))
+        .count();
     assert_eq!(n, 1);
     // --quiet: none.
     let o = glint(&["replay", "--quiet"], &[&rec]);

@@ -107,7 +107,11 @@ fn there_is_a_fixture_for_every_situation() {
         assert!(names.iter().any(|n| n == want), "no fixture {want} in {names:?}");
         let rec = recording_of(&repo_root().join("replay-fixtures").join(want));
         let size = std::fs::metadata(&rec).unwrap().len();
-        assert!(size < 1_000_000, "{} is {size} bytes; fixtures stay small", rec.display());
+        assert!(
+            size < 1_000_000,
+            "{} is {size} bytes; fixtures stay small",
+            rec.display()
+        );
     }
 }
 

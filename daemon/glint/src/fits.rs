@@ -11,8 +11,8 @@ use fitsrs::card::Value;
 use fitsrs::{DataValue, Fits, HDU};
 use glint_science::instrument::SiteSpec;
 use glint_sim::sky::SkyFrame;
-use glint_wire::recording::{RecordingError, RecordingReader};
 use glint_wire::pb::{Hello, PhotonBatch, ProducerFrame, producer_frame::Body};
+use glint_wire::recording::{RecordingError, RecordingReader};
 use hifitime::{Duration, Epoch, TimeScale};
 
 /// Photons per batch in the frames made from an event list (the simulator's default size).
@@ -220,7 +220,9 @@ impl EventList {
 /// is not read: compressed FITS is left to the tools that write it).
 pub(crate) fn is_fits_path(path: &Path) -> bool {
     let name = path.to_string_lossy().to_ascii_lowercase();
-    [".fits", ".fit", ".fts", ".evt"].iter().any(|s| name.ends_with(s))
+    [".fits", ".fit", ".fts", ".evt"]
+        .iter()
+        .any(|s| name.ends_with(s))
 }
 
 /// A header value as a float (integers widen).
@@ -297,7 +299,7 @@ fn units_to_ns(value: f64, unit_s: f64) -> Option<i128> {
     let whole = value.trunc();
     let frac = value - whole;
     let unit_ns = unit_s * 1e9;
-    if !(whole.abs() < 1e15) {
+    if whole.is_nan() || whole.abs() >= 1e15 {
         return None;
     }
     // unit_ns is an integer for every unit of `seconds_per` except sub-nanosecond ones, which it has none of.
@@ -328,7 +330,9 @@ pub(crate) fn read_event_list(path: &Path) -> Result<EventList, FitsError> {
             HDU::Primary(h) => {
                 // The time reference may sit in the primary header; the table's own keys win.
                 let hdr = h.get_header();
-                for key in ["MJDREFI", "MJDREFF", "MJDREF", "TIMESYS", "TIMEUNIT", "TIMEZERO", "INSTRUME"] {
+                for key in [
+                    "MJDREFI", "MJDREFF", "MJDREF", "TIMESYS", "TIMEUNIT", "TIMEZERO", "INSTRUME",
+                ] {
                     if let Some(v) = hdr.get(key) {
                         primary_keys.push((key.to_string(), v.clone()));
                     }
@@ -360,7 +364,11 @@ pub(crate) fn read_event_list(path: &Path) -> Result<EventList, FitsError> {
                     let tform = text(hdr.get(&format!("TFORM{}", i + 1))).unwrap_or_default();
                     let code = tform.trim_start_matches('1');
                     if !matches!(code, "D" | "E" | "J" | "K" | "I" | "B") {
-                        return Err(FitsError::BadColumnType { path: p(), column, tform });
+                        return Err(FitsError::BadColumnType {
+                            path: p(),
+                            column,
+                            tform,
+                        });
                     }
                     let scaled = num(hdr.get(&format!("TSCAL{}", i + 1))).is_some_and(|s| s != 1.0)
                         || num(hdr.get(&format!("TZERO{}", i + 1))).is_some_and(|z| z != 0.0);
@@ -386,13 +394,18 @@ pub(crate) fn read_event_list(path: &Path) -> Result<EventList, FitsError> {
                     (Some(i), Some(f)) => (i, f),
                     (Some(i), None) => (i, 0.0),
                     _ => {
-                        let m = num(key("MJDREF").as_ref())
-                            .ok_or(FitsError::MissingKey { path: p(), key: "MJDREFI" })?;
+                        let m = num(key("MJDREF").as_ref()).ok_or(FitsError::MissingKey {
+                            path: p(),
+                            key: "MJDREFI",
+                        })?;
                         (m.floor(), m - m.floor())
                     }
                 };
                 if mjd_i.fract() != 0.0 || !mjd_f.is_finite() || !(0.0..100_000.0).contains(&mjd_i) {
-                    return Err(FitsError::MissingKey { path: p(), key: "MJDREFI" });
+                    return Err(FitsError::MissingKey {
+                        path: p(),
+                        key: "MJDREFI",
+                    });
                 }
                 let timeunit = text(key("TIMEUNIT").as_ref()).unwrap_or_default();
                 let col_unit = unit_of(cols[0]);
@@ -437,13 +450,20 @@ pub(crate) fn read_event_list(path: &Path) -> Result<EventList, FitsError> {
                     None => {
                         // A UTC date: its GPS instant needs the leap seconds in force then (hifitime).
                         let day = Epoch::from_mjd_in_time_scale(mjd_i, TimeScale::UTC);
-                        let at = day + Duration::from_total_nanoseconds((mjd_f * NS_PER_DAY as f64).round() as i128);
+                        let at = day
+                            + Duration::from_total_nanoseconds((mjd_f * NS_PER_DAY as f64).round() as i128);
                         at.to_gpst_nanoseconds()
                             .map(i128::from)
-                            .map_err(|_| FitsError::MissingKey { path: p(), key: "MJDREFI" })?
+                            .map_err(|_| FitsError::MissingKey {
+                                path: p(),
+                                key: "MJDREFI",
+                            })?
                     }
                 };
-                let zero_ns = units_to_ns(timezero, unit_s).ok_or(FitsError::MissingKey { path: p(), key: "TIMEZERO" })?;
+                let zero_ns = units_to_ns(timezero, unit_s).ok_or(FitsError::MissingKey {
+                    path: p(),
+                    key: "TIMEZERO",
+                })?;
 
                 let nrows = hdr.get_xtension().get_num_rows();
                 let mut out = EventList {
@@ -457,11 +477,14 @@ pub(crate) fn read_event_list(path: &Path) -> Result<EventList, FitsError> {
                 for (r, row) in data.row_iter().enumerate() {
                     let row_no = r + 1;
                     let get = |i: usize, column: &'static str| -> Result<f64, FitsError> {
-                        let v = row.get(i).and_then(cell).ok_or_else(|| FitsError::BadColumnType {
-                            path: p(),
-                            column,
-                            tform: "?".into(),
-                        })?;
+                        let v = row
+                            .get(i)
+                            .and_then(cell)
+                            .ok_or_else(|| FitsError::BadColumnType {
+                                path: p(),
+                                column,
+                                tform: "?".into(),
+                            })?;
                         if v.is_finite() {
                             Ok(v)
                         } else {
@@ -506,7 +529,10 @@ pub(crate) fn read_event_list(path: &Path) -> Result<EventList, FitsError> {
                         .map(|n| ref_gps_ns + zero_ns + n)
                         .and_then(|n| i64::try_from(n).ok())
                         .filter(|n| *n > 0)
-                        .ok_or(FitsError::TimeOutOfRange { path: p(), row: row_no })?;
+                        .ok_or(FitsError::TimeOutOfRange {
+                            path: p(),
+                            row: row_no,
+                        })?;
                     rows.push((ns, ra, dec, e, altaz));
                 }
                 rows.sort_by_key(|r| r.0);
@@ -529,7 +555,12 @@ pub(crate) fn read_event_list(path: &Path) -> Result<EventList, FitsError> {
 /// The frames a producer would have sent for `events`: a `Hello` naming `instrument`, then batches of
 /// [`BATCH_PHOTONS`] in time order, each promising that nothing earlier than the next batch's first photon
 /// follows. Zenith and azimuth come from the file's ALT/AZ when it has them, else from `site`.
-pub(crate) fn event_list_frames(events: &EventList, instrument: &str, site: &SiteSpec, source: &Path) -> Vec<ProducerFrame> {
+pub(crate) fn event_list_frames(
+    events: &EventList,
+    instrument: &str,
+    site: &SiteSpec,
+    source: &Path,
+) -> Vec<ProducerFrame> {
     let n = events.len();
     let mut frames = Vec::with_capacity(1 + n.div_ceil(BATCH_PHOTONS));
     frames.push(ProducerFrame {
@@ -540,7 +571,10 @@ pub(crate) fn event_list_frames(events: &EventList, instrument: &str, site: &Sit
             producer: format!(
                 "glint {} fits import ({}, TIMESYS {:?})",
                 env!("CARGO_PKG_VERSION"),
-                source.file_name().map(|f| f.to_string_lossy().into_owned()).unwrap_or_default(),
+                source
+                    .file_name()
+                    .map(|f| f.to_string_lossy().into_owned())
+                    .unwrap_or_default(),
                 events.timesys
             ),
         })),
@@ -566,7 +600,8 @@ pub(crate) fn event_list_frames(events: &EventList, instrument: &str, site: &Sit
             b.dec_deg.push(events.dec_deg[i]);
             b.zenith_deg.push(z as f32);
             // f32 rounding can lift 359.99999 to 360.0, which the wire refuses.
-            b.azimuth_deg.push(if (az as f32) >= 360.0 { 0.0 } else { az as f32 });
+            b.azimuth_deg
+                .push(if (az as f32) >= 360.0 { 0.0 } else { az as f32 });
             b.energy_gev.push(events.energy_gev[i] as f32);
         }
         let last = events.time_gps_ns[end - 1];
@@ -758,21 +793,37 @@ mod tests {
         assert_eq!(lists.len(), 4, "one file per time system");
         assert!(checked >= 160, "only {checked} photons checked");
         assert_eq!(lists["events_utc.fits"].timesys, Some(TimeSys::Utc));
-        assert_eq!(lists["events_tai.fits"].instrument.as_deref(), Some("ventisca-array"));
+        assert_eq!(
+            lists["events_tai.fits"].instrument.as_deref(),
+            Some("ventisca-array")
+        );
     }
 
     #[test]
     fn broken_files_get_their_own_error() {
         let read = |name: &str| read_event_list(&reference().join("fits").join(name)).unwrap_err();
         let e = read("bad_timesys.fits");
-        assert!(matches!(&e, FitsError::UnknownTimesys { found, .. } if found == "TDB"), "{e}");
+        assert!(
+            matches!(&e, FitsError::UnknownTimesys { found, .. } if found == "TDB"),
+            "{e}"
+        );
         let e = read("bad_nan.fits");
         assert!(
-            matches!(&e, FitsError::NotFinite { row: 3, column: "ENERGY", .. }),
+            matches!(
+                &e,
+                FitsError::NotFinite {
+                    row: 3,
+                    column: "ENERGY",
+                    ..
+                }
+            ),
             "{e}"
         );
         let e = read("bad_no_energy.fits");
-        assert!(matches!(&e, FitsError::MissingColumn { column: "ENERGY", .. }), "{e}");
+        assert!(
+            matches!(&e, FitsError::MissingColumn { column: "ENERGY", .. }),
+            "{e}"
+        );
         assert!(e.to_string().contains("TIME, RA, DEC"), "{e}");
         let e = read("bad_unit.fits");
         assert!(
@@ -780,7 +831,10 @@ mod tests {
             "{e}"
         );
         let e = read_event_list(&reference().join("fits_photons.csv")).unwrap_err();
-        assert!(matches!(e, FitsError::Parse { .. } | FitsError::NoEvents { .. }), "{e}");
+        assert!(
+            matches!(e, FitsError::Parse { .. } | FitsError::NoEvents { .. }),
+            "{e}"
+        );
     }
 
     #[test]
@@ -795,7 +849,9 @@ mod tests {
         assert!(matches!(&frames[0].body, Some(Body::Hello(h)) if h.instrument == "ventisca-array"));
         let mut n = 0;
         for f in &frames[1..] {
-            let Some(Body::Batch(b)) = &f.body else { panic!("not a batch") };
+            let Some(Body::Batch(b)) = &f.body else {
+                panic!("not a batch")
+            };
             glint_wire::validate::validate_batch(b, 0).unwrap();
             n += b.time_gps_ns.len();
         }

@@ -12,10 +12,10 @@ mod codec;
 mod config;
 mod fits;
 mod logging;
-mod progress;
 mod metrics;
 mod natsbus;
 mod net;
+mod progress;
 mod timefmt;
 mod tls;
 

@@ -97,7 +97,11 @@ impl Progress {
             .last_ns
             .map(|t| format!(" up to {}", crate::timefmt::gps_ns_to_utc(t)))
             .unwrap_or_default();
-        let rate = if wall > 0.0 { self.photons as f64 / wall } else { 0.0 };
+        let rate = if wall > 0.0 {
+            self.photons as f64 / wall
+        } else {
+            0.0
+        };
         let mut s = format!(
             "{}: {} photons, {} of event time{reached}, {:.0} photons/s, {} elapsed",
             self.label,
@@ -110,7 +114,11 @@ impl Progress {
             s.push_str(", done");
         } else if let Some(f) = self.fraction.filter(|f| *f > 0.0) {
             let left = wall * (1.0 - f) / f;
-            s.push_str(&format!(", {:.0}% done, about {} left", f * 100.0, human_seconds(left)));
+            s.push_str(&format!(
+                ", {:.0}% done, about {} left",
+                f * 100.0,
+                human_seconds(left)
+            ));
         }
         s
     }
@@ -123,7 +131,11 @@ impl Progress {
             Mode::Bar => {
                 let width = 24usize;
                 let filled = (self.fraction.unwrap_or(0.0) * width as f64).round() as usize;
-                let bar = format!("[{}{}]", "#".repeat(filled), ".".repeat(width - filled.min(width)));
+                let bar = format!(
+                    "[{}{}]",
+                    "#".repeat(filled),
+                    ".".repeat(width - filled.min(width))
+                );
                 let end = if done { "\n" } else { "" };
                 write!(err, "\r\x1b[2K{bar} {text}{end}")
             }
@@ -160,7 +172,10 @@ mod tests {
         p.update(10, Some(1_480_125_618_000_000_000), Some(0.5));
         p.update(20, Some(1_480_125_678_000_000_000), None);
         let t = p.text(false);
-        assert!(t.starts_with("replay: 20 photons, 1m00s of event time up to 2026-12-01T02:01:00"), "{t}");
+        assert!(
+            t.starts_with("replay: 20 photons, 1m00s of event time up to 2026-12-01T02:01:00"),
+            "{t}"
+        );
         assert!(t.contains("50% done, about"), "{t}");
         assert!(p.text(true).ends_with(", done"));
     }

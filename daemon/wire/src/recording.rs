@@ -953,7 +953,10 @@ mod tests {
             .unwrap()
             .with_time_names(stamp);
         w.write_frame(&batch(3, 5000), 0).unwrap();
-        assert_eq!(w.finish().unwrap().unwrap().file_name().unwrap(), "v-T5000-2.glrec");
+        assert_eq!(
+            w.finish().unwrap().unwrap().file_name().unwrap(),
+            "v-T5000-2.glrec"
+        );
         assert_eq!(read_all(&dir.path().join("v-T5000.glrec")).len(), 2);
     }
 

@@ -53,7 +53,8 @@ pub(crate) fn run(args: &ImportArgs) -> anyhow::Result<ExitCode> {
     }
     let first = first.with_context(|| format!("{}: the EVENTS table has no rows", args.file.display()))?;
     let path = if args.out.is_dir() {
-        args.out.join(crate::timefmt::recording_name(&instrument, first, ".glrec.zst"))
+        args.out
+            .join(crate::timefmt::recording_name(&instrument, first, ".glrec.zst"))
     } else {
         args.out.clone()
     };
@@ -70,8 +71,10 @@ pub(crate) fn run(args: &ImportArgs) -> anyhow::Result<ExitCode> {
 fn write(path: &Path, frames: &[glint_wire::pb::ProducerFrame]) -> anyhow::Result<()> {
     let mut w = RecordingWriter::create(path).with_context(|| format!("creating {}", path.display()))?;
     for f in frames {
-        w.write_frame(f).with_context(|| format!("writing {}", path.display()))?;
+        w.write_frame(f)
+            .with_context(|| format!("writing {}", path.display()))?;
     }
-    w.finish().with_context(|| format!("finishing {}", path.display()))?;
+    w.finish()
+        .with_context(|| format!("finishing {}", path.display()))?;
     Ok(())
 }

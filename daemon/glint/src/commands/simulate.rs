@@ -49,7 +49,8 @@ pub(crate) fn run(args: &SimulateArgs) -> anyhow::Result<ExitCode> {
     // Into a directory: written under a temporary name, renamed once the first photon's time is known.
     let into_dir = args.out.is_dir();
     let out = if into_dir {
-        args.out.join(format!(".{}.partial.glrec.zst", scenario.instrument.id))
+        args.out
+            .join(format!(".{}.partial.glrec.zst", scenario.instrument.id))
     } else {
         args.out.clone()
     };
