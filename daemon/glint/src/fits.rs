@@ -307,6 +307,9 @@ fn units_to_ns(value: f64, unit_s: f64) -> Option<i128> {
     Some(whole_ns + (frac * unit_ns).round() as i128)
 }
 
+/// One event as read: GPS ns, RA, Dec, energy in GeV, and zenith and azimuth when the file gives them.
+type Row = (i64, f64, f64, f64, Option<(f64, f64)>);
+
 /// Reads the EVENTS table of a FITS event list. Times are converted from the file's TIMESYS, MJDREF and
 /// TIMEUNIT (TIMEZERO added) to GPS nanoseconds; energies to GeV from TUNIT; rows with NaN, an infinite
 /// value or an impossible coordinate are errors naming the row.
@@ -472,7 +475,7 @@ pub(crate) fn read_event_list(path: &Path) -> Result<EventList, FitsError> {
                     alt_az_deg: alt_az.map(|_| Vec::with_capacity(nrows)),
                     ..EventList::default()
                 };
-                let mut rows: Vec<(i64, f64, f64, f64, Option<(f64, f64)>)> = Vec::with_capacity(nrows);
+                let mut rows: Vec<Row> = Vec::with_capacity(nrows);
                 let data = fits.get_data(&h);
                 for (r, row) in data.row_iter().enumerate() {
                     let row_no = r + 1;
@@ -643,7 +646,11 @@ pub(crate) struct InputFrames {
 }
 
 enum Frames {
-    Recording(RecordingReader<CountingFile>, std::rc::Rc<std::cell::Cell<u64>>),
+    // Boxed: the reader holds its buffers inline and the enum would be that size for FITS input too.
+    Recording(
+        Box<RecordingReader<CountingFile>>,
+        std::rc::Rc<std::cell::Cell<u64>>,
+    ),
     Fits(std::vec::IntoIter<ProducerFrame>, usize),
 }
 
@@ -668,7 +675,7 @@ impl InputFrames {
             };
             let reader = RecordingReader::new(counting, path, max_frame)?;
             return Ok(Self {
-                frames: Frames::Recording(reader, read),
+                frames: Frames::Recording(Box::new(reader), read),
                 size,
             });
         }
