@@ -31,6 +31,20 @@ fn recording_of(dir: &Path) -> PathBuf {
     recs.remove(0)
 }
 
+/// The summary figures a fixture pins, where it has `expected_summary.json`.
+fn summary_differences(dir: &Path, stdout: &str) -> Vec<String> {
+    let Ok(text) = std::fs::read_to_string(dir.join("expected_summary.json")) else {
+        return Vec::new();
+    };
+    let want: Value = serde_json::from_str(&text).unwrap();
+    let got: Value = serde_json::from_str(stdout.lines().last().unwrap()).unwrap();
+    let mut d = Vec::new();
+    for (k, v) in want.as_object().unwrap() {
+        json_diff(&format!("summary.{k}"), v, &got[k], &mut d);
+    }
+    d
+}
+
 fn replay(rec: &Path, out: &Path) -> String {
     let o = Command::new(glint_bin())
         .arg("replay")
@@ -75,18 +89,45 @@ fn json_diff(path: &str, want: &Value, got: &Value, out: &mut Vec<String>) {
 }
 
 #[test]
+fn there_is_a_fixture_for_every_situation() {
+    let names: Vec<String> = fixtures()
+        .iter()
+        .map(|d| d.file_name().unwrap().to_string_lossy().into_owned())
+        .collect();
+    for want in [
+        "quiet",
+        "evaporation-near",
+        "evaporation-far",
+        "afterglow",
+        "precursor",
+        "glitch",
+        "dead-time",
+        "reconnection",
+    ] {
+        assert!(names.iter().any(|n| n == want), "no fixture {want} in {names:?}");
+        let rec = recording_of(&repo_root().join("replay-fixtures").join(want));
+        let size = std::fs::metadata(&rec).unwrap().len();
+        assert!(
+            size < 1_000_000,
+            "{} is {size} bytes; fixtures stay small",
+            rec.display()
+        );
+    }
+}
+
+#[test]
 fn fixtures_give_their_committed_alerts_line_for_line() {
     for dir in fixtures() {
         let tmp = tempfile::tempdir().unwrap();
         let out = tmp.path().join("alerts.jsonl");
-        replay(&recording_of(&dir), &out);
+        let stdout = replay(&recording_of(&dir), &out);
         let want = std::fs::read_to_string(dir.join("expected.jsonl")).unwrap();
         let got = std::fs::read_to_string(&out).unwrap();
         // Both the committed lines and today's keep to the published schema.
         util::checked_json_lines(&want);
         util::checked_json_lines(&got);
         let (w, g): (Vec<&str>, Vec<&str>) = (want.lines().collect(), got.lines().collect());
-        let mut report = Vec::new();
+        let mut report = summary_differences(&dir, &stdout);
         for i in 0..w.len().max(g.len()) {
             match (w.get(i), g.get(i)) {
                 (Some(a), Some(b)) if a == b => {}
@@ -116,7 +157,7 @@ fn fixtures_give_their_committed_alerts_line_for_line() {
 
 #[test]
 fn replay_is_byte_identical_run_after_run() {
-    let dir = &fixtures()[0];
+    let dir = &repo_root().join("replay-fixtures/four-verdicts");
     let tmp = tempfile::tempdir().unwrap();
     let (a, b) = (tmp.path().join("a.jsonl"), tmp.path().join("b.jsonl"));
     let stdout = replay(&recording_of(dir), &a);
@@ -152,7 +193,7 @@ fn simulate_reproduces_the_committed_recording_byte_for_byte() {
 
 #[test]
 fn no_search_replay_takes_every_photon_and_finds_nothing() {
-    let dir = &fixtures()[0];
+    let dir = &repo_root().join("replay-fixtures/four-verdicts");
     let o = Command::new(glint_bin())
         .arg("replay")
         .arg(recording_of(dir))

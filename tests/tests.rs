@@ -9,6 +9,7 @@ mod cli;
 mod contract;
 mod email;
 mod hostile;
+mod inputs;
 mod journal;
 mod layout;
 mod listen_exec;

@@ -35,6 +35,8 @@ enum Command {
     /// Tune on recordings: measured false-alarm rates, injections, efficiency, upper limits, with plots
     /// (`glint tune merge` combines the shards of a cluster run).
     Tune(crate::commands::tune::TuneArgs),
+    /// Write a FITS event list (an EVENTS table) as a recording; replay also reads such files directly.
+    Import(crate::commands::import::ImportArgs),
     /// Print what a configured instrument can see: background, critical counts, reach, upper limits.
     Reach(crate::commands::reach::ReachArgs),
     /// Run the daemon: ingest, engines, alert desk, subscribers (until SIGTERM or SIGINT).
@@ -73,6 +75,7 @@ pub(crate) fn dispatch(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::CheckConfig(a) => crate::commands::check_config::run(&a),
         Command::Simulate(a) => crate::commands::simulate::run(&a),
         Command::Replay(a) => crate::commands::replay::run(&a),
+        Command::Import(a) => crate::commands::import::run(&a),
         Command::Reach(a) => crate::commands::reach::run(&a),
         Command::Tune(a) => crate::commands::tune::run(&a),
         Command::Run(a) => crate::commands::run::run_command(a),

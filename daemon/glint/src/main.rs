@@ -10,10 +10,12 @@ use clap::Parser;
 mod alerts;
 mod codec;
 mod config;
+mod fits;
 mod logging;
 mod metrics;
 mod natsbus;
 mod net;
+mod progress;
 mod timefmt;
 mod tls;
 

@@ -21,6 +21,13 @@ pub(crate) fn gps_ns_to_id_stamp(gps_ns: i64) -> String {
     format!("{y:04}{mo:02}{d:02}T{h:02}{mi:02}{s:02}.{:03}", ns / 1_000_000)
 }
 
+/// File name of a recording whose first photon came at `first_gps_ns`: the instrument, then that photon's UTC
+/// time to the millisecond, so a directory of recordings lists in time order and a name says when it starts,
+/// e.g. `ventisca-array-20261201T020000.004Z.glrec.zst`.
+pub(crate) fn recording_name(instrument: &str, first_gps_ns: i64, suffix: &str) -> String {
+    format!("{instrument}-{}Z{suffix}", gps_ns_to_id_stamp(first_gps_ns))
+}
+
 /// Modified Julian Date in UTC with nine decimals (about 86 microseconds).
 pub(crate) fn gps_ns_to_mjd(gps_ns: i64) -> String {
     format!("{:.9}", epoch_from_gps_ns(gps_ns).to_mjd_utc_days())

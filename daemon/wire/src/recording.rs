@@ -338,6 +338,7 @@ pub struct RotatingWriter {
     current: Option<RecordingWriter<File>>,
     opened_ns: i64,
     next_seq: u64,
+    stamp: Option<fn(i64) -> String>,
 }
 
 impl RotatingWriter {
@@ -364,7 +365,18 @@ impl RotatingWriter {
             current: None,
             opened_ns: 0,
             next_seq,
+            stamp: None,
         })
+    }
+
+    /// Names files `<prefix>-<stamp(t)>.glrec[.zst]` instead of numbering them, where `t` is the earliest
+    /// photon time of the batch that opens the file (or the caller's `now_ns` for a frame without photons)
+    /// and `stamp` renders it (the daemon passes the UTC time, which the wire crate cannot compute without
+    /// a leap-second table). A name already taken gets `-2`, `-3`, ... before the suffix. The header frame
+    /// then waits for the first frame of the file instead of opening one itself.
+    pub fn with_time_names(mut self, stamp: fn(i64) -> String) -> Self {
+        self.stamp = Some(stamp);
+        self
     }
 
     /// Writes `frame` (normally the producer's `Hello`) now, and registers it to start every file opened
@@ -374,6 +386,11 @@ impl RotatingWriter {
         frame: ProducerFrame,
         now_ns: i64,
     ) -> Result<Option<PathBuf>, RecordingError> {
+        if self.stamp.is_some() && self.current.is_none() {
+            // The next file starts with the header anyway; opening it now would name it by no photon.
+            self.header = Some(frame);
+            return Ok(None);
+        }
         // Unset first so a file opened by this very write does not get the frame twice.
         self.header = None;
         let closed = self.write_frame(&frame, now_ns)?;
@@ -405,21 +422,52 @@ impl RotatingWriter {
         }
         let cur = match &mut self.current {
             Some(cur) => cur,
-            None => self.open_next(now_ns)?,
+            None => self.open_next(now_ns, frame)?,
         };
         cur.write_frame(frame)?;
         Ok(closed)
     }
 
-    fn open_next(&mut self, now_ns: i64) -> Result<&mut RecordingWriter<File>, RecordingError> {
-        let name = format!(
-            "{}-{:06}{}",
-            self.prefix,
-            self.next_seq,
-            self.compression.suffix()
-        );
-        let path = self.dir.join(name);
-        let mut w = RecordingWriter::create_new(&path, self.compression)?;
+    fn open_next(
+        &mut self,
+        now_ns: i64,
+        frame: &ProducerFrame,
+    ) -> Result<&mut RecordingWriter<File>, RecordingError> {
+        let mut w = match self.stamp {
+            None => {
+                let name = format!(
+                    "{}-{:06}{}",
+                    self.prefix,
+                    self.next_seq,
+                    self.compression.suffix()
+                );
+                RecordingWriter::create_new(&self.dir.join(name), self.compression)?
+            }
+            Some(stamp) => {
+                let first = match &frame.body {
+                    Some(crate::pb::producer_frame::Body::Batch(b)) => {
+                        b.time_gps_ns.iter().copied().min().unwrap_or(now_ns)
+                    }
+                    _ => now_ns,
+                };
+                let base = format!("{}-{}", self.prefix, stamp(first));
+                let mut n = 1u32;
+                loop {
+                    let name = match n {
+                        1 => format!("{base}{}", self.compression.suffix()),
+                        _ => format!("{base}-{n}{}", self.compression.suffix()),
+                    };
+                    match RecordingWriter::create_new(&self.dir.join(name), self.compression) {
+                        Err(RecordingError::Io { source, .. })
+                            if source.kind() == io::ErrorKind::AlreadyExists && n < 10_000 =>
+                        {
+                            n += 1;
+                        }
+                        other => break other?,
+                    }
+                }
+            }
+        };
         self.next_seq += 1;
         if let Some(h) = &self.header {
             w.write_frame(h)?;
@@ -875,6 +923,41 @@ mod tests {
             assert!(plain.len() < 2000 + 1000, "{} bytes", plain.len());
         }
         assert_eq!(replayed, sent);
+    }
+
+    #[test]
+    fn time_names_follow_the_first_photon_and_never_overwrite() {
+        let dir = tempfile::tempdir().unwrap();
+        let policy = RotationPolicy {
+            max_bytes: None,
+            max_duration_ns: NonZeroU64::new(100),
+        };
+        let batch = |seq, t0| ProducerFrame {
+            body: Some(Body::Batch(testdata::full_batch(seq, t0, 2))),
+        };
+        let stamp: fn(i64) -> String = |ns| format!("T{ns}");
+        let hello = testdata::producer_frames().remove(0);
+        let mut w = RotatingWriter::new(dir.path(), "v", Compression::None, policy)
+            .unwrap()
+            .with_time_names(stamp);
+        assert_eq!(w.set_header(hello.clone(), 0).unwrap(), None);
+        assert!(w.current_path().is_none(), "the header alone opens no file");
+        w.write_frame(&batch(1, 5000), 5001).unwrap();
+        let closed = w.write_frame(&batch(2, 7000), 5200).unwrap().unwrap();
+        assert_eq!(closed.file_name().unwrap(), "v-T5000.glrec");
+        assert_eq!(read_all(&closed), vec![hello.clone(), batch(1, 5000)]);
+        assert_eq!(w.current_path().unwrap().file_name().unwrap(), "v-T7000.glrec");
+        w.finish().unwrap();
+        // A second writer with a batch at the same time gets a new name, not the old file.
+        let mut w = RotatingWriter::new(dir.path(), "v", Compression::None, policy)
+            .unwrap()
+            .with_time_names(stamp);
+        w.write_frame(&batch(3, 5000), 0).unwrap();
+        assert_eq!(
+            w.finish().unwrap().unwrap().file_name().unwrap(),
+            "v-T5000-2.glrec"
+        );
+        assert_eq!(read_all(&dir.path().join("v-T5000.glrec")).len(), 2);
     }
 
     #[test]

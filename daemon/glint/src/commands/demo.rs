@@ -275,6 +275,12 @@ reason = "readout stop"
             .collect();
         recs.sort();
         assert_eq!(recs.len(), 1, "one stream, one recording: {recs:?}");
+        // Named by the UTC time of its first photon (timefmt::recording_name's form).
+        let name = recs[0].file_name().unwrap().to_string_lossy().into_owned();
+        assert!(
+            name.starts_with("ventisca-array-20") && name.ends_with("Z.glrec.zst") && name.contains('T'),
+            "{name}"
+        );
         let mut driver = InstrumentDriver::new(&inst, true).unwrap();
         let mut seq = alerts::Sequencer::starting_at(1);
         let mut findings = Vec::new();

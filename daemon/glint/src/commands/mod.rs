@@ -8,6 +8,7 @@ pub(crate) mod check_config;
 pub(crate) mod coincide;
 pub(crate) mod demo;
 pub(crate) mod feed;
+pub(crate) mod import;
 pub(crate) mod journal;
 pub(crate) mod listen;
 pub(crate) mod reach;

@@ -12,17 +12,18 @@ use std::time::Instant;
 use anyhow::Context;
 use glint_engine::Finding;
 use glint_wire::pb::producer_frame::Body;
-use glint_wire::recording::RecordingReader;
 use serde::Serialize;
 
 use crate::alerts::{self, Sequencer};
 use crate::config::config_or_exit;
+use crate::fits::InputFrames;
+use crate::progress::Progress;
 use crate::serve::driver::InstrumentDriver;
 
 /// Arguments of `glint replay`.
 #[derive(Debug, clap::Args)]
 pub(crate) struct ReplayArgs {
-    /// Recordings (.glrec or .glrec.zst), replayed in the order given.
+    /// Recordings (.glrec or .glrec.zst) or FITS event lists (.fits, .evt), replayed in the order given.
     #[arg(required = true)]
     files: Vec<PathBuf>,
     /// Configuration file; the embedded default when omitted.
@@ -37,7 +38,7 @@ pub(crate) struct ReplayArgs {
     /// Treat every recording as this instrument, whatever its Hello says.
     #[arg(long)]
     instrument: Option<String>,
-    /// Print only the summary line, not the alerts.
+    /// Print only the summary line, not the alerts, and no progress.
     #[arg(long)]
     quiet: bool,
     /// Run every instrument at this false-alarm rate per year instead of the configured one.
@@ -49,6 +50,9 @@ pub(crate) struct ReplayArgs {
     /// Put each alert's photons (time, RA, Dec, energy) in its JSON, under `trigger.photon_list`.
     #[arg(long)]
     photons: bool,
+    /// Seconds between progress lines when stderr is not a terminal.
+    #[arg(long, default_value_t = 10.0, hide = true)]
+    progress_every: f64,
 }
 
 /// One source of a truth file with a place and a time.
@@ -163,6 +167,16 @@ fn photon_list(a: &glint_wire::pb::Alert) -> Option<serde_json::Value> {
     Some(serde_json::Value::Array(list))
 }
 
+/// Two input files whose photons overlap in time for the same instrument: the later file's photons before
+/// the earlier file's end reach the engine late. Replay says so instead of counting them silently.
+#[derive(Debug, Serialize)]
+struct Overlap {
+    file: String,
+    overlaps: String,
+    instrument: String,
+    seconds: f64,
+}
+
 /// The replay's closing line.
 #[derive(Debug, Serialize)]
 struct Summary {
@@ -173,6 +187,8 @@ struct Summary {
     refused_photons: u64,
     refused_frames: u64,
     late_photons: u64,
+    overlapping_files: u64,
+    overlaps: Vec<Overlap>,
     live_seconds: f64,
     dead_seconds: f64,
     alerts: BTreeMap<&'static str, u64>,
@@ -267,11 +283,26 @@ pub(crate) fn run(args: &ReplayArgs) -> anyhow::Result<ExitCode> {
             Ok(())
         };
 
+    let total_bytes: u64 = args
+        .files
+        .iter()
+        .map(|p| std::fs::metadata(p).map(|m| m.len()).unwrap_or(0))
+        .sum();
+    let mut bytes_before = 0u64;
+    let mut photons_read = 0u64;
+    let every = std::time::Duration::from_secs_f64(args.progress_every.clamp(0.0, 86_400.0));
+    let mut progress = Progress::new("replay", args.quiet, every);
+    // Photon time span of every file read so far, per instrument: (file, first, last).
+    let mut spans: BTreeMap<String, Vec<(String, i64, i64)>> = BTreeMap::new();
+    let mut overlaps: Vec<Overlap> = Vec::new();
+
     for path in &args.files {
-        let reader = RecordingReader::open(path, cfg.daemon.max_frame_bytes)
-            .with_context(|| format!("opening recording {}", path.display()))?;
+        // The error names the file already.
+        let mut reader =
+            InputFrames::open(path, &cfg, args.instrument.as_deref(), cfg.daemon.max_frame_bytes)?;
         let mut current: Option<String> = args.instrument.clone();
-        for frame in reader {
+        let mut file_spans: BTreeMap<String, (i64, i64)> = BTreeMap::new();
+        while let Some(frame) = reader.next() {
             let frame = frame.with_context(|| format!("reading {}", path.display()))?;
             if let Some(Body::Hello(h)) = &frame.body {
                 if args.instrument.is_none() {
@@ -298,13 +329,45 @@ pub(crate) fn run(args: &ReplayArgs) -> anyhow::Result<ExitCode> {
                     continue;
                 }
             }
+            if let Some(Body::Batch(b)) = &frame.body {
+                if let (Some(lo), Some(hi)) = (b.time_gps_ns.iter().min(), b.time_gps_ns.iter().max()) {
+                    let e = file_spans.entry(id.clone()).or_insert((*lo, *hi));
+                    *e = (e.0.min(*lo), e.1.max(*hi));
+                    photons_read += b.time_gps_ns.len() as u64;
+                    let done = (bytes_before + reader.bytes_done()) as f64 / total_bytes.max(1) as f64;
+                    progress.update(photons_read, Some(*hi), Some(done));
+                }
+            }
             let Some(d) = drivers.get_mut(&id) else { continue };
             if let Err(r) = d.on_frame(&frame, &mut findings) {
                 tracing::warn!(file = %path.display(), seq = r.seq, code = ?r.code, "frame refused: {}", r.detail);
             }
             emit(&id, d, &mut findings, &mut out)?;
         }
+        bytes_before += reader.size();
+        let name = path.display().to_string();
+        for (id, (lo, hi)) in file_spans {
+            let earlier = spans.entry(id.clone()).or_default();
+            if let Some((prev, _, prev_hi)) = earlier.iter().filter(|e| e.2 > lo).max_by_key(|e| e.2) {
+                let seconds = (prev_hi.min(&hi) - lo) as f64 / 1e9;
+                tracing::warn!(
+                    file = %name,
+                    earlier = %prev,
+                    instrument = %id,
+                    "recordings overlap in time by {seconds:.3} s: photons before {} reach the engine late",
+                    crate::timefmt::gps_ns_to_utc(*prev_hi)
+                );
+                overlaps.push(Overlap {
+                    file: name.clone(),
+                    overlaps: prev.clone(),
+                    instrument: id.clone(),
+                    seconds,
+                });
+            }
+            earlier.push((name.clone(), lo, hi));
+        }
     }
+    progress.finish();
     for (id, d) in &mut drivers {
         d.finish(&mut findings);
         emit(id, d, &mut findings, &mut out)?;
@@ -319,6 +382,8 @@ pub(crate) fn run(args: &ReplayArgs) -> anyhow::Result<ExitCode> {
         refused_photons: 0,
         refused_frames: 0,
         late_photons: 0,
+        overlapping_files: overlaps.len() as u64,
+        overlaps,
         live_seconds: 0.0,
         dead_seconds: 0.0,
         alerts: alerts_by_kind,

@@ -639,8 +639,10 @@ fn recorder(cfg: &Config, inst: &InstrumentConfig) -> anyhow::Result<Option<Rota
         ),
     };
     let dir = cfg.daemon.state_dir.join("recordings");
+    // Named by the UTC time of each file's first photon, so a directory of recordings reads as a calendar.
     let w = RotatingWriter::new(&dir, inst.id.clone(), Compression::Zstd(3), policy)
-        .with_context(|| format!("cannot record into {}", dir.display()))?;
+        .with_context(|| format!("cannot record into {}", dir.display()))?
+        .with_time_names(|ns| format!("{}Z", crate::timefmt::gps_ns_to_id_stamp(ns)));
     Ok(Some(w))
 }
 
