@@ -6,6 +6,7 @@
 mod bus;
 mod cli;
 mod email;
+mod health;
 mod hostile;
 mod journal;
 mod layout;

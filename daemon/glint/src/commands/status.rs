@@ -55,7 +55,8 @@ pub(crate) fn run(args: &StatusArgs) -> anyhow::Result<ExitCode> {
         println!("{body}");
         return Ok(ExitCode::SUCCESS);
     }
-    let s: Status = serde_json::from_str(&body).context("the answer of /status is not glint's status JSON")?;
+    let s: Status =
+        serde_json::from_str(&body).context("the answer of /status is not glint's status JSON")?;
     print!("{}", table(&s));
     Ok(if s.healthy {
         ExitCode::SUCCESS
@@ -66,10 +67,14 @@ pub(crate) fn run(args: &StatusArgs) -> anyhow::Result<ExitCode> {
 
 /// The body of `GET path` from `addr`, which must answer 200.
 fn get(addr: SocketAddr, path: &str) -> anyhow::Result<String> {
-    let mut sock = TcpStream::connect_timeout(&addr, TIMEOUT).with_context(|| format!("cannot connect to {addr}"))?;
+    let mut sock =
+        TcpStream::connect_timeout(&addr, TIMEOUT).with_context(|| format!("cannot connect to {addr}"))?;
     sock.set_read_timeout(Some(TIMEOUT))?;
     sock.set_write_timeout(Some(TIMEOUT))?;
-    write!(sock, "GET {path} HTTP/1.0\r\nHost: {addr}\r\nAccept: application/json\r\n\r\n")?;
+    write!(
+        sock,
+        "GET {path} HTTP/1.0\r\nHost: {addr}\r\nAccept: application/json\r\n\r\n"
+    )?;
     let mut raw = Vec::new();
     sock.take(MAX_BYTES)
         .read_to_end(&mut raw)
@@ -103,11 +108,27 @@ pub(crate) fn table(s: &Status) -> String {
     use std::fmt::Write as _;
     let mut o = String::new();
     let health = if s.healthy { "healthy" } else { "UNHEALTHY" };
-    let _ = writeln!(o, "{} at {}, up {}: {health}", s.server, s.now_utc, dur(s.uptime_s));
+    let _ = writeln!(
+        o,
+        "{} at {}, up {}: {health}",
+        s.server,
+        s.now_utc,
+        dur(s.uptime_s)
+    );
     let _ = writeln!(
         o,
         "\n{:<16} {:>9} {:>12} {:>9} {:>8} {:>8} {:>10} {:>10} {:>5} {:>10} {:>10}",
-        "instrument", "producer", "photons", "rate/s", "late", "refused", "last frame", "event lag", "cand", "dead today", "live"
+        "instrument",
+        "producer",
+        "photons",
+        "rate/s",
+        "late",
+        "refused",
+        "last frame",
+        "event lag",
+        "cand",
+        "dead today",
+        "live"
     );
     for i in &s.instruments {
         let _ = writeln!(
@@ -133,7 +154,11 @@ pub(crate) fn table(s: &Status) -> String {
         "\nalerts: {} flashes, {} assessments ({} isolated), {} withdrawals; last seq {}",
         a.flash, a.assessment, a.isolated, a.withdrawal, a.last_seq
     );
-    let _ = writeln!(o, "\n{:<12} {:>8} {:>8} {:>9} {:>18}", "sink", "running", "lag", "failures", "flashes delivered");
+    let _ = writeln!(
+        o,
+        "\n{:<12} {:>8} {:>8} {:>9} {:>18}",
+        "sink", "running", "lag", "failures", "flashes delivered"
+    );
     for k in &s.sinks {
         let _ = writeln!(
             o,
@@ -141,7 +166,11 @@ pub(crate) fn table(s: &Status) -> String {
             k.sink, k.running, k.lag, k.failures, k.flash_deliveries
         );
     }
-    let _ = writeln!(o, "\n{:<18} {:>8} {:>9} {:>9} {:>9} {:>9}", "latency (ms)", "n", "p50", "p99", "p99.9", "max");
+    let _ = writeln!(
+        o,
+        "\n{:<18} {:>8} {:>9} {:>9} {:>9} {:>9}",
+        "latency (ms)", "n", "p50", "p99", "p99.9", "max"
+    );
     for l in s.latency.iter().filter(|l| l.count > 0) {
         let _ = writeln!(
             o,
@@ -152,7 +181,9 @@ pub(crate) fn table(s: &Status) -> String {
     let l = &s.limit;
     let ul = l
         .rate_density_ul_per_pc3_yr
-        .map_or("none yet (no exposure)".to_string(), |v| format!("{v:.3e} per pc^3 per yr"));
+        .map_or("none yet (no exposure)".to_string(), |v| {
+            format!("{v:.3e} per pc^3 per yr")
+        });
     let _ = writeln!(
         o,
         "\nrunning upper limit ({:.0}% CL): {ul}; live {}, exposure {:.3e} pc^3 yr, {} isolated (mu_UL {:.3})",

@@ -86,9 +86,21 @@ impl Collector for DaemonCollector {
         let m = &*self.metrics;
         let get = |a: &AtomicU64| a.load(Ordering::Relaxed);
         for (name, help, v) in [
-            ("glint_photons", "Photons taken into engine queues (late ones included).", get(&m.photons)),
-            ("glint_refused_photons", "Photons in refused batches.", get(&m.refused_photons)),
-            ("glint_refused_frames", "Producer frames refused.", get(&m.refused_frames)),
+            (
+                "glint_photons",
+                "Photons taken into engine queues (late ones included).",
+                get(&m.photons),
+            ),
+            (
+                "glint_refused_photons",
+                "Photons in refused batches.",
+                get(&m.refused_photons),
+            ),
+            (
+                "glint_refused_frames",
+                "Producer frames refused.",
+                get(&m.refused_frames),
+            ),
             (
                 "glint_refused_connections",
                 "Producer connections refused before authenticating (bad token, no Hello in time, evicted).",
@@ -104,16 +116,36 @@ impl Collector for DaemonCollector {
                 "Photons dropped as late (behind the instrument's watermark on arrival).",
                 get(&m.late_photons),
             ),
-            ("glint_bus_published", "Alerts the bus server acknowledged (duplicates included).", get(&m.bus_published)),
-            ("glint_bus_duplicates", "Alerts the bus already held under the same id.", get(&m.bus_duplicates)),
-            ("glint_bus_failures", "Bus publishes that failed and were retried.", get(&m.bus_failures)),
-            ("glint_subscribers_dropped", "Subscribers dropped for an unwritable socket.", get(&m.subscribers_dropped)),
+            (
+                "glint_bus_published",
+                "Alerts the bus server acknowledged (duplicates included).",
+                get(&m.bus_published),
+            ),
+            (
+                "glint_bus_duplicates",
+                "Alerts the bus already held under the same id.",
+                get(&m.bus_duplicates),
+            ),
+            (
+                "glint_bus_failures",
+                "Bus publishes that failed and were retried.",
+                get(&m.bus_failures),
+            ),
+            (
+                "glint_subscribers_dropped",
+                "Subscribers dropped for an unwritable socket.",
+                get(&m.subscribers_dropped),
+            ),
             (
                 "glint_journal_fsyncs",
                 "Journal fsyncs (each covers every alert queued while the previous one ran).",
                 get(&m.journal_fsyncs),
             ),
-            ("glint_email_sent", "Alert emails accepted by the relay (digests apart).", get(&m.email_sent)),
+            (
+                "glint_email_sent",
+                "Alert emails accepted by the relay (digests apart).",
+                get(&m.email_sent),
+            ),
             (
                 "glint_email_digests",
                 "Digest emails accepted by the relay, each for alerts held by a rate limit or quiet hours.",
@@ -180,7 +212,10 @@ impl Collector for DaemonCollector {
             let slowest = m.slowest_cursor(sink);
             let l = slowest.map_or(0, |(c, _)| newest.saturating_sub(c));
             lag.push(([("sink", sink.name())], V::N(l)));
-            running.push(([("sink", sink.name())], V::N(slowest.map_or(0, |(_, n)| n) as u64)));
+            running.push((
+                [("sink", sink.name())],
+                V::N(slowest.map_or(0, |(_, n)| n) as u64),
+            ));
             failures.push(([("sink", sink.name())], V::N(m.sink_failures(sink))));
         }
         family(
@@ -190,7 +225,13 @@ impl Collector for DaemonCollector {
             false,
             &lag,
         )?;
-        family(&mut e, "glint_sink_running", "Sink tasks running, by kind.", false, &running)?;
+        family(
+            &mut e,
+            "glint_sink_running",
+            "Sink tasks running, by kind.",
+            false,
+            &running,
+        )?;
         family(
             &mut e,
             "glint_sink_failures",
@@ -200,8 +241,16 @@ impl Collector for DaemonCollector {
         )?;
         self.encode_instruments(&mut e)?;
         for (name, help, v) in [
-            ("glint_producers", "Producers connected.", m.producers.load(Ordering::Relaxed)),
-            ("glint_subscribers", "Subscribers connected.", m.subscribers.load(Ordering::Relaxed)),
+            (
+                "glint_producers",
+                "Producers connected.",
+                m.producers.load(Ordering::Relaxed),
+            ),
+            (
+                "glint_subscribers",
+                "Subscribers connected.",
+                m.subscribers.load(Ordering::Relaxed),
+            ),
             (
                 "glint_disk_free_bytes",
                 "Free bytes on the state directory's file system at the last check.",
@@ -254,27 +303,91 @@ impl DaemonCollector {
         let ld = |a: &AtomicU64| V::N(a.load(Ordering::Relaxed));
         let s = |a: &std::sync::atomic::AtomicI64| V::F(a.load(Ordering::Relaxed) as f64 / 1e9);
         let counters: [(&str, &str, &dyn Fn(&crate::metrics::InstrumentHealth) -> V); 7] = [
-            ("glint_instrument_photons", "Photons taken from the instrument's producer (late ones included).", &|h| ld(&h.photons)),
-            ("glint_instrument_late_photons", "Photons dropped as late (behind the watermark on arrival).", &|h| ld(&h.late)),
-            ("glint_instrument_refused_photons", "Photons in refused batches.", &|h| ld(&h.refused)),
-            ("glint_instrument_dead_seconds", "Dead time recorded since the start (event time), seconds.", &|h| s(&h.dead_ns)),
-            ("glint_instrument_live_seconds", "Live time searched since the start (dead time removed), seconds.", &|h| s(&h.live_ns)),
-            ("glint_instrument_silences", "Times the instrument fell silent (no frame for ingest.silent_after_s).", &|h| ld(&h.silences)),
-            ("glint_instrument_producers_gone", "Producer connections that ended while the daemon ran.", &|h| ld(&h.producers_gone)),
+            (
+                "glint_instrument_photons",
+                "Photons taken from the instrument's producer (late ones included).",
+                &|h| ld(&h.photons),
+            ),
+            (
+                "glint_instrument_late_photons",
+                "Photons dropped as late (behind the watermark on arrival).",
+                &|h| ld(&h.late),
+            ),
+            (
+                "glint_instrument_refused_photons",
+                "Photons in refused batches.",
+                &|h| ld(&h.refused),
+            ),
+            (
+                "glint_instrument_dead_seconds",
+                "Dead time recorded since the start (event time), seconds.",
+                &|h| s(&h.dead_ns),
+            ),
+            (
+                "glint_instrument_live_seconds",
+                "Live time searched since the start (dead time removed), seconds.",
+                &|h| s(&h.live_ns),
+            ),
+            (
+                "glint_instrument_silences",
+                "Times the instrument fell silent (no frame for ingest.silent_after_s).",
+                &|h| ld(&h.silences),
+            ),
+            (
+                "glint_instrument_producers_gone",
+                "Producer connections that ended while the daemon ran.",
+                &|h| ld(&h.producers_gone),
+            ),
         ];
         for (name, help, f) in counters {
             family(e, name, help, true, &rows(f))?;
         }
         let gauges: [(&str, &str, &dyn Fn(&crate::metrics::InstrumentHealth) -> V); 9] = [
-            ("glint_instrument_photon_rate_hz", "Photons per second taken over the last two seconds.", &|h| V::F(h.rate_hz.get())),
-            ("glint_instrument_watermark_gps_seconds", "The engine's event time (watermark), GPS seconds; 0 before the first photon.", &|h| s(&h.watermark_gps_ns)),
-            ("glint_instrument_event_lag_seconds", "Host clock minus the engine's watermark, seconds; 0 before the first photon.", &|h| V::F(h.event_lag_s(now_gps).unwrap_or(0.0))),
-            ("glint_instrument_seconds_since_frame", "Seconds since the last frame (since the start before the first).", &|h| V::F(h.seconds_since_frame(now))),
-            ("glint_instrument_silent", "1 while the instrument is silent past ingest.silent_after_s.", &|h| V::N(u64::from(h.silent.load(Ordering::Relaxed)))),
-            ("glint_instrument_connected", "1 while a producer is connected.", &|h| V::N(u64::from(h.connected.load(Ordering::Relaxed)))),
-            ("glint_instrument_open_candidates", "Candidates awaiting their assessment.", &|h| ld(&h.open_candidates)),
-            ("glint_instrument_dead_today_seconds", "Dead time recorded since UTC midnight (host clock), seconds.", &|h| s(&h.dead_today_ns)),
-            ("glint_instrument_effective_volume_pc3", "Effective volume for a final burst, pc^3 (0 until computed).", &|h| V::F(h.effective_volume_pc3.get())),
+            (
+                "glint_instrument_photon_rate_hz",
+                "Photons per second taken over the last two seconds.",
+                &|h| V::F(h.rate_hz.get()),
+            ),
+            (
+                "glint_instrument_watermark_gps_seconds",
+                "The engine's event time (watermark), GPS seconds; 0 before the first photon.",
+                &|h| s(&h.watermark_gps_ns),
+            ),
+            (
+                "glint_instrument_event_lag_seconds",
+                "Host clock minus the engine's watermark, seconds; 0 before the first photon.",
+                &|h| V::F(h.event_lag_s(now_gps).unwrap_or(0.0)),
+            ),
+            (
+                "glint_instrument_seconds_since_frame",
+                "Seconds since the last frame (since the start before the first).",
+                &|h| V::F(h.seconds_since_frame(now)),
+            ),
+            (
+                "glint_instrument_silent",
+                "1 while the instrument is silent past ingest.silent_after_s.",
+                &|h| V::N(u64::from(h.silent.load(Ordering::Relaxed))),
+            ),
+            (
+                "glint_instrument_connected",
+                "1 while a producer is connected.",
+                &|h| V::N(u64::from(h.connected.load(Ordering::Relaxed))),
+            ),
+            (
+                "glint_instrument_open_candidates",
+                "Candidates awaiting their assessment.",
+                &|h| ld(&h.open_candidates),
+            ),
+            (
+                "glint_instrument_dead_today_seconds",
+                "Dead time recorded since UTC midnight (host clock), seconds.",
+                &|h| s(&h.dead_today_ns),
+            ),
+            (
+                "glint_instrument_effective_volume_pc3",
+                "Effective volume for a final burst, pc^3 (0 until computed).",
+                &|h| V::F(h.effective_volume_pc3.get()),
+            ),
         ];
         for (name, help, f) in gauges {
             family(e, name, help, false, &rows(f))?;

@@ -89,7 +89,11 @@ async fn metrics(State(s): State<Surface>) -> Response {
             body,
         )
             .into_response(),
-        Err(_) => (StatusCode::INTERNAL_SERVER_ERROR, "metrics could not be encoded\n").into_response(),
+        Err(_) => (
+            StatusCode::INTERNAL_SERVER_ERROR,
+            "metrics could not be encoded\n",
+        )
+            .into_response(),
     }
 }
 
@@ -110,9 +114,5 @@ async fn status_json(State(s): State<Surface>) -> Response {
         s.started.elapsed().as_secs_f64(),
         s.silent_after.as_secs_f64(),
     );
-    (
-        [(header::CACHE_CONTROL, "no-store")],
-        axum::Json(st),
-    )
-        .into_response()
+    ([(header::CACHE_CONTROL, "no-store")], axum::Json(st)).into_response()
 }
