@@ -61,8 +61,9 @@ fn eventually(secs: u64, what: &str, mut f: impl FnMut() -> bool) {
     }
 }
 
-/// Feeds the demo with a subscriber attached; returns (photons fed, alerts the subscriber got).
-fn demo_load(d: &Daemon) -> (u64, Vec<pb::Alert>) {
+/// Feeds the demo with a subscriber attached; returns (photons fed, alerts the subscriber got, the
+/// subscriber, still connected).
+fn demo_load(d: &Daemon) -> (u64, Vec<pb::Alert>, util::Conn) {
     let (mut sub, welcome) = util::subscriber(d.subs, SUBSCRIBER_TOKEN, 0, false);
     assert!(
         matches!(welcome.body, Some(subscriber_frame::Body::Welcome(_))),
@@ -103,14 +104,14 @@ fn demo_load(d: &Daemon) -> (u64, Vec<pb::Alert>) {
             alerts.push(a);
         }
     }
-    (fed, alerts)
+    (fed, alerts, sub)
 }
 
 #[test]
 fn a_load_run_shows_on_metrics_exactly_what_was_fed_and_delivered() {
     let dir = tempfile::tempdir().unwrap();
     let d = with_metrics(dir.path(), "");
-    let (fed, alerts) = demo_load(&d);
+    let (fed, alerts, _sub) = demo_load(&d);
     let stamped = alerts
         .iter()
         .filter(|a| a.latency.as_ref().is_some_and(|l| l.received_unix_ns > 0))
@@ -377,7 +378,7 @@ fn chromium(url: &str, args: &[&str]) -> String {
 fn the_status_page_shows_live_figures_in_headless_chromium() {
     let dir = tempfile::tempdir().unwrap();
     let d = with_metrics(dir.path(), "");
-    let (fed, alerts) = demo_load(&d);
+    let (fed, alerts, _sub) = demo_load(&d);
     let url = format!("http://{}/", d.metrics.unwrap());
     let dom = chromium(&url, &["--dump-dom"]);
     assert!(
