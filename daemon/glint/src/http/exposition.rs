@@ -289,6 +289,13 @@ impl Collector for DaemonCollector {
     }
 }
 
+/// A per-instrument family: name, help, and the figure of one instrument.
+type Figure<'a> = (
+    &'a str,
+    &'a str,
+    &'a dyn Fn(&crate::metrics::InstrumentHealth) -> V,
+);
+
 impl DaemonCollector {
     fn encode_instruments(&self, e: &mut DescriptorEncoder) -> fmt::Result {
         let now = now_unix_ns();
@@ -302,7 +309,7 @@ impl DaemonCollector {
         };
         let ld = |a: &AtomicU64| V::N(a.load(Ordering::Relaxed));
         let s = |a: &std::sync::atomic::AtomicI64| V::F(a.load(Ordering::Relaxed) as f64 / 1e9);
-        let counters: [(&str, &str, &dyn Fn(&crate::metrics::InstrumentHealth) -> V); 7] = [
+        let counters: [Figure<'_>; 7] = [
             (
                 "glint_instrument_photons",
                 "Photons taken from the instrument's producer (late ones included).",
@@ -342,7 +349,7 @@ impl DaemonCollector {
         for (name, help, f) in counters {
             family(e, name, help, true, &rows(f))?;
         }
-        let gauges: [(&str, &str, &dyn Fn(&crate::metrics::InstrumentHealth) -> V); 9] = [
+        let gauges: [Figure<'_>; 9] = [
             (
                 "glint_instrument_photon_rate_hz",
                 "Photons per second taken over the last two seconds.",
