@@ -16,13 +16,13 @@ use glint_wire::pb::{self, RefusalCode, ingest_reply, subscriber_frame};
 use crate::util::{self, Conn, Daemon, Got, INSTRUMENT, PRODUCER_TOKEN, SUBSCRIBER_TOKEN};
 
 /// The host clock as GPS nanoseconds (GPS - UTC = 18 s since 2017).
-fn now_gps_ns() -> i64 {
+pub(crate) fn now_gps_ns() -> i64 {
     let unix = SystemTime::now().duration_since(UNIX_EPOCH).unwrap();
     (unix.as_nanos() as i64) - 315_964_800_000_000_000 + 18_000_000_000
 }
 
 /// A valid batch of `n` photons from `t0`, 1 ms apart.
-fn batch(seq: u64, t0: i64, n: usize) -> pb::ProducerFrame {
+pub(crate) fn batch(seq: u64, t0: i64, n: usize) -> pb::ProducerFrame {
     pb::ProducerFrame {
         body: Some(pb::producer_frame::Body::Batch(pb::PhotonBatch {
             seq,
@@ -44,7 +44,7 @@ fn encoded(m: &impl prost::Message) -> Vec<u8> {
 }
 
 /// Reads replies until an Ack of at least `seq`, collecting the warnings on the way.
-fn ack_of(c: &mut Conn, seq: u64) -> (pb::Ack, Vec<pb::Refusal>) {
+pub(crate) fn ack_of(c: &mut Conn, seq: u64) -> (pb::Ack, Vec<pb::Refusal>) {
     let mut warnings = Vec::new();
     let deadline = Instant::now() + Duration::from_secs(30);
     loop {

@@ -8,6 +8,7 @@ mod checks;
 mod cli;
 mod contract;
 mod email;
+mod health;
 mod hostile;
 mod inputs;
 mod journal;

@@ -65,6 +65,8 @@ enum Command {
     BenchBus(crate::commands::bench_bus::BenchBusArgs),
     /// Ask a running daemon for a TEST alert through every sink (needs the operator token).
     TestAlert(crate::commands::test_alert::TestAlertArgs),
+    /// Show a running daemon's health: streams, sinks, alerts, latency, the running upper limit.
+    Status(crate::commands::status::StatusArgs),
     /// Read a state directory's alert journal offline: verify, list, show, export (never modifies it).
     Journal(crate::commands::journal::JournalArgs),
 }
@@ -78,6 +80,7 @@ pub(crate) fn dispatch(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Import(a) => crate::commands::import::run(&a),
         Command::Reach(a) => crate::commands::reach::run(&a),
         Command::Tune(a) => crate::commands::tune::run(&a),
+        Command::Status(a) => crate::commands::status::run(&a),
         Command::Run(a) => crate::commands::run::run_command(a),
         Command::Demo(a) => crate::commands::demo::run(a),
         Command::BenchLive(a) => crate::commands::bench_live::bench(a),

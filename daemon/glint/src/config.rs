@@ -165,6 +165,9 @@ pub(crate) struct IngestConfig {
     pub(crate) frame_timeout: Duration,
     /// A frame whose times lie further than this ahead of the host clock (GPS) is refused.
     pub(crate) max_future: Duration,
+    /// An instrument with no frame for this long (host clock) is silent: a warning, a metric, and a 503 from
+    /// `/healthz` until its next frame.
+    pub(crate) silent_after: Duration,
 }
 
 /// `[subscribers]`: the alert listener.
@@ -1210,6 +1213,7 @@ impl Reader {
             keepalive: self.seconds(&mut s, "keepalive_s", 15.0),
             frame_timeout: self.seconds(&mut s, "frame_timeout_s", 10.0),
             max_future: self.seconds(&mut s, "max_future_s", 300.0),
+            silent_after: self.seconds(&mut s, "silent_after_s", 30.0),
         };
         self.finish(s);
 

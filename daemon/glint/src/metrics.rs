@@ -1,10 +1,10 @@
 //! The daemon's telemetry: latency histograms per stage and end to end (hdrhistogram, nanoseconds), counters
-//! of photons, frames, alerts and connections, and an optional plain-HTTP endpoint serving them in the
-//! Prometheus text format. Memory is fixed: seven histograms and a handful of atomics.
+//! of photons, frames, alerts and connections, each instrument's health and each sink's cursor; `http/` serves
+//! them (Prometheus exposition, health, status). Memory is fixed: fourteen histograms (hdrhistogram for the
+//! percentiles, prometheus-client's for `_bucket`/`_sum`/`_count`), a handful of atomics per instrument.
 
-use std::fmt::Write as _;
-use std::sync::Mutex;
-use std::sync::atomic::{AtomicI64, AtomicU64, Ordering};
+use std::sync::atomic::{AtomicBool, AtomicI64, AtomicU64, Ordering};
+use std::sync::{Arc, Mutex, Weak};
 
 use hdrhistogram::Histogram;
 
@@ -30,7 +30,8 @@ pub(crate) enum Stage {
 }
 
 impl Stage {
-    const ALL: [Self; 7] = [
+    /// Every stage, in the order of the path.
+    pub(crate) const ALL: [Self; 7] = [
         Self::Decide,
         Self::Journal,
         Self::Send,
@@ -117,6 +118,17 @@ pub(crate) fn latency_histogram() -> Histogram<u64> {
 #[derive(Debug)]
 pub(crate) struct Metrics {
     hists: Mutex<Vec<Histogram<u64>>>,
+    /// The same values in seconds, for the Prometheus histogram (`_bucket`, `_sum`, `_count`).
+    prom_hists: Vec<prometheus_client::metrics::histogram::Histogram>,
+    /// Each configured instrument's health, in configuration order.
+    pub(crate) instruments: Vec<InstrumentHealth>,
+    /// Live cursors of each kind of sink (see [`SinkKind`]), for the lag: one per running sink task.
+    sink_cursors: [Mutex<Vec<Weak<AtomicU64>>>; 3],
+    /// Alerts handed to a sink's peer, by sink kind and alert kind ([`DELIVERY_KINDS`]).
+    deliveries: [[AtomicU64; 4]; 3],
+    /// Assessments with the verdict `isolated` (consistent with a final burst): the count the running upper
+    /// limit is set with.
+    pub(crate) isolated: AtomicU64,
     /// Photons taken into engine queues.
     pub(crate) photons: AtomicU64,
     /// Photons in batches refused by validation.
@@ -175,11 +187,31 @@ impl Default for Metrics {
 }
 
 impl Metrics {
-    /// Empty counters and histograms.
+    /// Empty counters and histograms, no instruments.
     pub(crate) fn new() -> Self {
+        Self::for_instruments(&[])
+    }
+
+    /// Empty counters and histograms, with a health record for each instrument id.
+    pub(crate) fn for_instruments(ids: &[String]) -> Self {
         let hists = Stage::ALL.iter().map(|_| latency_histogram()).collect();
+        // 50 us to about 105 s, doubling: the flash path's milliseconds and a slow relay's seconds alike.
+        let prom_hists = Stage::ALL
+            .iter()
+            .map(|_| {
+                prometheus_client::metrics::histogram::Histogram::new(
+                    prometheus_client::metrics::histogram::exponential_buckets(5e-5, 2.0, 22),
+                )
+            })
+            .collect();
+        let now = crate::timefmt::now_unix_ns();
         Self {
             hists: Mutex::new(hists),
+            prom_hists,
+            instruments: ids.iter().map(|id| InstrumentHealth::new(id, now)).collect(),
+            sink_cursors: Default::default(),
+            deliveries: Default::default(),
+            isolated: AtomicU64::new(0),
             photons: AtomicU64::new(0),
             refused_photons: AtomicU64::new(0),
             bus_published: AtomicU64::new(0),
@@ -218,6 +250,60 @@ impl Metrics {
             // Cannot fail: the value was clamped into the tracked range.
             let _ = h[stage.index()].record(ns);
         }
+        self.prom_hists[stage.index()].observe(ns as f64 / 1e9);
+    }
+
+    /// The Prometheus histogram of one stage (seconds).
+    pub(crate) fn prom_histogram(&self, stage: Stage) -> &prometheus_client::metrics::histogram::Histogram {
+        &self.prom_hists[stage.index()]
+    }
+
+    /// The health record of instrument `id`.
+    pub(crate) fn instrument_health(&self, id: &str) -> Option<&InstrumentHealth> {
+        self.instruments.iter().find(|h| h.id == id)
+    }
+
+    /// Registers a running sink's cursor; its lag is read from it while the returned handle lives.
+    pub(crate) fn sink_cursor(&self, kind: SinkKind, start: u64) -> Arc<AtomicU64> {
+        let c = Arc::new(AtomicU64::new(start));
+        if let Ok(mut v) = self.sink_cursors[kind as usize].lock() {
+            v.retain(|w| w.strong_count() > 0);
+            v.push(Arc::downgrade(&c));
+        }
+        c
+    }
+
+    /// The slowest running cursor of a kind of sink and how many of that kind run; `None` when none runs.
+    pub(crate) fn slowest_cursor(&self, kind: SinkKind) -> Option<(u64, usize)> {
+        let v = self.sink_cursors[kind as usize].lock().ok()?;
+        let live: Vec<u64> = v
+            .iter()
+            .filter_map(Weak::upgrade)
+            .map(|c| c.load(Ordering::Relaxed))
+            .collect();
+        live.iter().min().map(|m| (*m, live.len()))
+    }
+
+    /// Counts one alert handed to a sink's peer.
+    pub(crate) fn count_delivery(&self, sink: SinkKind, kind: i32) {
+        if let Some(i) = delivery_index(kind) {
+            self.deliveries[sink as usize][i].fetch_add(1, Ordering::Relaxed);
+        }
+    }
+
+    /// Alerts of `DELIVERY_KINDS[i]` handed to peers of `sink`.
+    pub(crate) fn deliveries(&self, sink: SinkKind, i: usize) -> u64 {
+        self.deliveries[sink as usize][i].load(Ordering::Relaxed)
+    }
+
+    /// Failures of a kind of sink: subscribers dropped, emails rejected or retried, bus publishes failed.
+    pub(crate) fn sink_failures(&self, sink: SinkKind) -> u64 {
+        let get = |a: &AtomicU64| a.load(Ordering::Relaxed);
+        match sink {
+            SinkKind::Subscribers => get(&self.subscribers_dropped),
+            SinkKind::Email => get(&self.email_rejected) + get(&self.email_retries),
+            SinkKind::Bus => get(&self.bus_failures),
+        }
     }
 
     /// Percentiles of one stage so far.
@@ -228,9 +314,16 @@ impl Metrics {
             .unwrap_or_default()
     }
 
-    /// Counts an issued alert by its kind.
-    pub(crate) fn count_alert(&self, kind: i32) {
-        let i = match glint_wire::pb::AlertKind::try_from(kind) {
+    /// Counts an issued alert by its kind (and an `isolated` assessment for the running upper limit).
+    pub(crate) fn count_alert(&self, alert: &glint_wire::pb::Alert) {
+        if alert
+            .assessment
+            .as_ref()
+            .is_some_and(|a| a.verdict == glint_wire::pb::Verdict::Isolated as i32)
+        {
+            self.isolated.fetch_add(1, Ordering::Relaxed);
+        }
+        let i = match glint_wire::pb::AlertKind::try_from(alert.kind) {
             Ok(glint_wire::pb::AlertKind::Flash) => 0,
             Ok(glint_wire::pb::AlertKind::Assessment) => 1,
             Ok(glint_wire::pb::AlertKind::Withdrawal) => 2,
@@ -253,158 +346,132 @@ impl Metrics {
             println!("{}", self.percentiles(stage).row(label));
         }
     }
+}
 
-    /// Everything in the Prometheus text exposition format.
-    pub(crate) fn prometheus_text(&self) -> String {
-        let mut s = String::new();
-        let get = |a: &AtomicU64| a.load(Ordering::Relaxed);
-        let counters = [
-            (
-                "glint_photons_total",
-                "Photons taken into engine queues.",
-                get(&self.photons),
-            ),
-            (
-                "glint_refused_photons_total",
-                "Photons in refused batches.",
-                get(&self.refused_photons),
-            ),
-            (
-                "glint_refused_frames_total",
-                "Producer frames refused.",
-                get(&self.refused_frames),
-            ),
-            (
-                "glint_refused_connections_total",
-                "Producer connections refused before authenticating (bad token, no Hello in time, evicted).",
-                get(&self.refused_connections),
-            ),
-            (
-                "glint_refused_subscriber_connections_total",
-                "Subscriber connections refused before authenticating.",
-                get(&self.refused_subscriber_connections),
-            ),
-            (
-                "glint_bus_published_total",
-                "Alerts the bus server acknowledged (duplicates included).",
-                get(&self.bus_published),
-            ),
-            (
-                "glint_bus_duplicates_total",
-                "Alerts the bus already held under the same id.",
-                get(&self.bus_duplicates),
-            ),
-            (
-                "glint_bus_failures_total",
-                "Bus publishes that failed and were retried.",
-                get(&self.bus_failures),
-            ),
-            (
-                "glint_late_photons_total",
-                "Photons dropped as late (behind the instrument's watermark on arrival).",
-                get(&self.late_photons),
-            ),
-            (
-                "glint_photons_behind_resume_total",
-                "Photons dropped after a restart as already searched (behind the instrument's resume point).",
-                get(&self.photons_behind_resume),
-            ),
-            (
-                "glint_subscribers_dropped_total",
-                "Subscribers dropped for an unwritable socket.",
-                get(&self.subscribers_dropped),
-            ),
-            (
-                "glint_journal_fsyncs_total",
-                "Journal fsyncs (each covers every alert queued while the previous one ran).",
-                get(&self.journal_fsyncs),
-            ),
-            (
-                "glint_email_sent_total",
-                "Alert emails accepted by the relay (digests apart).",
-                get(&self.email_sent),
-            ),
-            (
-                "glint_email_digests_total",
-                "Digest emails accepted by the relay, each for alerts held by a rate limit or quiet hours.",
-                get(&self.email_digests),
-            ),
-            (
-                "glint_email_rejected_total",
-                "Emails the relay rejected for good (5xx); logged with recipient and alert ids, then skipped.",
-                get(&self.email_rejected),
-            ),
-            (
-                "glint_email_retries_total",
-                "Email attempts that failed transiently (4xx, refused, timeout) and were retried.",
-                get(&self.email_retries),
-            ),
-            (
-                "glint_journal_damaged_total",
-                "Damaged journal stretches found at open (quarantined, or a torn tail cut).",
-                get(&self.journal_damaged),
-            ),
-            (
-                "glint_journal_lost_seqs_total",
-                "Sequence numbers whose alerts the journal had lost when it was opened.",
-                get(&self.journal_lost_seqs),
-            ),
-        ];
-        for (name, help, v) in counters {
-            let _ = writeln!(s, "# HELP {name} {help}\n# TYPE {name} counter\n{name} {v}");
+/// The kinds of journal consumer, as labelled in the metrics.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub(crate) enum SinkKind {
+    /// Socket subscribers (`sinks/subscribers.rs`).
+    Subscribers = 0,
+    /// Email recipients (`sinks/email/`).
+    Email = 1,
+    /// The message bus (`sinks/bus.rs`).
+    Bus = 2,
+}
+
+impl SinkKind {
+    /// Every kind, in label order.
+    pub(crate) const ALL: [Self; 3] = [Self::Subscribers, Self::Email, Self::Bus];
+
+    /// The `sink` label.
+    pub(crate) fn name(self) -> &'static str {
+        match self {
+            Self::Subscribers => "subscribers",
+            Self::Email => "email",
+            Self::Bus => "bus",
         }
-        let _ = writeln!(
-            s,
-            "# HELP glint_alerts_total Alerts issued, by kind.\n# TYPE glint_alerts_total counter"
-        );
-        for (i, kind) in ["flash", "assessment", "withdrawal"].iter().enumerate() {
-            let _ = writeln!(
-                s,
-                "glint_alerts_total{{kind=\"{kind}\"}} {}",
-                get(&self.alerts[i])
-            );
+    }
+}
+
+/// Alert kinds counted per delivery, by index.
+pub(crate) const DELIVERY_KINDS: [&str; 4] = ["flash", "assessment", "withdrawal", "test"];
+
+fn delivery_index(kind: i32) -> Option<usize> {
+    use glint_wire::pb::AlertKind;
+    match AlertKind::try_from(kind).ok()? {
+        AlertKind::Flash => Some(0),
+        AlertKind::Assessment => Some(1),
+        AlertKind::Withdrawal => Some(2),
+        AlertKind::Test => Some(3),
+        _ => None,
+    }
+}
+
+/// An `f64` kept in an atomic as its bits.
+#[derive(Debug, Default)]
+pub(crate) struct AtomicF64(AtomicU64);
+
+impl AtomicF64 {
+    /// Stores `v`.
+    pub(crate) fn set(&self, v: f64) {
+        self.0.store(v.to_bits(), Ordering::Relaxed);
+    }
+
+    /// The value stored last (0.0 at first).
+    pub(crate) fn get(&self) -> f64 {
+        f64::from_bits(self.0.load(Ordering::Relaxed))
+    }
+}
+
+/// One instrument's health: written by ingest (frames, photons, connections), its engine thread (watermark,
+/// dead and live time, candidates) and the health watch (rate, silence); read by `http/`.
+#[derive(Debug)]
+pub(crate) struct InstrumentHealth {
+    /// Instrument id (the `instrument` label).
+    pub(crate) id: String,
+    /// Photons taken into the engine queue.
+    pub(crate) photons: AtomicU64,
+    /// Of those, photons dropped as late (behind the watermark on arrival).
+    pub(crate) late: AtomicU64,
+    /// Photons in refused batches.
+    pub(crate) refused: AtomicU64,
+    /// Host clock (Unix ns) of the last frame taken, or of the daemon's start before the first.
+    pub(crate) last_frame_unix_ns: AtomicI64,
+    /// A producer is connected.
+    pub(crate) connected: AtomicBool,
+    /// Producers that went away (any reason but the daemon's own shutdown).
+    pub(crate) producers_gone: AtomicU64,
+    /// Silent past `ingest.silent_after_s` now.
+    pub(crate) silent: AtomicBool,
+    /// Times it fell silent.
+    pub(crate) silences: AtomicU64,
+    /// Photons per second over the last few seconds (host clock), set by the health watch.
+    pub(crate) rate_hz: AtomicF64,
+    /// The engine's watermark (event time), GPS ns; 0 before the first photon.
+    pub(crate) watermark_gps_ns: AtomicI64,
+    /// Dead time the engine recorded since the daemon started, ns (event time).
+    pub(crate) dead_ns: AtomicI64,
+    /// Of that, dead time recorded since the host clock's UTC midnight, ns.
+    pub(crate) dead_today_ns: AtomicI64,
+    /// Live time (searched, dead time removed) since the daemon started, ns.
+    pub(crate) live_ns: AtomicI64,
+    /// Candidates awaiting their assessment.
+    pub(crate) open_candidates: AtomicU64,
+    /// The instrument's effective volume for a final burst (pc^3), once computed at start; 0 until then.
+    pub(crate) effective_volume_pc3: AtomicF64,
+}
+
+impl InstrumentHealth {
+    fn new(id: &str, now_unix_ns: i64) -> Self {
+        Self {
+            id: id.to_string(),
+            photons: AtomicU64::new(0),
+            late: AtomicU64::new(0),
+            refused: AtomicU64::new(0),
+            last_frame_unix_ns: AtomicI64::new(now_unix_ns),
+            connected: AtomicBool::new(false),
+            producers_gone: AtomicU64::new(0),
+            silent: AtomicBool::new(false),
+            silences: AtomicU64::new(0),
+            rate_hz: AtomicF64::default(),
+            watermark_gps_ns: AtomicI64::new(0),
+            dead_ns: AtomicI64::new(0),
+            dead_today_ns: AtomicI64::new(0),
+            live_ns: AtomicI64::new(0),
+            open_candidates: AtomicU64::new(0),
+            effective_volume_pc3: AtomicF64::default(),
         }
-        for (name, help, v) in [
-            (
-                "glint_producers",
-                "Producers connected.",
-                self.producers.load(Ordering::Relaxed),
-            ),
-            (
-                "glint_subscribers",
-                "Subscribers connected.",
-                self.subscribers.load(Ordering::Relaxed),
-            ),
-            (
-                "glint_disk_free_bytes",
-                "Free bytes on the state directory's file system at the last check.",
-                self.disk_free_bytes.load(Ordering::Relaxed),
-            ),
-        ] {
-            let _ = writeln!(s, "# HELP {name} {help}\n# TYPE {name} gauge\n{name} {v}");
-        }
-        let _ = writeln!(
-            s,
-            "# HELP glint_latency_seconds Latency per stage, from frame receipt to subscriber socket.\n# TYPE glint_latency_seconds summary"
-        );
-        for stage in Stage::ALL {
-            let p = self.percentiles(stage);
-            let name = stage.name();
-            for (q, v) in [
-                ("0.5", p.p50_ms),
-                ("0.99", p.p99_ms),
-                ("0.999", p.p999_ms),
-                ("1", p.max_ms),
-            ] {
-                let _ = writeln!(
-                    s,
-                    "glint_latency_seconds{{stage=\"{name}\",quantile=\"{q}\"}} {}",
-                    v / 1e3
-                );
-            }
-            let _ = writeln!(s, "glint_latency_seconds_count{{stage=\"{name}\"}} {}", p.count);
-        }
-        s
+    }
+
+    /// Seconds since the last frame taken (or since the start, before the first), by the host clock.
+    pub(crate) fn seconds_since_frame(&self, now_unix_ns: i64) -> f64 {
+        (now_unix_ns - self.last_frame_unix_ns.load(Ordering::Relaxed)).max(0) as f64 / 1e9
+    }
+
+    /// How far the engine's event time is behind the host clock, seconds; `None` before the first photon.
+    pub(crate) fn event_lag_s(&self, now_gps_ns: i64) -> Option<f64> {
+        let w = self.watermark_gps_ns.load(Ordering::Relaxed);
+        (w != 0).then(|| (now_gps_ns - w) as f64 / 1e9)
     }
 }
 
@@ -442,7 +509,7 @@ mod tests {
     use super::*;
 
     #[test]
-    fn percentiles_and_text_format() {
+    fn percentiles_and_prometheus_histogram() {
         let m = Metrics::new();
         // 1..=1000 microseconds: p50 about 0.5 ms, max 1 ms (hdrhistogram keeps 3 significant digits).
         for us in 1..=1000_i64 {
@@ -456,15 +523,15 @@ mod tests {
         assert!((p.p50_ms - 0.5).abs() < 0.002, "{p:?}");
         assert!((p.p99_ms - 0.99).abs() < 0.002, "{p:?}");
         assert!((p.max_ms - 1.0).abs() < 0.002, "{p:?}");
-        m.count_alert(glint_wire::pb::AlertKind::Assessment as i32);
-        let text = m.prometheus_text();
-        assert!(
-            text.contains("glint_alerts_total{kind=\"assessment\"} 1"),
-            "{text}"
-        );
-        assert!(
-            text.contains("glint_latency_seconds_count{stage=\"end_to_end\"} 1000"),
-            "{text}"
-        );
+        // The Prometheus histograms carry the same values in seconds, with their count and sum.
+        let mut r = prometheus_client::registry::Registry::default();
+        r.register("e2e", "end to end", m.prom_histogram(Stage::EndToEnd).clone());
+        r.register("decide", "decide", m.prom_histogram(Stage::Decide).clone());
+        let mut text = String::new();
+        prometheus_client::encoding::text::encode(&mut text, &r).unwrap();
+        assert!(text.contains("\ne2e_count 1000\n"), "{text}");
+        // Sum of 1..=1000 microseconds in seconds.
+        assert!(text.contains("\ne2e_sum 0.5005"), "{text}");
+        assert!(text.contains("\ndecide_count 0\n"), "{text}");
     }
 }

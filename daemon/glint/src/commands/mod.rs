@@ -15,6 +15,7 @@ pub(crate) mod reach;
 pub(crate) mod replay;
 pub(crate) mod run;
 pub(crate) mod simulate;
+pub(crate) mod status;
 pub(crate) mod test_alert;
 pub(crate) mod tune;
 pub(crate) mod withdraw;

@@ -567,7 +567,7 @@ impl Shared {
             let mut out = Vec::with_capacity(p.alerts.len());
             for mut a in p.alerts {
                 self.stamp_latency(&mut a, p.stamps, journaled);
-                self.metrics.count_alert(a.kind);
+                self.metrics.count_alert(&a);
                 out.push(Arc::new(a));
             }
             done.extend(out.iter().cloned());

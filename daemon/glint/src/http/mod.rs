@@ -1,37 +1,118 @@
-//! The daemon's HTTP surface on `metrics_listen`: today the Prometheus text exposition of
-//! [`crate::metrics::Metrics`]. Health and status endpoints join here.
+//! The daemon's HTTP surface on `metrics.listen`, served with axum: `/metrics` (the exposition of
+//! `exposition.rs`), `/healthz` (200 or 503, one line per instrument), `/status` (the JSON of `status.rs`)
+//! and `/` (the status page, `page.html`, embedded in the binary; its script reads `/status`). Read-only and
+//! unauthenticated, like any metrics endpoint: keep it on loopback or a management network.
 
-use std::time::Duration;
+pub(crate) mod exposition;
+pub(crate) mod status;
 
-use tokio::io::{AsyncReadExt, AsyncWriteExt};
+use std::sync::Arc;
+use std::time::{Duration, Instant};
+
+use axum::Router;
+use axum::extract::State;
+use axum::http::{StatusCode, header};
+use axum::response::{IntoResponse, Response};
+use axum::routing::get;
+use prometheus_client::registry::Registry;
 use tokio::net::TcpListener;
+use tokio_util::sync::CancellationToken;
 
+use crate::desk::Desk;
 use crate::metrics::Metrics;
 
-/// Serves `GET /metrics` (any path, in fact) over plain HTTP/1.1 until the task is dropped. One request per
-/// connection; a request is read for at most two seconds.
-pub(crate) async fn serve(listener: TcpListener, metrics: std::sync::Arc<Metrics>) {
-    loop {
-        let (mut sock, _) = match listener.accept().await {
-            Ok(s) => s,
-            Err(e) => {
-                tracing::warn!(error = %e, "metrics: accept failed");
-                tokio::time::sleep(Duration::from_millis(100)).await;
-                continue;
-            }
-        };
-        let m = metrics.clone();
-        tokio::spawn(async move {
-            let mut buf = [0u8; 1024];
-            let _ = tokio::time::timeout(Duration::from_secs(2), sock.read(&mut buf)).await;
-            let body = m.prometheus_text();
-            let head = format!(
-                "HTTP/1.1 200 OK\r\nContent-Type: text/plain; version=0.0.4\r\nContent-Length: {}\r\nConnection: close\r\n\r\n",
-                body.len()
-            );
-            let _ = sock.write_all(head.as_bytes()).await;
-            let _ = sock.write_all(body.as_bytes()).await;
-            let _ = sock.shutdown().await;
-        });
+/// The status page.
+const PAGE: &str = include_str!("page.html");
+
+/// What the handlers read.
+#[derive(Clone)]
+pub(crate) struct Surface {
+    metrics: Arc<Metrics>,
+    desk: Arc<Desk>,
+    registry: Arc<Registry>,
+    started: Instant,
+    silent_after: Duration,
+}
+
+impl Surface {
+    /// The surface of a running daemon.
+    pub(crate) fn new(metrics: Arc<Metrics>, desk: Arc<Desk>, silent_after: Duration) -> Self {
+        let registry = Arc::new(exposition::registry(metrics.clone(), desk.clone()));
+        Self {
+            metrics,
+            desk,
+            registry,
+            started: Instant::now(),
+            silent_after,
+        }
     }
+}
+
+/// The routes.
+pub(crate) fn router(surface: Surface) -> Router {
+    Router::new()
+        .route("/", get(page))
+        .route("/metrics", get(metrics))
+        .route("/healthz", get(healthz))
+        .route("/status", get(status_json))
+        .with_state(surface)
+}
+
+/// Serves until `stop` is cancelled.
+pub(crate) async fn serve(listener: TcpListener, surface: Surface, stop: CancellationToken) {
+    let served = axum::serve(listener, router(surface))
+        .with_graceful_shutdown(async move { stop.cancelled().await })
+        .await;
+    if let Err(e) = served {
+        tracing::warn!(error = %e, "the HTTP surface stopped");
+    }
+}
+
+async fn page() -> Response {
+    (
+        [
+            (header::CONTENT_TYPE, "text/html; charset=utf-8"),
+            (header::CACHE_CONTROL, "no-store"),
+        ],
+        PAGE,
+    )
+        .into_response()
+}
+
+async fn metrics(State(s): State<Surface>) -> Response {
+    match exposition::text(&s.registry) {
+        Ok(body) => (
+            [(
+                header::CONTENT_TYPE,
+                "application/openmetrics-text; version=1.0.0; charset=utf-8",
+            )],
+            body,
+        )
+            .into_response(),
+        Err(_) => (
+            StatusCode::INTERNAL_SERVER_ERROR,
+            "metrics could not be encoded\n",
+        )
+            .into_response(),
+    }
+}
+
+async fn healthz(State(s): State<Surface>) -> Response {
+    let (ok, text) = status::health_text(&s.metrics, s.silent_after.as_secs_f64());
+    let code = if ok {
+        StatusCode::OK
+    } else {
+        StatusCode::SERVICE_UNAVAILABLE
+    };
+    (code, [(header::CONTENT_TYPE, "text/plain; charset=utf-8")], text).into_response()
+}
+
+async fn status_json(State(s): State<Surface>) -> Response {
+    let st = status::build(
+        &s.metrics,
+        &s.desk,
+        s.started.elapsed().as_secs_f64(),
+        s.silent_after.as_secs_f64(),
+    );
+    ([(header::CACHE_CONTROL, "no-store")], axum::Json(st)).into_response()
 }

@@ -57,6 +57,9 @@ pub(crate) enum EngineMsg {
     Status(pb::StreamStatus, i64),
     /// The producer went away or skipped sequence numbers: dead time until its next frame.
     StreamBreak,
+    /// Publish the health figures now (sent by the health watch when the queue has room, so an idle engine's
+    /// figures are never stale).
+    Health,
 }
 
 /// An instrument's event time as its engine will see it, kept by ingest from the frames it hands over (in
@@ -562,6 +565,10 @@ async fn handle(
     }
     metrics.producers.fetch_add(1, Ordering::Relaxed);
     let _guard = BusyGuard(slot, metrics);
+    let health = metrics.instrument_health(&slot.id);
+    if let Some(h) = health {
+        h.connected.store(true, Ordering::Relaxed);
+    }
     let welcome = pb::Welcome {
         schema_version: glint_wire::SCHEMA_VERSION,
         server: format!("glint {}", env!("CARGO_PKG_VERSION")),
@@ -607,15 +614,34 @@ async fn handle(
     let why = conn.stream(&mut framed, &stop).await;
     // Whatever ended the stream, the time until the producer is back is dead time.
     let _ = slot.tx.send(EngineMsg::StreamBreak).await;
-    tracing::info!(
-        instrument = %slot.id,
-        %peer,
-        photons = conn.photons,
-        refused = conn.refused,
-        late = conn.late,
-        last_seq = conn.taken_seq,
-        "producer disconnected: {why}"
-    );
+    if let Some(h) = health {
+        h.connected.store(false, Ordering::Relaxed);
+    }
+    if stop.is_cancelled() {
+        tracing::info!(
+            instrument = %slot.id,
+            %peer,
+            photons = conn.photons,
+            refused = conn.refused,
+            late = conn.late,
+            last_seq = conn.taken_seq,
+            "producer disconnected: {why}"
+        );
+    } else {
+        // The stream stopped while the daemon runs: the operator must see it (and the metric counts it).
+        if let Some(h) = health {
+            h.producers_gone.fetch_add(1, Ordering::Relaxed);
+        }
+        tracing::warn!(
+            instrument = %slot.id,
+            %peer,
+            photons = conn.photons,
+            refused = conn.refused,
+            late = conn.late,
+            last_seq = conn.taken_seq,
+            "producer went away: {why}"
+        );
+    }
 }
 
 /// Lets one log line through per [`WARN_EVERY`], counting the ones held back.
@@ -678,6 +704,9 @@ impl Connection<'_> {
             .metrics
             .refused_photons
             .fetch_add(photons, Ordering::Relaxed);
+        if let Some(h) = self.shared.metrics.instrument_health(&self.slot.id) {
+            h.refused.fetch_add(photons, Ordering::Relaxed);
+        }
         self.shared.metrics.refused_frames.fetch_add(1, Ordering::Relaxed);
         reply(framed, ingest_refusal(r.code, r.detail, r.seq)).await
     }
@@ -793,6 +822,11 @@ impl Connection<'_> {
                         return "the engine has stopped".into();
                     }
                     self.taken(seq, n);
+                    if let Some(h) = metrics.instrument_health(&self.slot.id) {
+                        h.photons.fetch_add(n, Ordering::Relaxed);
+                        h.late.fetch_add(late, Ordering::Relaxed);
+                        h.last_frame_unix_ns.store(received, Ordering::Relaxed);
+                    }
                     if late > 0 {
                         self.late += late;
                         self.late_unwarned += late;

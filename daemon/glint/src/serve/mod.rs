@@ -8,6 +8,7 @@
 
 pub(crate) mod diskspace;
 pub(crate) mod driver;
+pub(crate) mod health;
 pub(crate) mod hostprobe;
 pub(crate) mod ingest;
 pub(crate) mod loopback;
@@ -240,7 +241,8 @@ impl Daemon {
         diskspace::remove_temporaries(&[&state_dir, &journal_dir, &journal_dir.join(QUARANTINE)]);
         let (disk_warn, disk_min) = (cfg.daemon.disk_warn_free_bytes, cfg.daemon.disk_min_free_bytes);
         let free = diskspace::check_at_start(&state_dir, disk_warn, disk_min)?;
-        let metrics = Arc::new(Metrics::new());
+        let ids: Vec<String> = cfg.instruments.iter().map(|i| i.id.clone()).collect();
+        let metrics = Arc::new(Metrics::for_instruments(&ids));
         metrics
             .disk_free_bytes
             .store(i64::try_from(free).unwrap_or(i64::MAX), Ordering::Relaxed);
@@ -384,6 +386,8 @@ impl Daemon {
                 save_every: cfg.daemon.state_save_interval,
                 recorder: recorder(&cfg, inst)?,
                 hello: None,
+                metrics: metrics.clone(),
+                dead_day: (0, 0),
             };
             let done = done_tx.clone();
             let handle = std::thread::Builder::new()
@@ -414,6 +418,13 @@ impl Daemon {
             frame_timeout: cfg.ingest.frame_timeout,
             max_future_ns: i64::try_from(cfg.ingest.max_future.as_nanos()).unwrap_or(i64::MAX),
         });
+        tokio::spawn(health::watch(
+            ingest.clone(),
+            metrics.clone(),
+            cfg.ingest.silent_after,
+            fatal.child_token(),
+        ));
+        health::effective_volumes(&cfg.instruments, &metrics);
         let closing = CancellationToken::new();
         let hub = Arc::new(Hub {
             gate: Arc::new(Gate::new(
@@ -489,11 +500,8 @@ impl Daemon {
                 .await
                 .with_context(|| format!("cannot listen on {addr} (metrics.listen)"))?;
             metrics_addr = Some(l.local_addr()?);
-            let m = metrics.clone();
-            let stop = stop_accept.clone();
-            tokio::spawn(async move {
-                tokio::select! { () = crate::http::serve(l, m) => {}, () = stop.cancelled() => {} }
-            });
+            let surface = crate::http::Surface::new(metrics.clone(), desk.clone(), cfg.ingest.silent_after);
+            tokio::spawn(crate::http::serve(l, surface, stop_accept.clone()));
         }
         tracing::info!(
             version = env!("CARGO_PKG_VERSION"),
@@ -648,6 +656,8 @@ fn recorder(cfg: &Config, inst: &InstrumentConfig) -> anyhow::Result<Option<Rota
 
 /// Photons behind the resume point between two log lines about them.
 const BEHIND_LOG_EVERY: u64 = 1_000_000;
+/// How often an engine thread publishes its health figures (while it has work; once more when it ends).
+const HEALTH_EVERY: Duration = Duration::from_millis(200);
 
 /// One instrument's engine, on its own thread.
 struct EngineThread {
@@ -668,11 +678,16 @@ struct EngineThread {
     recorder: Option<RotatingWriter>,
     /// The producer's Hello, until the first frame after it is recorded.
     hello: Option<pb::Hello>,
+    /// Where the instrument's health figures go.
+    metrics: Arc<Metrics>,
+    /// The host's UTC day (days since 1970) and the engine's dead time when it began, ns.
+    dead_day: (i64, i64),
 }
 
 impl EngineThread {
     fn run(mut self) {
         let mut last_save = Instant::now();
+        let mut last_health = Instant::now();
         let mut event_ns = 0;
         // Takes messages until ingest closes the channel (shutdown); then drains.
         while let Ok(msg) = self.rx.recv_blocking() {
@@ -681,6 +696,11 @@ impl EngineThread {
                     // Recorded with the first frame after it, at that frame's event time: a file opened at
                     // time 0 would rotate at its first frame, splitting the stream with a spurious reconnect.
                     self.hello = Some(h);
+                    continue;
+                }
+                EngineMsg::Health => {
+                    self.publish_health();
+                    last_health = Instant::now();
                     continue;
                 }
                 EngineMsg::StreamBreak => {
@@ -722,6 +742,10 @@ impl EngineThread {
             self.count_behind_resume();
             // No save after each alert: that would put an fsync on the engine thread behind every flash, and
             // the journal already holds the floor an alert sets (the newest trigger issued, see `start`).
+            if last_health.elapsed() >= HEALTH_EVERY {
+                self.publish_health();
+                last_health = Instant::now();
+            }
             if last_save.elapsed() >= self.save_every {
                 self.save();
                 self.save_resume();
@@ -734,6 +758,7 @@ impl EngineThread {
         self.save();
         self.save_resume();
         self.count_behind_resume();
+        self.publish_health();
         let st = self.driver.engine_stats();
         tracing::info!(
             instrument = %self.id,
@@ -751,6 +776,27 @@ impl EngineThread {
                 tracing::warn!(instrument = %self.id, "recording not finished cleanly: {e}");
             }
         }
+    }
+
+    /// The engine's figures for the health endpoints: watermark, dead and live time, open candidates.
+    fn publish_health(&mut self) {
+        let Some(h) = self.metrics.instruments.get(self.index) else {
+            return;
+        };
+        let st = self.driver.engine_stats();
+        let day = crate::timefmt::now_unix_ns().div_euclid(86_400_000_000_000);
+        if day != self.dead_day.0 {
+            // A new UTC day (or the first figures): today's dead time counts from here.
+            let base = if self.dead_day.0 == 0 { 0 } else { st.dead_ns };
+            self.dead_day = (day, base);
+        }
+        h.watermark_gps_ns
+            .store(self.driver.watermark_ns().unwrap_or(0), Ordering::Relaxed);
+        h.dead_ns.store(st.dead_ns, Ordering::Relaxed);
+        h.dead_today_ns
+            .store(st.dead_ns - self.dead_day.1, Ordering::Relaxed);
+        h.live_ns.store(st.live_ns, Ordering::Relaxed);
+        h.open_candidates.store(st.open_candidates, Ordering::Relaxed);
     }
 
     fn save(&self) {

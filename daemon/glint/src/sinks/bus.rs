@@ -70,6 +70,14 @@ impl Sink for BusSink {
         "bus"
     }
 
+    fn kind(&self) -> crate::metrics::SinkKind {
+        crate::metrics::SinkKind::Bus
+    }
+
+    fn metrics(&self) -> &crate::metrics::Metrics {
+        &self.metrics
+    }
+
     fn overflow(&self) -> Overflow {
         // One step is one publish and its acknowledgement; the client's own timeout fires first.
         Overflow::RetryFromAcknowledged(self.cfg.ack_timeout + Duration::from_secs(1))

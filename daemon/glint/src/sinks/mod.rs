@@ -6,12 +6,14 @@
 //! back after a failure, so the caller resumes from what the peer holds rather than from what was sent.
 
 use std::sync::Arc;
+use std::sync::atomic::Ordering;
 use std::time::Duration;
 
 use glint_wire::pb;
 use tokio_util::sync::CancellationToken;
 
 use crate::desk::Desk;
+use crate::metrics::{Metrics, SinkKind};
 
 pub(crate) mod bus;
 pub(crate) mod email;
@@ -73,6 +75,12 @@ pub(crate) enum Idle {
 pub(crate) trait Sink {
     /// How the sink is named in logs.
     fn name(&self) -> &str;
+
+    /// Which kind of sink it is, for its cursor lag and delivery counts.
+    fn kind(&self) -> SinkKind;
+
+    /// The daemon's counters, where `drive` keeps the sink's cursor and deliveries.
+    fn metrics(&self) -> &Metrics;
 
     /// The sink's overflow policy.
     fn overflow(&self) -> Overflow;
@@ -151,7 +159,10 @@ async fn drive_from<S: Sink>(
     tokio::pin!(stop);
     let mut watch = desk.watch();
     let mut shutting_down = false;
+    // The cursor as the health figures see it (lag = newest journalled - slowest cursor of the kind).
+    let shown = sink.metrics().sink_cursor(sink.kind(), *cursor);
     loop {
+        shown.store(*cursor, Ordering::Relaxed);
         // Catch up to the newest published alert, one bounded chunk at a time.
         while *cursor < desk.last_seq() {
             let chunk = read_chunk(desk, *cursor).await?;
@@ -183,6 +194,7 @@ async fn drive_from<S: Sink>(
                     Ok(false) => return stopped(sink, *cursor).await,
                     Err(e) => return Err(last_word(sink, e).await),
                 }
+                sink.metrics().count_delivery(sink.kind(), a.kind);
                 // Handed over: a stall from here on resumes after this one.
                 *cursor = a.seq;
             }
@@ -192,6 +204,7 @@ async fn drive_from<S: Sink>(
                 Err(e) => return Err(last_word(sink, e).await),
             }
             *cursor = newest;
+            shown.store(newest, Ordering::Relaxed);
         }
         match step(policy, *cursor, &mut stop, sink.housekeep()).await {
             Ok(true) => {}

@@ -575,6 +575,14 @@ impl Sink for SocketSink<'_> {
         &self.client
     }
 
+    fn kind(&self) -> crate::metrics::SinkKind {
+        crate::metrics::SinkKind::Subscribers
+    }
+
+    fn metrics(&self) -> &crate::metrics::Metrics {
+        &self.hub.metrics
+    }
+
     fn overflow(&self) -> Overflow {
         Overflow::DropWhenStalled(self.hub.cfg.unwritable_timeout)
     }

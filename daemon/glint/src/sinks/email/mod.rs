@@ -530,6 +530,14 @@ impl Sink for RecipientSink {
         &self.name
     }
 
+    fn kind(&self) -> crate::metrics::SinkKind {
+        crate::metrics::SinkKind::Email
+    }
+
+    fn metrics(&self) -> &crate::metrics::Metrics {
+        &self.metrics
+    }
+
     fn overflow(&self) -> Overflow {
         Overflow::Resume { grace: self.grace }
     }
