@@ -7,7 +7,7 @@ use std::process::Command;
 
 use serde_json::Value;
 
-use crate::util::{config_text, glint_bin, repo_root};
+use crate::util::{checked_json_lines, config_text, glint_bin, repo_root};
 
 fn run_ok(args: &[&str]) -> String {
     let o = Command::new(glint_bin()).args(args).output().unwrap();
@@ -139,7 +139,7 @@ fn replay_matches_the_truth_and_lists_photons() {
         "--far-per-year",
         "2",
     ]);
-    let lines: Vec<Value> = out.lines().map(|l| serde_json::from_str(l).unwrap()).collect();
+    let lines: Vec<Value> = checked_json_lines(&out);
     let summary = lines.last().unwrap();
     assert_eq!(summary["far_per_year"], 2.0);
     let t = &summary["truth"];
@@ -147,10 +147,14 @@ fn replay_matches_the_truth_and_lists_photons() {
     assert!(t["found"].as_u64().unwrap() >= 1, "{t}");
     let mut listed = 0;
     for a in &lines[..lines.len() - 1] {
-        if let Some(trig) = a.get("trigger") {
-            let list = trig["photon_list"].as_array().unwrap();
-            assert_eq!(list.len() as u64, trig["photons"].as_u64().unwrap());
-            assert!(list.iter().all(|p| p["time_gps_ns"].as_i64().unwrap() > 0));
+        let trig = &a["trigger"];
+        if trig.is_object() {
+            let times = trig["photon_time_gps_ns"].as_array().unwrap();
+            assert_eq!(times.len() as u64, trig["photons"].as_u64().unwrap());
+            assert!(times.iter().all(|t| t.as_i64().unwrap() > 0));
+            for col in ["photon_ra_deg", "photon_dec_deg", "photon_energy_gev"] {
+                assert_eq!(trig[col].as_array().unwrap().len(), times.len(), "{col}");
+            }
             listed += 1;
         }
     }

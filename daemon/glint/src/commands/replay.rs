@@ -47,7 +47,8 @@ pub(crate) struct ReplayArgs {
     /// A truth file (`glint simulate --truth`, JSON lines): the summary says which sources got a flash.
     #[arg(long)]
     truth: Option<PathBuf>,
-    /// Put each alert's photons (time, RA, Dec, energy) in its JSON, under `trigger.photon_list`.
+    /// Put each alert's photons in its JSON: the trigger's `photon_time_gps_ns`, `photon_ra_deg`,
+    /// `photon_dec_deg` and `photon_energy_gev` columns (docs/alerts.md).
     #[arg(long)]
     photons: bool,
     /// Seconds between progress lines when stderr is not a terminal.
@@ -151,22 +152,6 @@ fn match_truth(truth: &[TruthLine], flashes: &[FlashSeen]) -> TruthSummary {
     }
 }
 
-/// The trigger's photons as a list of objects, for a light curve.
-fn photon_list(a: &glint_wire::pb::Alert) -> Option<serde_json::Value> {
-    let t = a.trigger.as_ref()?;
-    let list: Vec<serde_json::Value> = (0..t.photon_time_gps_ns.len())
-        .map(|i| {
-            serde_json::json!({
-                "time_gps_ns": t.photon_time_gps_ns[i],
-                "ra_deg": t.photon_ra_deg.get(i),
-                "dec_deg": t.photon_dec_deg.get(i),
-                "energy_gev": t.photon_energy_gev.get(i),
-            })
-        })
-        .collect();
-    Some(serde_json::Value::Array(list))
-}
-
 /// Two input files whose photons overlap in time for the same instrument: the later file's photons before
 /// the earlier file's end reach the engine late. Replay says so instead of counting them silently.
 #[derive(Debug, Serialize)]
@@ -195,9 +180,9 @@ struct Summary {
     verdicts: BTreeMap<&'static str, u64>,
     wall_seconds: f64,
     photons_per_second: f64,
-    #[serde(skip_serializing_if = "Option::is_none")]
+    /// `--far-per-year` when given (every field is present: null otherwise).
     far_per_year: Option<f64>,
-    #[serde(skip_serializing_if = "Option::is_none")]
+    /// The match against `--truth` when given.
     truth: Option<TruthSummary>,
 }
 
@@ -272,12 +257,7 @@ pub(crate) fn run(args: &ReplayArgs) -> anyhow::Result<ExitCode> {
                 if let Some(a) = &alert.assessment {
                     *verdicts.entry(alerts::verdict_name(a.verdict)).or_default() += 1;
                 }
-                let mut json = alerts::alert_json(&alert);
-                if photons {
-                    if let (Some(list), Some(trig)) = (photon_list(&alert), json.get_mut("trigger")) {
-                        trig["photon_list"] = list;
-                    }
-                }
+                let json = alerts::alert_json_with(&alert, alerts::JsonOptions { photons });
                 out.alert(&json.to_string())?;
             }
             Ok(())

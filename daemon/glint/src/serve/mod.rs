@@ -382,7 +382,6 @@ impl Daemon {
                 resume_file,
                 last_seq: point.map_or(0, |p| p.last_seq),
                 behind_reported: 0,
-                metrics: metrics.clone(),
                 save_every: cfg.daemon.state_save_interval,
                 recorder: recorder(&cfg, inst)?,
                 hello: None,
@@ -673,7 +672,6 @@ struct EngineThread {
     last_seq: u64,
     /// Photons behind the resume point already counted in the metrics.
     behind_reported: u64,
-    metrics: Arc<Metrics>,
     save_every: Duration,
     recorder: Option<RotatingWriter>,
     /// The producer's Hello, until the first frame after it is recorded.
