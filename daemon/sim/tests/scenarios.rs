@@ -245,6 +245,8 @@ fn deploy_scenarios_all_parse() {
     assert_eq!(
         names,
         [
+            "background-10khz.toml",
+            "background-300hz.toml",
             "demo.toml",
             "one-burst.toml",
             "quiet-hour.toml",

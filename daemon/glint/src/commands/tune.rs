@@ -136,7 +136,7 @@ pub(crate) fn run(args: &TuneArgs) -> anyhow::Result<ExitCode> {
     let id = match &args.instrument {
         Some(id) => id.clone(),
         None => {
-            let p = tune::stream::Photons::read(&args.files[..1], cfg.daemon.max_frame_bytes)?;
+            let p = tune::stream::Photons::read(&args.files[..1], &cfg, None)?;
             p.instrument
                 .context("the recording has no Hello; give --instrument")?
         }
@@ -183,7 +183,7 @@ pub(crate) fn run(args: &TuneArgs) -> anyhow::Result<ExitCode> {
     let (plan, photons) = tune::prepare(
         &inst,
         &args.files,
-        cfg.daemon.max_frame_bytes,
+        &cfg,
         spec,
         args.loosest_far_per_year,
         args.seed,

@@ -84,16 +84,16 @@ pub(crate) struct ShardFile {
     pub(crate) units: Vec<UnitOutput>,
 }
 
-/// Reads the recordings and lays out the campaign.
+/// Reads the recordings (or FITS event lists) and lays out the campaign.
 pub(crate) fn prepare(
     inst: &InstrumentConfig,
     files: &[PathBuf],
-    max_frame_bytes: usize,
+    cfg: &crate::config::Config,
     inject: InjectSpec,
     loosest_far_per_year: f64,
     seed: u64,
 ) -> Result<(Plan, Photons), TuneError> {
-    let photons = Photons::read(files, max_frame_bytes)?;
+    let photons = Photons::read(files, cfg, Some(&inst.id))?;
     let tail =
         inst.assess.persistence_min_s.max(
             inst.assess.persistence_timescale_factor * inst.search.ladder_s.last().copied().unwrap_or(0.0),

@@ -6,7 +6,6 @@ use std::path::PathBuf;
 
 use glint_sim::sky::SkyFrame;
 use glint_wire::pb::{self, ProducerFrame, producer_frame::Body};
-use glint_wire::recording::RecordingReader;
 use rand::seq::SliceRandom;
 
 /// Dead intervals longer than this become stream breaks (ten minutes; the engine's clock-jump guard is
@@ -45,16 +44,22 @@ pub(crate) struct Photons {
 }
 
 impl Photons {
-    /// Reads the recordings (in the order given; their photons are then sorted by time). The gap between
-    /// one recording's end and the next one's start is dead time.
-    pub(crate) fn read(files: &[PathBuf], max_frame_bytes: usize) -> Result<Self, StreamError> {
+    /// Reads the recordings or FITS event lists (what `replay` reads; in the order given, their photons then
+    /// sorted by time). The gap between one file's end and the next one's start is dead time. `instrument`
+    /// picks the instrument a FITS file is read for, as `replay --instrument` does.
+    pub(crate) fn read(
+        files: &[PathBuf],
+        cfg: &crate::config::Config,
+        instrument: Option<&str>,
+    ) -> Result<Self, StreamError> {
         let mut out = Self::default();
         for path in files {
             let err = |detail: String| StreamError::Read {
                 path: path.clone(),
                 detail,
             };
-            let reader = RecordingReader::open(path, max_frame_bytes).map_err(|e| err(e.to_string()))?;
+            let reader = crate::fits::InputFrames::open(path, cfg, instrument, cfg.daemon.max_frame_bytes)
+                .map_err(|e| err(e.to_string()))?;
             let mut last_seq: Option<u64> = None;
             let mut latest: Option<i64> = None;
             let first_of_file = out.photons.len();
