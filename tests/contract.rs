@@ -290,10 +290,12 @@ fn listen_keeps_to_the_contract_on_a_live_daemon() {
     assert_eq!(tests.len(), 1);
     assert_eq!(tests[0]["id"], test.id.as_str());
     // Automatic and operator withdrawals have the same fields, the withdrawn alert's trigger included.
+    // The operator's withdrawal of a flash withdraws its assessment too: automatic, operator, cascade.
     let withdrawals = of("withdrawal");
-    assert_eq!(withdrawals.len(), 2, "{withdrawals:#?}");
+    assert_eq!(withdrawals.len(), 3, "{withdrawals:#?}");
     let keys = |v: &Value| v.as_object().unwrap().keys().cloned().collect::<Vec<_>>();
     assert_eq!(keys(withdrawals[0]), keys(withdrawals[1]));
+    assert_eq!(keys(withdrawals[0]), keys(withdrawals[2]));
     for wd in &withdrawals {
         assert!(
             wd["trigger"].is_object(),
@@ -303,6 +305,12 @@ fn listen_keeps_to_the_contract_on_a_live_daemon() {
         assert_eq!(wd["trigger"]["end_gps_ns"], target["trigger"]["end_gps_ns"]);
     }
     assert_eq!(withdrawals[1]["withdrawn_id"], second_flash.as_str());
+    let cascaded = lines
+        .iter()
+        .find(|v| v["id"] == withdrawals[2]["withdrawn_id"])
+        .unwrap();
+    assert_eq!(cascaded["kind"], "assessment");
+    assert_eq!(cascaded["assessment"]["flash_id"], second_flash.as_str());
     let assessment = of("assessment")[0];
     let flash = lines.iter().find(|v| v["kind"] == "flash").unwrap();
     let mut flash_small = flash.clone();

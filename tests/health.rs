@@ -176,6 +176,16 @@ fn a_load_run_shows_on_metrics_exactly_what_was_fed_and_delivered() {
         sample(&m, "glint_latency_seconds_count{stage=\"flash_decide\"}"),
         flashes
     );
+    // Each flash delivery also gives glint's own share (end to end less the journal's disk), which is less
+    // than the end to end it comes from.
+    assert_eq!(
+        sample(&m, "glint_latency_seconds_count{stage=\"flash_own\"}"),
+        flashes
+    );
+    assert!(
+        sample(&m, "glint_latency_seconds_sum{stage=\"flash_own\"}")
+            < sample(&m, "glint_latency_seconds_sum{stage=\"flash_end_to_end\"}")
+    );
     assert!(sample(&m, "glint_latency_seconds_sum{stage=\"end_to_end\"}") > 0.0);
     assert!(
         m.contains_key("glint_latency_seconds_bucket{le=\"+Inf\",stage=\"end_to_end\"}")

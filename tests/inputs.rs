@@ -8,7 +8,7 @@ use std::process::{Command, Output};
 
 use serde_json::Value;
 
-use crate::util::{glint_bin, repo_root};
+use crate::util::{checked_json_lines, glint_bin, repo_root};
 
 fn fits(name: &str) -> PathBuf {
     repo_root().join("tests/reference/fits").join(name)
@@ -21,7 +21,8 @@ fn glint(args: &[&str], files: &[&Path]) -> Output {
 fn summary(o: &Output) -> Value {
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
     let out = String::from_utf8_lossy(&o.stdout);
-    serde_json::from_str(out.lines().last().unwrap()).unwrap()
+    // Every line, alerts and summary, keeps to the alert contract's schema.
+    checked_json_lines(&out).pop().unwrap()
 }
 
 #[test]

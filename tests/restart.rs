@@ -38,7 +38,7 @@ fn journal(state: &Path) -> Vec<serde_json::Value> {
     assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
     String::from_utf8_lossy(&out.stdout)
         .lines()
-        .map(|l| serde_json::from_str(l).unwrap())
+        .map(util::checked_json)
         .collect()
 }
 

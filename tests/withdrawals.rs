@@ -121,7 +121,7 @@ fn withdrawing_a_flash_withdraws_its_assessment_and_ids_follow_one_rule() {
     assert!(export.status.success());
     let json: Vec<serde_json::Value> = String::from_utf8_lossy(&export.stdout)
         .lines()
-        .map(|l| serde_json::from_str(l).unwrap())
+        .map(util::checked_json)
         .collect();
     let by_id: BTreeMap<&str, &serde_json::Value> =
         json.iter().map(|a| (a["id"].as_str().unwrap(), a)).collect();

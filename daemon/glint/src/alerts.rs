@@ -303,6 +303,7 @@ fn latency_json(l: &pb::Latency) -> Value {
         "journaled_unix_ns": l.journaled_unix_ns,
         "sent_unix_ns": l.sent_unix_ns,
         "reorder_hold_ns": l.reorder_hold_ns,
+        "fsync_wait_ns": l.fsync_wait_ns,
         "journal_ms": ms(l.journaled_unix_ns),
         "sent_ms": ms(l.sent_unix_ns),
     })

@@ -27,11 +27,14 @@ pub(crate) enum Stage {
     FlashEndToEnd,
     /// Journal fsync to the bus server's acknowledgement of the publish (the bus sink).
     BusAck,
+    /// `FlashEndToEnd` minus the time the flash waited on fdatasync calls (`Latency.fsync_wait_ns`): glint's
+    /// own share of the path, apart from the host's disk.
+    FlashOwn,
 }
 
 impl Stage {
     /// Every stage, in the order of the path.
-    pub(crate) const ALL: [Self; 7] = [
+    pub(crate) const ALL: [Self; 8] = [
         Self::Decide,
         Self::Journal,
         Self::Send,
@@ -39,6 +42,7 @@ impl Stage {
         Self::FlashDecide,
         Self::FlashEndToEnd,
         Self::BusAck,
+        Self::FlashOwn,
     ];
 
     fn index(self) -> usize {
@@ -50,6 +54,7 @@ impl Stage {
             Self::FlashDecide => 4,
             Self::FlashEndToEnd => 5,
             Self::BusAck => 6,
+            Self::FlashOwn => 7,
         }
     }
 
@@ -63,6 +68,7 @@ impl Stage {
             Self::FlashDecide => "flash_decide",
             Self::FlashEndToEnd => "flash_end_to_end",
             Self::BusAck => "bus_ack",
+            Self::FlashOwn => "flash_own",
         }
     }
 }
@@ -237,6 +243,13 @@ impl Metrics {
         }
     }
 
+    /// Records a span already measured, nanoseconds (negative ones are not recorded).
+    pub(crate) fn record_span(&self, stage: Stage, ns: i64) {
+        if ns >= 0 {
+            self.record(stage, 1, ns.saturating_add(1));
+        }
+    }
+
     /// Records one latency between two wall-clock stamps (Unix ns). Absent (0) or reversed stamps are not
     /// recorded: a clock step must not put a negative value in a histogram.
     pub(crate) fn record(&self, stage: Stage, from_unix_ns: i64, to_unix_ns: i64) {
@@ -342,6 +355,7 @@ impl Metrics {
             ("receipt -> socket", Stage::EndToEnd),
             ("flashes: -> decided", Stage::FlashDecide),
             ("flashes: -> socket", Stage::FlashEndToEnd),
+            ("flashes: own share", Stage::FlashOwn),
         ] {
             println!("{}", self.percentiles(stage).row(label));
         }

@@ -124,6 +124,9 @@ struct Shared {
     metrics: Arc<Metrics>,
     /// Cancelled when the journal fails, which stops the daemon: one that cannot journal must not send.
     failure: CancellationToken,
+    /// The previous commit's disk work (writes and fdatasync), host clock `[start, end)` Unix ns: an alert
+    /// queued while it ran waited on its rest too. Only the committer thread touches it.
+    last_write: Mutex<(i64, i64)>,
 }
 
 /// Numbers, journals and publishes alerts. Shared (`Arc`) by engine threads, the fit worker, subscriber
@@ -235,6 +238,7 @@ impl Desk {
             published,
             metrics,
             failure,
+            last_write: Mutex::new((0, 0)),
         });
         let s = shared.clone();
         let committer = std::thread::Builder::new()
@@ -525,6 +529,7 @@ impl Shared {
 
     fn commit(&self, batch: Vec<Pending>) {
         let now = now_unix_ns();
+        let write_start = now;
         let written = {
             let mut j = lock(&self.journal);
             let newest = batch.iter().flat_map(|p| &p.alerts).map(|a| a.seq).max();
@@ -557,6 +562,7 @@ impl Shared {
             return;
         }
         let journaled = now_unix_ns();
+        let previous = std::mem::replace(&mut *lock(&self.last_write), (write_start, journaled));
         self.metrics
             .journal_fsyncs
             .fetch_add(1, std::sync::atomic::Ordering::Relaxed);
@@ -566,7 +572,8 @@ impl Shared {
         for p in batch {
             let mut out = Vec::with_capacity(p.alerts.len());
             for mut a in p.alerts {
-                self.stamp_latency(&mut a, p.stamps, journaled);
+                let wait = disk_wait_ns(p.stamps.decided_unix_ns, previous, (write_start, journaled));
+                self.stamp_latency(&mut a, p.stamps, journaled, wait);
                 self.metrics.count_alert(&a);
                 out.push(Arc::new(a));
             }
@@ -601,7 +608,7 @@ impl Shared {
         }
     }
 
-    fn stamp_latency(&self, a: &mut pb::Alert, stamps: Stamps, journaled: i64) {
+    fn stamp_latency(&self, a: &mut pb::Alert, stamps: Stamps, journaled: i64, fsync_wait_ns: i64) {
         if stamps.received_unix_ns == 0 {
             return;
         }
@@ -609,6 +616,7 @@ impl Shared {
             received_unix_ns: stamps.received_unix_ns,
             decided_unix_ns: stamps.decided_unix_ns,
             journaled_unix_ns: journaled,
+            fsync_wait_ns,
             ..Default::default()
         });
         let (r, d) = (stamps.received_unix_ns, stamps.decided_unix_ns);
@@ -618,6 +626,15 @@ impl Shared {
             self.metrics.record(Stage::FlashDecide, r, d);
         }
     }
+}
+
+/// How long an alert decided at `decided` waited on the journal's disk work: all of its own commit's
+/// (`own`, writes and fdatasync) and whatever of the previous commit (`previous`) was still running after
+/// it was decided, since the committer takes a new batch only when the previous one is on disk. Host clock,
+/// Unix ns; never negative.
+fn disk_wait_ns(decided: i64, previous: (i64, i64), own: (i64, i64)) -> i64 {
+    let before = (previous.1 - decided.max(previous.0)).max(0);
+    (own.1 - own.0).max(0) + before
 }
 
 /// The alerts of `iter` numbered `after + 1`, `after + 2`, ... up to `upto`, at most `max`: the run stops
@@ -791,6 +808,18 @@ pub(crate) mod tests {
     }
 
     #[test]
+    fn the_disk_wait_counts_the_own_commit_and_the_rest_of_the_one_running() {
+        // Decided at 100 while the previous commit ran [50, 180): 80 of it, then its own [180, 230): 50.
+        assert_eq!(disk_wait_ns(100, (50, 180), (180, 230)), 130);
+        // Decided after the previous one ended: its own only.
+        assert_eq!(disk_wait_ns(200, (50, 180), (210, 230)), 20);
+        // Decided before the previous one began (queued behind a busy committer): all of it.
+        assert_eq!(disk_wait_ns(10, (50, 180), (180, 230)), 180);
+        // A clock step backwards never gives a negative wait.
+        assert_eq!(disk_wait_ns(100, (0, 0), (230, 180)), 0);
+    }
+
+    #[test]
     fn alerts_are_numbered_journalled_published_and_read_back() {
         let tmp = tempfile::tempdir().unwrap();
         let m = Arc::new(Metrics::new());
@@ -803,6 +832,12 @@ pub(crate) mod tests {
         assert_eq!(*w.borrow_and_update(), 3);
         let l = got[0].latency.unwrap();
         assert!(l.journaled_unix_ns >= l.decided_unix_ns && l.decided_unix_ns > 0);
+        // The disk's share is part of decided -> journaled, never more; the journal's fdatasync takes time.
+        assert!(l.fsync_wait_ns > 0, "{l:?}");
+        assert!(
+            l.fsync_wait_ns <= l.journaled_unix_ns - l.decided_unix_ns,
+            "{l:?}"
+        );
         assert_eq!(m.percentiles(Stage::Journal).count, 3);
         // Memory and disk agree.
         let mem = desk.read_cached(1, 10).unwrap();

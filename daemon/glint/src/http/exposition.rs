@@ -281,7 +281,7 @@ impl Collector for DaemonCollector {
         }
         let mut h = e.encode_descriptor(
             "glint_latency_seconds",
-            "Latency per stage: decide and journal once per alert, send and end_to_end once per subscriber delivery, bus_ack once per publish.",
+            "Latency per stage: decide and journal once per alert, send and end_to_end once per subscriber delivery, bus_ack once per publish, flash_own (flash_end_to_end minus its fsync wait, glint's own share) once per flash delivery.",
             None,
             MetricType::Histogram,
         )?;

@@ -547,7 +547,16 @@ struct SocketSink<'h> {
     next_beat: tokio::time::Instant,
     /// Receipt and journal stamps of live alerts fed since the last flush, recorded once they are on the
     /// socket.
-    unflushed: Vec<(i64, i64, bool)>,
+    unflushed: Vec<Unflushed>,
+}
+
+/// The stamps of one live alert on its way to the socket, recorded in the latency histograms once flushed.
+struct Unflushed {
+    received: i64,
+    journaled: i64,
+    /// The alert's wait on the journal's disk work, taken out of the flash's own share.
+    fsync_wait: i64,
+    flash: bool,
 }
 
 impl SocketSink<'_> {
@@ -597,11 +606,12 @@ impl Sink for SocketSink<'_> {
         if let Some(l) = a.latency.as_mut() {
             l.sent_unix_ns = now_unix_ns();
             if !a.replayed {
-                self.unflushed.push((
-                    l.received_unix_ns,
-                    l.journaled_unix_ns,
-                    a.kind == pb::AlertKind::Flash as i32,
-                ));
+                self.unflushed.push(Unflushed {
+                    received: l.received_unix_ns,
+                    journaled: l.journaled_unix_ns,
+                    fsync_wait: l.fsync_wait_ns,
+                    flash: a.kind == pb::AlertKind::Flash as i32,
+                });
             }
         }
         self.tx
@@ -625,11 +635,14 @@ impl Sink for SocketSink<'_> {
     async fn commit(&mut self, _seq: u64) -> anyhow::Result<()> {
         self.tx.flush().await?;
         let done = now_unix_ns();
-        for (received, journaled, flash) in self.unflushed.drain(..) {
-            self.hub.metrics.record(Stage::Send, journaled, done);
-            self.hub.metrics.record(Stage::EndToEnd, received, done);
-            if flash {
-                self.hub.metrics.record(Stage::FlashEndToEnd, received, done);
+        for u in self.unflushed.drain(..) {
+            self.hub.metrics.record(Stage::Send, u.journaled, done);
+            self.hub.metrics.record(Stage::EndToEnd, u.received, done);
+            if u.flash && u.received > 0 {
+                self.hub.metrics.record(Stage::FlashEndToEnd, u.received, done);
+                self.hub
+                    .metrics
+                    .record_span(Stage::FlashOwn, done - u.received - u.fsync_wait);
             }
         }
         self.next_beat = tokio::time::Instant::now() + self.hub.cfg.heartbeat;
