@@ -217,6 +217,7 @@ pub(crate) fn full_alert() -> pb::Alert {
             journaled_unix_ns: 300,
             sent_unix_ns: 400,
             reorder_hold_ns: 50,
+            fsync_wait_ns: 60,
         }),
         replayed: true,
         joint: Some(pb::Joint {
