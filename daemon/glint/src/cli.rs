@@ -99,7 +99,8 @@ pub(crate) fn dispatch(cli: Cli) -> anyhow::Result<ExitCode> {
             if e.chain()
                 .any(|c| c.is::<crate::config::BadConfig>() || c.is::<glint_sim::SimError>()) =>
         {
-            eprintln!("{e}");
+            // `:#` prints the whole chain: "scenario F: source[3] ..." rather than the file name alone.
+            eprintln!("{e:#}");
             Ok(ExitCode::from(EXIT_CONFIG))
         }
         other => other,
