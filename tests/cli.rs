@@ -162,9 +162,12 @@ fn a_broken_scenario_is_a_configuration_problem() {
         "{}",
         String::from_utf8_lossy(&out.stderr)
     );
-    // The message says what is wrong, not only which file: the key and why.
+    // The message says what is wrong, not only which file: here the missing instrument block.
     let err = String::from_utf8_lossy(&out.stderr);
-    assert!(err.contains("bad.toml") && err.contains("duration_s"), "{err}");
+    assert!(
+        err.contains("bad.toml") && err.contains("not a valid scenario file") && err.contains("`instrument`"),
+        "{err}"
+    );
     let missing = Command::new(glint_bin())
         .args(["simulate", "--scenario", "/nonexistent/scenario.toml", "--out"])
         .arg(dir.path().join("y.glrec"))
