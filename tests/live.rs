@@ -247,19 +247,7 @@ fn subscriber_with_bad_token_is_refused() {
 
 /// Feeds `rec` at max speed with `glint feed`; returns photons per second from its report.
 fn feed_rate(d: &Daemon, rec: &std::path::Path, token: &std::path::Path) -> f64 {
-    let out = Command::new(util::glint_bin())
-        .args(["feed"])
-        .arg(rec)
-        .args(["--to", &d.ingest.to_string(), "--speed", "max", "--token-file"])
-        .arg(token)
-        .output()
-        .unwrap();
-    let text = String::from_utf8_lossy(&out.stdout).to_string();
-    assert!(
-        out.status.success(),
-        "feed failed: {text}\n{}",
-        String::from_utf8_lossy(&out.stderr)
-    );
+    let text = util::feed(d, rec, token, &[]);
     // "... photons in X s (N photons/s) ..."
     let rate = text
         .split('(')

@@ -9,25 +9,6 @@ use glint_wire::pb;
 
 use crate::util::{self, Daemon, INSTRUMENT, PRODUCER_TOKEN};
 
-/// Feeds `rec` at max speed with `glint feed` (plus `extra` arguments); returns its stdout.
-fn feed(d: &Daemon, rec: &Path, token: &Path, extra: &[&str]) -> String {
-    let out = Command::new(util::glint_bin())
-        .arg("feed")
-        .arg(rec)
-        .args(["--to", &d.ingest.to_string(), "--speed", "max", "--token-file"])
-        .arg(token)
-        .args(extra)
-        .output()
-        .unwrap();
-    let text = String::from_utf8_lossy(&out.stdout).to_string();
-    assert!(
-        out.status.success(),
-        "feed failed: {text}\n{}",
-        String::from_utf8_lossy(&out.stderr)
-    );
-    text
-}
-
 /// Every alert in the state directory's journal, as JSON (read offline with `glint journal export`).
 fn journal(state: &Path) -> Vec<serde_json::Value> {
     let out = Command::new(util::glint_bin())
@@ -68,7 +49,7 @@ fn feeding_the_same_recording_after_a_restart_issues_no_alert_twice() {
     let config = util::config_text_with(&state, "", "", "[metrics]\nlisten = \"127.0.0.1:0\"");
 
     let mut d = Daemon::start_with(dir.path(), &config);
-    let first = feed(&d, &rec, &token, &[]);
+    let first = util::feed(&d, &rec, &token, &[]);
     assert!(!first.contains("resumed after"), "{first}");
     assert!(d.terminate().success(), "{}", d.log_text());
     let before = journal(&state);
@@ -95,14 +76,14 @@ fn feeding_the_same_recording_after_a_restart_issues_no_alert_twice() {
 
     // The same recording again: the Welcome says where to resume, and the feed sends nothing.
     let mut d = Daemon::start_with(dir.path(), &config);
-    let again = feed(&d, &rec, &token, &[]);
+    let again = util::feed(&d, &rec, &token, &[]);
     assert!(
         again.contains(&format!("resumed after seq {last_seq}"))
             && again.contains(&format!("{photons} photons")),
         "{again}"
     );
     // Forced from the start: the daemon takes the frames and drops every photon as already searched.
-    let forced = feed(&d, &rec, &token, &["--from-start"]);
+    let forced = util::feed(&d, &rec, &token, &["--from-start"]);
     assert!(!forced.contains("resumed after"), "{forced}");
     // The ack says the frames were taken into the engine's queue; the engine drops them a moment later.
     let deadline = std::time::Instant::now() + std::time::Duration::from_secs(60);

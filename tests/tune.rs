@@ -7,16 +7,10 @@ use std::process::Command;
 
 use serde_json::Value;
 
-use crate::util::{checked_json_lines, config_text, glint_bin, repo_root};
+use crate::util::{checked_json_lines, config_text, glint_bin, repo_root, stdout_ok};
 
 fn run_ok(args: &[&str]) -> String {
-    let o = Command::new(glint_bin()).args(args).output().unwrap();
-    assert!(
-        o.status.success(),
-        "glint {args:?} failed:\n{}",
-        String::from_utf8_lossy(&o.stderr)
-    );
-    String::from_utf8(o.stdout).unwrap()
+    stdout_ok(Command::new(glint_bin()).args(args))
 }
 
 fn s(p: &Path) -> &str {

@@ -31,6 +31,31 @@ pub(crate) fn repo_root() -> PathBuf {
         .to_path_buf()
 }
 
+/// Runs `cmd` to its end, asserts that it succeeded (printing its stdout and stderr if not) and returns
+/// its stdout.
+pub(crate) fn stdout_ok(cmd: &mut Command) -> String {
+    let out = cmd.output().unwrap();
+    let text = String::from_utf8_lossy(&out.stdout).to_string();
+    assert!(
+        out.status.success(),
+        "{cmd:?} failed: {text}\n{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    text
+}
+
+/// Feeds `rec` to the daemon at max speed with `glint feed` (plus `extra` arguments); returns its stdout.
+pub(crate) fn feed(d: &Daemon, rec: &Path, token: &Path, extra: &[&str]) -> String {
+    stdout_ok(
+        Command::new(glint_bin())
+            .arg("feed")
+            .arg(rec)
+            .args(["--to", &d.ingest.to_string(), "--speed", "max", "--token-file"])
+            .arg(token)
+            .args(extra),
+    )
+}
+
 /// Path of the `glint` binary for this build profile; built once per test run if cargo has not built it
 /// (`cargo test -p glint-tests` builds only this crate).
 pub(crate) fn glint_bin() -> PathBuf {

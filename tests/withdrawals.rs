@@ -34,26 +34,19 @@ fn alerts_until(d: &Daemon, enough: impl Fn(&[pb::Alert]) -> bool) -> Vec<pb::Al
 }
 
 fn withdraw(d: &Daemon, token: &std::path::Path, id: &str, reason: &str) -> String {
-    let out = Command::new(util::glint_bin())
-        .args([
-            "withdraw",
-            id,
-            "--reason",
-            reason,
-            "--from",
-            &d.subs.to_string(),
-            "--token-file",
-        ])
-        .arg(token)
-        .output()
-        .unwrap();
-    let text = String::from_utf8_lossy(&out.stdout).to_string();
-    assert!(
-        out.status.success(),
-        "{text}{}",
-        String::from_utf8_lossy(&out.stderr)
-    );
-    text
+    util::stdout_ok(
+        Command::new(util::glint_bin())
+            .args([
+                "withdraw",
+                id,
+                "--reason",
+                reason,
+                "--from",
+                &d.subs.to_string(),
+                "--token-file",
+            ])
+            .arg(token),
+    )
 }
 
 #[test]

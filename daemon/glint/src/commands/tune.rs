@@ -8,7 +8,6 @@ use std::process::ExitCode;
 use std::time::Instant;
 
 use anyhow::Context;
-use glint_science::reach::{ReachParams, reach_report};
 
 use crate::config::{Config, InstrumentConfig, config_or_exit};
 use crate::tune::inject::InjectSpec;
@@ -144,18 +143,8 @@ pub(crate) fn run(args: &TuneArgs) -> anyhow::Result<ExitCode> {
     let inst = instrument(&cfg, &id, args.far_per_year)?;
     let longest = inst.search.ladder_s.last().copied().unwrap_or(1.0);
     let distances = if args.distances_pc.is_empty() {
-        let r = reach_report(
-            &inst.id,
-            &inst.spec,
-            &ReachParams {
-                far_per_year: inst.search.far_per_year,
-                timescales_s: inst.search.ladder_s.clone(),
-                search_radius_deg: inst.search.search_radius_deg,
-                zenith_deg: args.zenith_deg.unwrap_or(20.0),
-                distances_pc: vec![0.1],
-            },
-        )
-        .context("computing the reach to place the distances")?;
+        let r = tune::reach_at(&inst, args.zenith_deg.unwrap_or(20.0), vec![0.1])
+            .context("computing the reach to place the distances")?;
         [0.3, 0.5, 0.7, 0.85, 1.0, 1.2, 1.5, 2.0]
             .iter()
             .map(|f| (f * r.best_r50_pc * 1e4).round() / 1e4)

@@ -15,8 +15,9 @@ use std::sync::Mutex;
 use std::sync::atomic::{AtomicUsize, Ordering};
 
 use glint_engine::{Finding, SECONDS_PER_YEAR};
+use glint_science::ScienceError;
 use glint_science::critical::per_seed_bound;
-use glint_science::reach::{ReachParams, reach_report};
+use glint_science::reach::{ReachParams, ReachReport, reach_report};
 use rand::SeedableRng;
 use serde::{Deserialize, Serialize};
 
@@ -249,6 +250,26 @@ pub(crate) fn run_units(
 }
 
 /// The search's description for the analysis.
+/// `glint reach` for the instrument's own search at one zenith angle (deg) and distances (pc): what the
+/// injections are placed around and compared with.
+pub(crate) fn reach_at(
+    inst: &InstrumentConfig,
+    zenith_deg: f64,
+    distances_pc: Vec<f64>,
+) -> Result<ReachReport, ScienceError> {
+    reach_report(
+        &inst.id,
+        &inst.spec,
+        &ReachParams {
+            far_per_year: inst.search.far_per_year,
+            timescales_s: inst.search.ladder_s.clone(),
+            search_radius_deg: inst.search.search_radius_deg,
+            zenith_deg,
+            distances_pc,
+        },
+    )
+}
+
 pub(crate) fn search_info(inst: &InstrumentConfig) -> SearchInfo {
     let r = inst.search.search_radius_deg;
     let resp = &inst.response;
@@ -315,16 +336,10 @@ pub(crate) fn analyse(
     let injections = if plan.passes.is_empty() {
         None
     } else {
-        let reach = reach_report(
-            &inst.id,
-            &inst.spec,
-            &ReachParams {
-                far_per_year: s.far_per_year,
-                timescales_s: s.ladder_s.clone(),
-                search_radius_deg: s.search_radius_deg,
-                zenith_deg: plan.inject.zenith_deg.unwrap_or(20.0),
-                distances_pc: plan.inject.distances_pc.clone(),
-            },
+        let reach = reach_at(
+            inst,
+            plan.inject.zenith_deg.unwrap_or(20.0),
+            plan.inject.distances_pc.clone(),
         )
         .ok();
         let passes: Vec<_> = units
@@ -520,18 +535,7 @@ mod tests {
     #[test]
     fn efficiency_agrees_with_reach() {
         let inst = inst();
-        let r = reach_report(
-            &inst.id,
-            &inst.spec,
-            &ReachParams {
-                far_per_year: inst.search.far_per_year,
-                timescales_s: inst.search.ladder_s.clone(),
-                search_radius_deg: inst.search.search_radius_deg,
-                zenith_deg: 20.0,
-                distances_pc: vec![0.1],
-            },
-        )
-        .unwrap();
+        let r = reach_at(&inst, 20.0, vec![0.1]).unwrap();
         let ds: Vec<f64> = [0.7, 1.0, 1.3].iter().map(|f| f * r.best_r50_pc).collect();
         let photons = background(1500.0, 31);
         let plan = plan_for(&inst, &photons, spec(&inst, 72, ds, Some(20.0)));

@@ -32,6 +32,20 @@ fn e<E: std::fmt::Debug>(x: E) -> String {
     format!("{x:?}")
 }
 
+/// Every figure's legend: the series labels in a framed, half-transparent box at `at`.
+fn legend<'a, DB: DrawingBackend + 'a, CT: plotters::coord::CoordTranslate>(
+    c: &mut ChartContext<'a, DB, CT>,
+    at: SeriesLabelPosition,
+) -> DrawResult {
+    c.configure_series_labels()
+        .position(at)
+        .background_style(WHITE.mix(0.8))
+        .border_style(BLACK)
+        .label_font(("sans-serif", 12))
+        .draw()
+        .map_err(e)
+}
+
 const COLOURS: [RGBColor; 8] = [
     RGBColor(31, 119, 180),
     RGBColor(255, 127, 14),
@@ -181,13 +195,7 @@ fn trigger_rate<DB: DrawingBackend>(root: &DrawingArea<DB, Shift>, r: &Report) -
         )
         .map_err(e)?;
     }
-    c.configure_series_labels()
-        .position(SeriesLabelPosition::UpperLeft)
-        .background_style(WHITE.mix(0.8))
-        .border_style(BLACK)
-        .label_font(("sans-serif", 12))
-        .draw()
-        .map_err(e)?;
+    legend(&mut c, SeriesLabelPosition::UpperLeft)?;
     let live_yr = bg.live_seconds / glint_engine::SECONDS_PER_YEAR;
     let pts: Vec<(f64, f64, f64)> = bg
         .far_levels
@@ -263,13 +271,7 @@ fn trigger_rate<DB: DrawingBackend>(root: &DrawingArea<DB, Shift>, r: &Report) -
         .label("nominal bound F/(K R)")
         .legend(|(x, y)| TriangleMarker::new((x + 7, y), 4, colour(1).filled()));
     }
-    c.configure_series_labels()
-        .position(SeriesLabelPosition::UpperLeft)
-        .background_style(WHITE.mix(0.8))
-        .border_style(BLACK)
-        .label_font(("sans-serif", 12))
-        .draw()
-        .map_err(e)?;
+    legend(&mut c, SeriesLabelPosition::UpperLeft)?;
     Ok(())
 }
 
@@ -386,13 +388,7 @@ fn pvalues<DB: DrawingBackend>(root: &DrawingArea<DB, Shift>, r: &Report) -> Dra
         )
         .map_err(e)?;
     }
-    c.configure_series_labels()
-        .position(SeriesLabelPosition::UpperRight)
-        .background_style(WHITE.mix(0.8))
-        .border_style(BLACK)
-        .label_font(("sans-serif", 12))
-        .draw()
-        .map_err(e)?;
+    legend(&mut c, SeriesLabelPosition::UpperRight)?;
     Ok(())
 }
 
@@ -481,13 +477,7 @@ fn efficiency<DB: DrawingBackend>(root: &DrawingArea<DB, Shift>, r: &Report) -> 
             .map_err(e)?;
         }
     }
-    c.configure_series_labels()
-        .position(SeriesLabelPosition::UpperRight)
-        .background_style(WHITE.mix(0.8))
-        .border_style(BLACK)
-        .label_font(("sans-serif", 12))
-        .draw()
-        .map_err(e)?;
+    legend(&mut c, SeriesLabelPosition::UpperRight)?;
     Ok(())
 }
 
@@ -582,13 +572,7 @@ fn skymap<DB: DrawingBackend>(root: &DrawingArea<DB, Shift>, r: &Report) -> Draw
     .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 15, y)], BLACK));
     c.draw_series(offsets.iter().map(|&p| Cross::new(p, 3, colour(3))))
         .map_err(e)?;
-    c.configure_series_labels()
-        .position(SeriesLabelPosition::UpperRight)
-        .background_style(WHITE.mix(0.8))
-        .border_style(BLACK)
-        .label_font(("sans-serif", 12))
-        .draw()
-        .map_err(e)?;
+    legend(&mut c, SeriesLabelPosition::UpperRight)?;
     Ok(())
 }
 
@@ -654,12 +638,6 @@ fn verdicts<DB: DrawingBackend>(root: &DrawingArea<DB, Shift>, r: &Report) -> Dr
         .label(format!("{d} pc"))
         .legend(move |(x, y)| Rectangle::new([(x, y - 5), (x + 10, y + 5)], col.filled()));
     }
-    c.configure_series_labels()
-        .position(SeriesLabelPosition::UpperRight)
-        .background_style(WHITE.mix(0.8))
-        .border_style(BLACK)
-        .label_font(("sans-serif", 12))
-        .draw()
-        .map_err(e)?;
+    legend(&mut c, SeriesLabelPosition::UpperRight)?;
     Ok(())
 }
