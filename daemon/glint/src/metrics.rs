@@ -243,22 +243,18 @@ impl Metrics {
         }
     }
 
-    /// Records a span already measured, nanoseconds (negative ones are not recorded).
-    pub(crate) fn record_span(&self, stage: Stage, ns: i64) {
-        if ns >= 0 {
-            self.record(stage, 1, ns.saturating_add(1));
-        }
-    }
-
     /// Records one latency between two wall-clock stamps (Unix ns). Absent (0) or reversed stamps are not
     /// recorded: a clock step must not put a negative value in a histogram.
     pub(crate) fn record(&self, stage: Stage, from_unix_ns: i64, to_unix_ns: i64) {
-        if from_unix_ns <= 0 || to_unix_ns < from_unix_ns {
-            return;
+        if from_unix_ns > 0 {
+            self.record_span(stage, to_unix_ns.saturating_sub(from_unix_ns));
         }
-        let ns = u64::try_from(to_unix_ns - from_unix_ns)
-            .unwrap_or(0)
-            .clamp(1, MAX_TRACKED_NS);
+    }
+
+    /// Records a span already measured, nanoseconds; a negative one (a clock step) is not recorded.
+    pub(crate) fn record_span(&self, stage: Stage, ns: i64) {
+        let Ok(ns) = u64::try_from(ns) else { return };
+        let ns = ns.clamp(1, MAX_TRACKED_NS);
         if let Ok(mut h) = self.hists.lock() {
             // Cannot fail: the value was clamped into the tracked range.
             let _ = h[stage.index()].record(ns);
